@@ -1,0 +1,287 @@
+"""AR(p) with intercept by OLS for every series of a panel at once.
+
+Design: one lag design ``X`` (G, T, K) holds every candidate lag column (1..P
+and the seasonal lag s). A model is a column mask over it, a sample is a row
+weight, so every candidate order of every series is solved from one set of
+cross-products (:mod:`arflow.core.ols`), and the final fit of all series, each
+with its own lags and sample, is one batched regression.
+
+Order selection uses a common estimation sample per series (the first
+``max(P, s)`` observations are held back for every candidate, so criteria are
+comparable); the chosen lags are then refitted on the longest sample they
+allow. Criteria follow the Gaussian conditional log-likelihood with
+``sigma^2 = RSS / n`` and count ``k + 1`` parameters (the k regression
+coefficients including the intercept, plus the variance):
+``AIC = -2 llf + 2 (k + 1)``, ``BIC = -2 llf + log(n) (k + 1)``,
+``HQIC = -2 llf + 2 log(log(n)) (k + 1)`` (the definitions statsmodels'
+``AutoReg`` uses, so selected orders agree with it).
+
+The seasonal candidate adds lag s to the selected lags; it is kept when it
+lowers the criterion, or when its coefficient is significant at
+``seasonal_alpha`` (t test), i.e. when leaving it out would leave residual
+autocorrelation at the seasonal lag.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields, replace
+
+import numpy as np
+from scipy import stats
+
+from . import ols
+
+CRITERION_PENALTY = {
+    "aic": lambda n: 2.0 * np.ones_like(n),
+    "bic": lambda n: np.log(n),
+    "hqic": lambda n: 2.0 * np.log(np.log(n)),
+}
+
+#: residual degrees of freedom a fit needs beyond its parameters
+MIN_RESID_DF = 5
+
+
+@dataclass(frozen=True)
+class ARFit:
+    """Fitted AR models of G series (arrays lead with the series axis).
+
+    ``lags`` are the K candidate lag columns; ``lag_mask`` (G, K) marks the
+    lags each series uses; ``coef``/``std_err``/``t_stat`` are (G, K) with
+    zeros (NaN for t) in unused columns. ``resid`` (G, T) is right-aligned
+    like the panel, NaN outside the fitted sample. ``fitted`` is False where a
+    series was too short to fit (all its numbers are NaN).
+    """
+
+    lags: np.ndarray
+    lag_mask: np.ndarray
+    intercept: np.ndarray
+    intercept_se: np.ndarray
+    coef: np.ndarray
+    std_err: np.ndarray
+    t_stat: np.ndarray
+    sigma: np.ndarray
+    n_obs: np.ndarray
+    r_squared: np.ndarray
+    aic: np.ndarray
+    bic: np.ndarray
+    hqic: np.ndarray
+    max_root_modulus: np.ndarray
+    stationary: np.ndarray
+    mean_level: np.ndarray
+    resid: np.ndarray
+    fitted: np.ndarray
+
+    @property
+    def n_lags(self) -> np.ndarray:
+        return self.lag_mask.sum(axis=1)
+
+    @property
+    def rss(self) -> np.ndarray:
+        return self.sigma**2 * (self.n_obs - self.n_lags - 1)
+
+    def phi(self, width: int | None = None) -> np.ndarray:
+        """Dense lag polynomial (G, L): ``phi[:, j-1]`` is the coefficient of lag j."""
+        L = int(self.lags.max()) if len(self.lags) else 0
+        width = max(width or 0, L)
+        out = np.zeros((self.coef.shape[0], width))
+        if len(self.lags):
+            out[:, self.lags - 1] = self.coef
+        return out
+
+
+def lag_design(Y: np.ndarray, lags: np.ndarray) -> np.ndarray:
+    """(G, T, K) matrix whose column j at row t is ``Y[:, t - lags[j]]`` (NaN before the start)."""
+    G, T = Y.shape
+    X = np.full((G, T, len(lags)), np.nan)
+    for j, lag in enumerate(lags):
+        if lag < T:
+            X[:, lag:, j] = Y[:, : T - lag]
+    return X
+
+
+def information_criteria(rss: np.ndarray, nobs: np.ndarray, n_params: np.ndarray) -> dict[str, np.ndarray]:
+    """AIC, BIC and HQIC of Gaussian regressions (``n_params`` counts the intercept; +1 for the variance)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        n = np.asarray(nobs, dtype=np.float64)
+        llf = -0.5 * n * (np.log(2 * np.pi) + np.log(rss / n) + 1.0)
+        k = np.asarray(n_params, dtype=np.float64) + 1.0
+        return {name: -2.0 * llf + pen(n) * k for name, pen in CRITERION_PENALTY.items()}
+
+
+def _sample_weights(n: np.ndarray, T: int, hold_back: np.ndarray) -> np.ndarray:
+    t = np.arange(T)[None, :]
+    start = (T - n + hold_back)[:, None]
+    return (t >= start).astype(np.float64)
+
+
+def fit_ar(
+    Y: np.ndarray,
+    *,
+    order: int | str = "auto",
+    max_order: int = 8,
+    criterion: str = "aic",
+    seasonal_lag: int | None = None,
+    seasonal_alpha: float = 0.05,
+    fit_mask: np.ndarray | None = None,
+) -> ARFit:
+    """Fit AR models with intercept to every row of a right-aligned panel ``Y`` (G, T).
+
+    ``order="auto"`` selects p in 1..max_order by ``criterion`` on a common
+    sample; an integer fixes p. ``seasonal_lag`` adds the seasonal candidate.
+    ``fit_mask`` (G,) bool skips series (they come back unfitted).
+
+    >>> rng = np.random.default_rng(1); e = rng.normal(size=(2, 400)); y = np.zeros((2, 400))
+    >>> for t in range(1, 400): y[:, t] = 1.0 + 0.6 * y[:, t - 1] + e[:, t]
+    >>> f = fit_ar(y, order=1); bool(np.all(np.abs(f.coef[:, 0] - 0.6) < 0.1))
+    True
+    """
+    Y = np.asarray(Y, dtype=np.float64)
+    G, T = Y.shape
+    n = (~np.isnan(Y)).sum(axis=1)
+    P = int(max_order if order == "auto" else order)
+    lag_list = list(range(1, P + 1))
+    s = int(seasonal_lag) if seasonal_lag else None
+    if s is not None and s not in lag_list:
+        lag_list.append(s)
+    lags = np.array(sorted(lag_list), dtype=np.int64)
+    K = len(lags)
+    hold = int(lags.max())
+    X = lag_design(Y, lags)
+    Yz = np.nan_to_num(Y)
+    Xz = np.nan_to_num(X)
+
+    want = np.ones(G, dtype=bool) if fit_mask is None else np.asarray(fit_mask, dtype=bool)
+    # selection needs room for the largest candidate
+    can_select = want & (n - hold >= K + 1 + MIN_RESID_DF)
+    base_cols = lags <= P
+    seasonal_col = (lags == s) if s is not None else np.zeros(K, dtype=bool)
+    # ---- candidate lag sets -------------------------------------------------------
+    if order == "auto":
+        w_sel = _sample_weights(n, T, np.full(G, hold)) * can_select[:, None]
+        g = ols.gram(Xz, Yz, w_sel)
+        nobs = g.nobs
+        best_ic = np.full(G, np.inf)
+        best_p = np.ones(G, dtype=np.int64)
+        for p in range(1, P + 1):
+            m = np.broadcast_to(lags <= p, (G, K))
+            r = ols.solve(g, m)
+            ic = information_criteria(r.rss, nobs, r.n_params)[criterion]
+            better = ic < best_ic
+            best_ic = np.where(better, ic, best_ic)
+            best_p = np.where(better, p, best_p)
+        chosen = lags[None, :] <= best_p[:, None]
+    else:
+        chosen = np.broadcast_to(base_cols, (G, K)).copy()
+        best_p = np.full(G, P)
+        g = None
+    chosen = chosen & base_cols[None, :]
+    if s is not None and s > 0:
+        add = chosen | seasonal_col[None, :]
+        differs = ~np.all(add == chosen, axis=1)
+        if g is None:
+            w_sel = _sample_weights(n, T, np.full(G, hold)) * can_select[:, None]
+            g = ols.gram(Xz, Yz, w_sel)
+        ra = ols.solve(g, chosen)
+        rb = ols.solve(g, add)
+        ica = information_criteria(ra.rss, g.nobs, ra.n_params)[criterion]
+        icb = information_criteria(rb.rss, g.nobs, rb.n_params)[criterion]
+        df_b = g.nobs - rb.n_params
+        with np.errstate(divide="ignore", invalid="ignore"):
+            fstat = (ra.rss - rb.rss) / (rb.rss / df_b)
+            p_add = stats.f.sf(fstat, 1, df_b)
+        keep_s = differs & can_select & ((icb < ica) | (p_add < seasonal_alpha))
+        chosen = np.where(keep_s[:, None], add, chosen)
+    # series too short to select are fitted at the smallest order that fits
+    maxlag = np.where(chosen.any(axis=1), np.max(np.where(chosen, lags[None, :], 0), axis=1), 1)
+    fittable = want & (n - maxlag >= chosen.sum(axis=1) + 1 + MIN_RESID_DF)
+    w_fit = _sample_weights(n, T, maxlag) * fittable[:, None]
+    res = ols.fit(Xz, Yz, w_fit, chosen)
+    return _finish(lags, chosen, res, w_fit, Y, fittable)
+
+
+def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable) -> ARFit:
+    G = Y.shape[0]
+    nan = np.where(fittable, 1.0, np.nan)
+    coef = res.beta * mask
+    se = res.std_errors * mask
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.where(mask, coef / se, np.nan)
+    sigma = np.sqrt(res.sigma2) * nan
+    ic = information_criteria(res.rss, res.nobs, res.n_params)
+    resid = np.where(w > 0, res.resid, np.nan)
+    # companion-matrix roots
+    L = int(lags.max())
+    phi = np.zeros((G, L))
+    phi[:, lags - 1] = coef
+    comp = np.zeros((G, L, L))
+    comp[:, 0, :] = phi
+    if L > 1:
+        comp[:, np.arange(1, L), np.arange(L - 1)] = 1.0
+    roots = np.abs(np.linalg.eigvals(np.where(fittable[:, None, None], comp, 0.0)))
+    max_root = roots.max(axis=1) * nan
+    stationary = fittable & (max_root < 1.0 - 1e-8)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        level = np.where(stationary, res.intercept / (1.0 - coef.sum(axis=1)), np.nan)
+    return ARFit(
+        lags=lags,
+        lag_mask=mask & fittable[:, None],
+        intercept=res.intercept * nan,
+        intercept_se=res.intercept_std_error * nan,
+        coef=coef * nan[:, None],
+        std_err=se * nan[:, None],
+        t_stat=t * nan[:, None],
+        sigma=sigma,
+        n_obs=np.where(fittable, res.nobs, 0).astype(np.int64),
+        r_squared=res.r_squared * nan,
+        aic=ic["aic"] * nan,
+        bic=ic["bic"] * nan,
+        hqic=ic["hqic"] * nan,
+        max_root_modulus=max_root,
+        stationary=stationary,
+        mean_level=level,
+        resid=resid,
+        fitted=fittable,
+    )
+
+
+def splice(base: ARFit, other: ARFit, idx: np.ndarray) -> ARFit:
+    """``base`` with the series at ``idx`` replaced by ``other`` (fitted on those series only).
+
+    Lag columns and residual widths are unified to the wider of the two.
+    """
+    lags = np.union1d(base.lags, other.lags)
+    out = {}
+    for f in fields(ARFit):
+        a, b = getattr(base, f.name), getattr(other, f.name)
+        if f.name == "lags":
+            out[f.name] = lags
+            continue
+        if f.name in ("lag_mask", "coef", "std_err", "t_stat"):
+            a, b = _widen_lags(a, base.lags, lags, f.name), _widen_lags(b, other.lags, lags, f.name)
+        elif f.name == "resid":
+            W = max(a.shape[1], b.shape[1])
+            a, b = _left_pad(a, W), _left_pad(b, W)
+        a = a.copy()
+        a[idx] = b
+        out[f.name] = a
+    return ARFit(**out)
+
+
+def _widen_lags(a: np.ndarray, have: np.ndarray, want: np.ndarray, name: str) -> np.ndarray:
+    if np.array_equal(have, want):
+        return a
+    fill = False if name == "lag_mask" else (np.nan if name == "t_stat" else 0.0)
+    out = np.full((a.shape[0], len(want)), fill, dtype=a.dtype)
+    out[:, np.searchsorted(want, have)] = a
+    return out
+
+
+def _left_pad(a: np.ndarray, W: int) -> np.ndarray:
+    if a.shape[1] == W:
+        return a
+    return np.concatenate([np.full((a.shape[0], W - a.shape[1]), np.nan), a], axis=1)
+
+
+def take(f: ARFit, idx: np.ndarray) -> ARFit:
+    """The fits of the series at ``idx``."""
+    return replace(f, **{x.name: getattr(f, x.name)[idx] for x in fields(ARFit) if x.name != "lags"})

@@ -1,0 +1,186 @@
+"""Frozen settings for the statistical core: model, forecast and gates.
+
+The job file (TOML) maps one-to-one onto these classes; the Python API takes
+them directly. Every value is validated on construction, and a bad value raises
+:class:`~arflow.errors.SettingsError` naming the key and what is allowed.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from .errors import SettingsError
+
+FREQUENCIES = ("day", "week", "month", "quarter", "year", "step")
+CRITERIA = ("aic", "bic", "hqic")
+UNIT_ROOT_POLICIES = ("difference", "quarantine", "ignore")
+RESIDUAL_TESTS = ("ljung-box", "breusch-godfrey", "lag-t")
+MULTIPLE_LAGS = ("holm", "none")
+
+#: Seasonal lag used when ``seasonal_lag = "auto"``.
+SEASONAL_PERIOD = {"day": 7, "week": 52, "month": 12, "quarter": 4, "year": None, "step": None}
+
+
+def _fail(key: str, value: object, allowed: str) -> None:
+    raise SettingsError(f"{key} = {value!r} is not allowed; use {allowed}")
+
+
+def _is_int(v: object) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_num(v: object) -> bool:
+    return (isinstance(v, (int, float)) and not isinstance(v, bool)) and math.isfinite(v)
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    """How each series is modelled.
+
+    ``order``: ``"auto"`` (select 1..``max_order`` by ``criterion``) or a fixed int.
+    ``seasonal_lag``: ``"auto"`` (4 quarterly, 12 monthly, 7 daily, 52 weekly),
+    an int, or ``"off"``; the seasonal lag is added when it improves the
+    criterion or its coefficient is significant at ``seasonal_alpha``.
+    ``unit_root``: ``"difference"`` (model first differences of series that
+    carry a unit root), ``"quarantine"`` (hold them back) or ``"ignore"``.
+
+    >>> ModelSettings(order=2).order
+    2
+    """
+
+    order: int | str = "auto"
+    max_order: int = 8
+    criterion: str = "aic"
+    seasonal_lag: int | str = "auto"
+    seasonal_alpha: float = 0.05
+    unit_root: str = "difference"
+    unit_root_alpha: float = 0.05
+
+    def __post_init__(self) -> None:
+        if not (self.order == "auto" or (_is_int(self.order) and 1 <= self.order <= 60)):
+            _fail("model.order", self.order, '"auto" or an integer from 1 to 60')
+        if not (_is_int(self.max_order) and 1 <= self.max_order <= 60):
+            _fail("model.max_order", self.max_order, "an integer from 1 to 60")
+        if self.criterion not in CRITERIA:
+            _fail("model.criterion", self.criterion, " / ".join(f'"{c}"' for c in CRITERIA))
+        if not (self.seasonal_lag in ("auto", "off") or (_is_int(self.seasonal_lag) and 2 <= self.seasonal_lag <= 400)):
+            _fail("model.seasonal_lag", self.seasonal_lag, '"auto", "off" or an integer from 2 to 400')
+        if self.unit_root not in UNIT_ROOT_POLICIES:
+            _fail("model.unit_root", self.unit_root, " / ".join(f'"{c}"' for c in UNIT_ROOT_POLICIES))
+        for key in ("seasonal_alpha", "unit_root_alpha"):
+            v = getattr(self, key)
+            if not (_is_num(v) and 0 < v < 1):
+                _fail(f"model.{key}", v, "a number strictly between 0 and 1")
+
+    def seasonal_for(self, frequency: str) -> int | None:
+        """The seasonal lag to try for ``frequency`` (None when off or undefined)."""
+        if self.seasonal_lag == "off":
+            return None
+        if self.seasonal_lag == "auto":
+            return SEASONAL_PERIOD.get(frequency)
+        return int(self.seasonal_lag)
+
+
+@dataclass(frozen=True)
+class ForecastSettings:
+    """Forecast horizon and prediction-interval coverage levels.
+
+    >>> ForecastSettings(horizon=6, coverage=(0.8,)).horizon
+    6
+    """
+
+    horizon: int = 12
+    coverage: tuple[float, ...] = (0.8, 0.95)
+
+    def __post_init__(self) -> None:
+        if not (_is_int(self.horizon) and 1 <= self.horizon <= 1000):
+            _fail("forecast.horizon", self.horizon, "an integer from 1 to 1000")
+        cov = tuple(self.coverage) if isinstance(self.coverage, (list, tuple)) else None
+        if not cov:
+            _fail("forecast.coverage", self.coverage, "a non-empty list of levels such as [0.8, 0.95]")
+        for c in cov:
+            if not (_is_num(c) and 0 < c < 1):
+                _fail("forecast.coverage", c, "levels strictly between 0 and 1, e.g. [0.8, 0.95]")
+        labels = [coverage_label(c) for c in cov]
+        if len(set(labels)) != len(labels):
+            _fail("forecast.coverage", list(cov), "distinct levels (each names lower_NN / upper_NN columns)")
+        object.__setattr__(self, "coverage", tuple(float(c) for c in cov))
+
+
+def coverage_label(level: float) -> str:
+    """Column suffix for a coverage level: 0.8 -> "80", 0.975 -> "97_5"."""
+    pct = round(level * 100, 6)
+    if pct == int(pct):
+        return str(int(pct))
+    return f"{pct:g}".replace(".", "_")
+
+
+@dataclass(frozen=True)
+class GateSettings:
+    """Which checks decide publish or quarantine, and at what level.
+
+    ``residual_test``: ``"ljung-box"`` (default), ``"breusch-godfrey"`` or
+    ``"lag-t"`` (per-lag t tests, Holm-corrected unless ``lag_correction="none"``).
+    ``series_fdr``: when set (e.g. 0.05), the residual test's p-values are
+    Benjamini-Hochberg adjusted across the series of a run before comparing.
+    ``lower_bound`` / ``upper_bound``: forecasts (point values) outside are
+    quarantined. ``max_quarantine_share``: the CLI exits with the alarm code
+    when more than this share of series is held back.
+    """
+
+    residual_test: str = "ljung-box"
+    residual_lags: int = 12
+    alpha: float = 0.05
+    lag_correction: str = "holm"
+    series_fdr: float | None = None
+    min_observations: int = 24
+    require_stationary: bool = True
+    allow_gaps: bool = False
+    allow_duplicates: bool = False
+    max_stale_periods: int = 0
+    lower_bound: float | None = None
+    upper_bound: float | None = None
+    arch_test: bool = False
+    max_quarantine_share: float = 0.5
+
+    def __post_init__(self) -> None:
+        if self.residual_test not in RESIDUAL_TESTS:
+            _fail("gates.residual_test", self.residual_test, " / ".join(f'"{c}"' for c in RESIDUAL_TESTS))
+        if not (_is_int(self.residual_lags) and 1 <= self.residual_lags <= 200):
+            _fail("gates.residual_lags", self.residual_lags, "an integer from 1 to 200")
+        if not (_is_num(self.alpha) and 0 < self.alpha < 1):
+            _fail("gates.alpha", self.alpha, "a number strictly between 0 and 1, e.g. 0.05")
+        if self.lag_correction not in MULTIPLE_LAGS:
+            _fail("gates.lag_correction", self.lag_correction, '"holm" or "none"')
+        if self.series_fdr is not None and not (_is_num(self.series_fdr) and 0 < self.series_fdr < 1):
+            _fail("gates.series_fdr", self.series_fdr, "a number strictly between 0 and 1, or leave it out")
+        if not (_is_int(self.min_observations) and 3 <= self.min_observations):
+            _fail("gates.min_observations", self.min_observations, "an integer of at least 3")
+        if not (_is_int(self.max_stale_periods) and self.max_stale_periods >= 0):
+            _fail("gates.max_stale_periods", self.max_stale_periods, "an integer of at least 0")
+        for key in ("lower_bound", "upper_bound"):
+            v = getattr(self, key)
+            if v is not None and not _is_num(v):
+                _fail(f"gates.{key}", v, "a finite number, or leave it out")
+        if self.lower_bound is not None and self.upper_bound is not None and self.lower_bound >= self.upper_bound:
+            _fail("gates.lower_bound", self.lower_bound, "a value below gates.upper_bound")
+        for key in ("require_stationary", "allow_gaps", "allow_duplicates", "arch_test"):
+            if not isinstance(getattr(self, key), bool):
+                _fail(f"gates.{key}", getattr(self, key), "true or false")
+        if not (_is_num(self.max_quarantine_share) and 0 <= self.max_quarantine_share <= 1):
+            _fail("gates.max_quarantine_share", self.max_quarantine_share, "a number from 0 to 1")
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Everything the core needs for one run (besides the data)."""
+
+    frequency: str = "month"
+    model: ModelSettings = field(default_factory=ModelSettings)
+    forecast: ForecastSettings = field(default_factory=ForecastSettings)
+    gates: GateSettings = field(default_factory=GateSettings)
+
+    def __post_init__(self) -> None:
+        if self.frequency not in FREQUENCIES:
+            _fail("source.frequency", self.frequency, " / ".join(f'"{c}"' for c in FREQUENCIES))

@@ -1,0 +1,1 @@
+"""Warehouse edges: read a source through DuckDB, publish a run atomically."""
