@@ -1,0 +1,278 @@
+"""Command line: ``arflow run | validate | demo``.
+
+Exit codes: 0 success; 1 unexpected internal error; 2 job-file or usage
+error; 3 source, data or target error (including a locked target); 4 the
+share of quarantined series is over ``gates.max_quarantine_share`` (results
+were still written).
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import json
+import os
+import signal
+import sys
+import traceback
+from pathlib import Path
+from typing import Any, TextIO
+
+from .errors import ArflowError
+
+EXIT_OK = 0
+EXIT_INTERNAL = 1
+EXIT_USAGE = 2
+EXIT_DATA = 3
+EXIT_ALARM = 4
+
+EPILOG = """exit codes:
+  0  success
+  1  unexpected internal error (a bug: please report it)
+  2  job-file or usage error
+  3  source, data or target error (also: target in use by another run)
+  4  quarantined share over gates.max_quarantine_share (results still written)
+"""
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line usage error (exit 2)."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        self.exit(EXIT_USAGE, f"arflow: error: {message}; see '{self.prog} --help'\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser (exposed for the docs and tests)."""
+    parser = _Parser(
+        prog="arflow",
+        description="Fit AR(p) models to many series, gate every forecast, publish only vetted ones.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"arflow {_version()}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    def common(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--log-format", choices=("text", "json"), default="text",
+                       help="text (summary for people) or json (one JSON object per event on stdout, for schedulers)")
+
+    run = sub.add_parser("run", help="run a job: read, fit, gate, publish", epilog=EPILOG,
+                         formatter_class=argparse.RawDescriptionHelpFormatter)
+    run.add_argument("job_file", metavar="JOB.toml", help="the job file")
+    run.add_argument("--as-of", metavar="PERIOD",
+                     help="run as of an earlier period (re-runs, backfills), e.g. 2024-06-01 or 2024-06; "
+                          "default: the latest period in the source")
+    run.add_argument("--dry-run", action="store_true", help="compute and report, write nothing")
+    common(run)
+    run.set_defaults(handler=_cmd_run)
+
+    val = sub.add_parser("validate", help="check the job file and the source (columns, types) without fitting")
+    val.add_argument("job_file", metavar="JOB.toml", help="the job file")
+    common(val)
+    val.set_defaults(handler=_cmd_validate)
+
+    demo = sub.add_parser("demo", help="build the sample warehouse and run its job")
+    demo.add_argument("--dir", type=Path, default=Path("."), help="folder for the sample database and job file (default: current folder)")
+    common(demo)
+    demo.set_defaults(handler=_cmd_demo)
+    return parser
+
+
+def _version() -> str:
+    from .job import arflow_version
+
+    return arflow_version()
+
+
+# -- output -----------------------------------------------------------------
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, (dt.date, dt.datetime)):
+        return value.isoformat()
+    if isinstance(value, Path):
+        return str(value)
+    return str(value)
+
+
+class _Reporter:
+    """Prints events: JSON lines, or a progress line on a terminal."""
+
+    def __init__(self, fmt: str, out: TextIO, err: TextIO) -> None:
+        self.json = fmt == "json"
+        self.out, self.err = out, err
+        self.progress = not self.json and err.isatty()
+        self._dirty = False
+
+    def __call__(self, event: dict[str, Any]) -> None:
+        if self.json:
+            self.emit(event)
+            return
+        if not self.progress:
+            return
+        if event["event"] == "start":
+            self._line(f"arflow: {event['series']:,} series in {event['chunks']:,} chunk(s)")
+        elif event["event"] == "chunk":
+            pct = 100.0 * event["series_done"] / max(event["series_total"], 1)
+            self._line(f"arflow: chunk {event['chunk']}/{event['chunks']}  {event['series_done']:,}/{event['series_total']:,} series  {pct:5.1f}%")
+        elif event["event"] == "publish":
+            self._line("arflow: publishing (one transaction)...")
+        elif event["event"] == "finish":
+            self.clear()
+
+    def emit(self, event: dict[str, Any]) -> None:
+        stamped = {"event": event["event"], "time": dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds"),
+                   **{k: v for k, v in event.items() if k != "event"}}
+        self.out.write(json.dumps(stamped, default=_json_default) + "\n")
+        self.out.flush()
+
+    def _line(self, text: str) -> None:
+        self.err.write("\r\033[K" + text)
+        self.err.flush()
+        self._dirty = True
+
+    def clear(self) -> None:
+        if self._dirty:
+            self.err.write("\r\033[K")
+            self.err.flush()
+            self._dirty = False
+
+
+def _fmt_period(value: Any) -> str:
+    return value.isoformat() if isinstance(value, (dt.date, dt.datetime)) else str(value)
+
+
+def _summary(outcome: Any) -> str:
+    total = outcome.series_total
+    lines = [
+        f"arflow {'dry run' if outcome.dry_run else 'run'} {outcome.job} as of {_fmt_period(outcome.as_of)}"
+        + ("" if outcome.dry_run else f"  (run id {outcome.run_id}, attempt {outcome.attempt})"),
+        f"  series read        {total:>9,}   ({outcome.rows_read:,} rows, {outcome.chunks} chunk{'s' if outcome.chunks != 1 else ''})",
+        f"  published          {outcome.series_published:>9,}",
+        f"  quarantined        {outcome.series_quarantined:>9,}   ({100 * outcome.quarantine_share:.1f}% of series; alarm above {100 * outcome.max_quarantine_share:g}%)",
+    ]
+    for reason, count in sorted(outcome.reason_counts.items(), key=lambda kv: (-kv[1], kv[0])):
+        lines.append(f"    {reason:<24}{count:>7,}")
+    lines.append(f"  time taken         {outcome.seconds:>9.1f} s")
+    if outcome.dry_run:
+        lines.append(f"  results            not written (dry run); would go to {outcome.target}")
+    else:
+        lines.append(f"  results            {outcome.target}")
+    lines.extend(f"  note: {n}" for n in outcome.notes)
+    return "\n".join(lines) + "\n"
+
+
+# -- commands ---------------------------------------------------------------
+
+def _finish(outcome: Any, reporter: _Reporter) -> int:
+    reporter.clear()
+    if not reporter.json:
+        reporter.out.write(_summary(outcome))
+    if outcome.alarm:
+        reporter.err.write(
+            f"arflow: alarm: {100 * outcome.quarantine_share:.1f}% of series were quarantined, over "
+            f"gates.max_quarantine_share = {outcome.max_quarantine_share:g}; "
+            f"{'nothing was written (dry run)' if outcome.dry_run else 'results were written'}\n"
+        )
+        return EXIT_ALARM
+    return EXIT_OK
+
+
+def _cmd_run(args: argparse.Namespace, reporter: _Reporter) -> int:
+    from .job import run_job
+    from .job_file import load_job
+
+    spec = load_job(args.job_file)
+    outcome = run_job(spec, as_of=args.as_of, dry_run=args.dry_run, on_event=reporter)
+    return _finish(outcome, reporter)
+
+
+def _cmd_validate(args: argparse.Namespace, reporter: _Reporter) -> int:
+    from .job import validate_job
+    from .job_file import load_job
+
+    spec = load_job(args.job_file)
+    report = validate_job(spec)
+    if reporter.json:
+        reporter.emit({"event": "valid", "job": report.job, "source": report.source, "columns": dict(report.columns),
+                       "rows": report.rows, "series": report.series, "first_period": report.first_period,
+                       "latest_period": report.latest_period, "target": report.target, "target_status": report.target_status})
+    else:
+        cols = ", ".join(f"{n} {t}" for n, t in report.columns)
+        reporter.out.write(
+            f"arflow: job {report.job} is valid\n"
+            f"  source   {report.source}: {report.rows:,} rows, {report.series:,} series, "
+            f"{_fmt_period(report.first_period)} to {_fmt_period(report.latest_period)}\n"
+            f"  columns  {cols}\n"
+            f"  target   {report.target}: {report.target_status}\n"
+        )
+    return EXIT_OK
+
+
+def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
+    from .job import run_demo
+
+    directory = args.dir.expanduser().resolve()
+    outcome = run_demo(directory, on_event=reporter)
+    code = _finish(outcome, reporter)
+    if not reporter.json:
+        reporter.out.write(
+            f"  job file           {directory / 'demo_job.toml'}\n"
+            f"  try                arflow run {directory / 'demo_job.toml'} --as-of 2024-12 --dry-run\n"
+        )
+    return code
+
+
+# -- entry point ------------------------------------------------------------
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _on_term(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt
+
+
+def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextIO | None = None) -> int:
+    """Run the command line; returns the exit code."""
+    out = out or sys.stdout
+    err = err or sys.stderr
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # usage error or --help/--version
+        return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_USAGE
+    reporter = _Reporter(args.log_format, out, err)
+    previous = signal.getsignal(signal.SIGTERM)
+    try:
+        signal.signal(signal.SIGTERM, _on_term)  # roll back cleanly when a scheduler stops us
+    except ValueError:  # not the main thread
+        previous = None
+    try:
+        return args.handler(args, reporter)
+    except ArflowError as exc:
+        return _fail(reporter, exc.exit_code, type(exc).__name__, _one_line(str(exc)))
+    except KeyboardInterrupt:
+        return _fail(reporter, 130, "Interrupted", "interrupted; nothing was published by this run")
+    except Exception as exc:  # noqa: BLE001 - last line of defence
+        if os.environ.get("ARFLOW_DEBUG"):
+            traceback.print_exc(file=err)
+        message = f"internal error ({type(exc).__name__}: {_one_line(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
+        return _fail(reporter, EXIT_INTERNAL, type(exc).__name__, message)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:
+    reporter.clear()
+    if reporter.json:
+        reporter.emit({"event": "error", "exit_code": code, "error": kind, "message": message})
+    reporter.err.write(f"arflow: error: {message}\n")
+    reporter.err.flush()
+    return code
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,245 @@
+"""The scheduled job: source -> core -> warehouse, in one call.
+
+:func:`run_job` is the only place that wires the edges together; the command
+line parses arguments, prints and maps errors to exit codes. Events go to an
+optional ``on_event`` callback as plain dicts (``{"event": "start", ...}``).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import time
+from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass, field
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from . import api
+from .errors import SourceError
+from .job_file import JobSpec, load_job
+from .settings import coverage_label
+from .warehouse.duckdb_source import DuckDBSource
+from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, run_id_for
+
+Event = dict[str, Any]
+EventSink = Callable[[Event], None]
+
+
+@dataclass(frozen=True)
+class JobOutcome:
+    """What a run did: counts, reasons, timing and where results went."""
+
+    job: str
+    run_id: str
+    as_of: Any
+    dry_run: bool
+    rows_read: int
+    series_total: int
+    series_published: int
+    series_quarantined: int
+    reason_counts: dict[str, int]
+    quarantine_share: float
+    max_quarantine_share: float
+    chunks: int
+    seconds: float
+    target: str
+    attempt: int | None = None
+    notes: tuple[str, ...] = ()
+
+    @property
+    def alarm(self) -> bool:
+        """True when the quarantined share is over ``gates.max_quarantine_share``."""
+        return self.quarantine_share > self.max_quarantine_share
+
+
+@dataclass(frozen=True)
+class ValidationReport:
+    """What ``arflow validate`` found without fitting anything."""
+
+    job: str
+    source: str
+    columns: tuple[tuple[str, str], ...]
+    rows: int
+    series: int
+    first_period: Any
+    latest_period: Any
+    target: str
+    target_status: str
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+
+def arflow_version() -> str:
+    """Installed package version (``0+unknown`` when run from a bare checkout)."""
+    try:
+        return metadata.version("arflow")
+    except metadata.PackageNotFoundError:
+        return "0+unknown"
+
+
+def _layout(spec: JobSpec, source: DuckDBSource) -> TableLayout:
+    src = source.layout()
+    return TableLayout(spec.publish.schema, spec.source.keys, src.key_types, src.period_type)
+
+
+def _target_text(spec: JobSpec) -> str:
+    return f"{spec.publish.database} (schema {spec.publish.schema}, view {spec.publish.schema}.published_forecasts)"
+
+
+def validate_job(spec: JobSpec) -> ValidationReport:
+    """Check the job file's source and target (columns, types, NULL keys) without fitting."""
+    with DuckDBSource(spec.source, spec.settings.frequency) as source:
+        src = source.layout()
+        source.check_rows()
+        latest = source.latest_period()
+        rows, series, first = source.stats(latest)
+        layout = _layout(spec, source)
+    status = check_target(spec.publish.database, layout)
+    wanted = {*spec.source.keys, spec.source.period, spec.source.value}
+    columns = tuple((n, t) for n, t in src.columns if n in wanted)
+    return ValidationReport(spec.name, spec.source.describe(), columns, rows, series, first, latest, _target_text(spec), status)
+
+
+def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: EventSink | None = None) -> JobOutcome:
+    """Run a job: read, forecast chunk by chunk, publish everything in one transaction."""
+    emit: EventSink = on_event or (lambda event: None)
+    clock = time.perf_counter()
+    started_at = _utcnow()
+    settings = spec.settings
+    notes: list[str] = []
+    with DuckDBSource(spec.source, settings.frequency) as source:
+        source.layout()
+        source.check_rows()
+        as_of_value = source.parse_as_of(as_of) if as_of is not None else source.latest_period()
+        rows, series, _ = source.stats(as_of_value)
+        if rows == 0:
+            raise SourceError(f"the source has no rows at or before --as-of {as_of}; pick a later period")
+        chunk_series = spec.run.chunk_series
+        if settings.gates.series_fdr is not None and series > chunk_series:
+            chunk_series = series
+            notes.append("gates.series_fdr adjusts across all series of a run, so the run used one chunk")
+        n_chunks = -(-series // chunk_series)
+        layout = _layout(spec, source)
+        run_id = run_id_for(spec.name, as_of_value)
+        emit({
+            "event": "start", "job": spec.name, "run_id": run_id, "as_of": as_of_value, "dry_run": dry_run,
+            "source": spec.source.describe(), "target": _target_text(spec), "rows": rows, "series": series,
+            "chunks": n_chunks, "workers": spec.run.workers, "notes": notes,
+        })
+        parts = _forecast_chunks(spec, source, as_of_value, chunk_series, n_chunks, series, emit)
+    run = api.ForecastRun(
+        models=_concat([p.models for p in parts]),
+        gates=_concat([p.gates for p in parts]),
+        residual_acf=_concat([p.residual_acf for p in parts]),
+        forecasts=_concat([p.forecasts for p in parts]),
+        as_of=as_of_value,
+        settings=settings,
+    )
+    total = run.series_total
+    share = run.series_quarantined / total if total else 0.0
+    alarm = share > settings.gates.max_quarantine_share
+    attempt: int | None = None
+    if dry_run:
+        status_note = check_target(spec.publish.database, layout)
+        notes.append(f"dry run: nothing was written; target {status_note}")
+    else:
+        store = DuckDBStore(spec.publish.database, layout)
+        emit({"event": "publish", "run_id": run_id, "target": store.describe()})
+        record = RunRecord(
+            run_id=run_id, job=spec.name, as_of=as_of_value, started_at=started_at, finished_at=_utcnow(),
+            status="alarm" if alarm else "ok", series_total=total, series_published=run.series_published,
+            series_quarantined=run.series_quarantined, quarantine_share=share, on_failure=spec.publish.on_failure,
+            frequency=settings.frequency, horizon=settings.forecast.horizon, coverage=settings.forecast.coverage,
+            source=spec.source.describe(), config_sha256=spec.config_sha256, arflow_version=arflow_version(),
+            reason_counts=run.reason_counts(),
+        )
+        attempt = store.publish(
+            record, models=run.models, gates=run.gates, residual_acf=run.residual_acf, forecasts=run.forecasts,
+            coverage_labels=tuple(coverage_label(c) for c in settings.forecast.coverage),
+        )
+    outcome = JobOutcome(
+        job=spec.name, run_id=run_id, as_of=as_of_value, dry_run=dry_run, rows_read=rows, series_total=total,
+        series_published=run.series_published, series_quarantined=run.series_quarantined,
+        reason_counts=run.reason_counts(), quarantine_share=share,
+        max_quarantine_share=settings.gates.max_quarantine_share, chunks=len(parts),
+        seconds=time.perf_counter() - clock, target=_target_text(spec), attempt=attempt, notes=tuple(notes),
+    )
+    emit({"event": "finish", **outcome_dict(outcome)})
+    return outcome
+
+
+def outcome_dict(outcome: JobOutcome) -> dict[str, Any]:
+    """A JSON-friendly dict of an outcome."""
+    return {
+        "job": outcome.job, "run_id": outcome.run_id, "as_of": outcome.as_of, "dry_run": outcome.dry_run,
+        "attempt": outcome.attempt, "rows_read": outcome.rows_read, "series_total": outcome.series_total,
+        "series_published": outcome.series_published, "series_quarantined": outcome.series_quarantined,
+        "quarantine_share": round(outcome.quarantine_share, 6), "alarm": outcome.alarm,
+        "reason_counts": outcome.reason_counts, "chunks": outcome.chunks, "seconds": round(outcome.seconds, 3),
+        "target": outcome.target, "notes": list(outcome.notes),
+    }
+
+
+def _forecast_chunks(
+    spec: JobSpec, source: DuckDBSource, as_of: Any, chunk_series: int, n_chunks: int, series: int, emit: EventSink
+) -> list[api.ForecastRun]:
+    keys = list(spec.source.keys)
+
+    def fit(frame: pl.DataFrame) -> api.ForecastRun:
+        return api.forecast(frame, keys=keys, period=spec.source.period, value=spec.source.value, settings=spec.settings, as_of=as_of)
+
+    done_series = 0
+    results: list[api.ForecastRun] = []
+
+    def progress(run: api.ForecastRun) -> None:
+        nonlocal done_series
+        results.append(run)
+        done_series += run.series_total
+        emit({"event": "chunk", "chunk": len(results), "chunks": n_chunks, "series_done": done_series, "series_total": series})
+
+    chunks = source.chunks(as_of, chunk_series)
+    if spec.run.workers <= 1:
+        for frame in chunks:
+            progress(fit(frame))
+        return results
+    with ThreadPoolExecutor(max_workers=spec.run.workers) as pool:
+        pending: list[Future[api.ForecastRun]] = []
+        for frame in chunks:
+            pending.append(pool.submit(fit, frame))
+            while len(pending) > spec.run.workers * 2:
+                progress(pending.pop(0).result())
+        for fut in pending:
+            progress(fut.result())
+    return results
+
+
+def _concat(frames: list[pl.DataFrame]) -> pl.DataFrame:
+    frames = [f for f in frames if f.width]
+    if not frames:
+        return pl.DataFrame()
+    non_empty = [f for f in frames if f.height] or frames[:1]
+    return pl.concat(non_empty, how="diagonal_relaxed")
+
+
+def _utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.timezone.utc).replace(tzinfo=None)
+
+
+def prepare_demo(directory: Path, seed: int | None = None) -> Path:
+    """Build the sample warehouse and its job file in ``directory``; returns the job file."""
+    from .sample import generate
+
+    directory.mkdir(parents=True, exist_ok=True)
+    job_path = directory / generate.DEMO_JOB_FILE
+    generate.build_sample_warehouse(directory / generate.DEMO_DATABASE, **({} if seed is None else {"seed": seed}))
+    job_path.write_text(generate.demo_job_text(), encoding="utf-8")
+    return job_path
+
+
+def run_demo(directory: Path, on_event: EventSink | None = None) -> JobOutcome:
+    """``arflow demo``: build the sample warehouse in ``directory`` and run its job."""
+    job_path = prepare_demo(directory)
+    return run_job(load_job(job_path), on_event=on_event)

@@ -1,0 +1,244 @@
+"""The job file (TOML): where the data is, how to model it, where results go.
+
+:func:`load_job` reads a file into a frozen :class:`JobSpec`. Every problem
+(unknown key, wrong type, impossible value, unsafe identifier) raises
+:class:`~arflow.errors.SettingsError` with one line naming the key and what
+is allowed. Relative paths resolve against the job file's folder.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import re
+import tomllib
+from dataclasses import dataclass, fields
+from pathlib import Path
+from typing import Any
+
+from .errors import SettingsError
+from .settings import FREQUENCIES, ForecastSettings, GateSettings, ModelSettings, Settings
+from .warehouse.identifiers import check_identifier, check_qualified
+
+ON_FAILURE_POLICIES = ("keep-previous", "withdraw")
+JOB_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
+
+#: Column names of the output tables; a key column may not reuse one.
+RESERVED_COLUMNS = frozenset(
+    """run_id job as_of stale attempt started_at finished_at status series_total
+    series_published series_quarantined config_sha256 arflow_version on_failure
+    period step forecast transform lags intercept intercept_std_error coefficients
+    std_errors t_stats sigma n_obs r_squared aic bic hqic max_root_modulus stationary
+    mean_reverting_level adf_statistic adf_p_value kpss_statistic kpss_p_value
+    first_period last_period quality_flags decision reasons gate statistic p_value
+    threshold passed lag autocorrelation t_stat""".split()
+)
+
+_SOURCE_KEYS = ("database", "parquet", "table", "query", "keys", "period", "value", "frequency")
+_PUBLISH_KEYS = ("database", "schema", "on_failure")
+_RUN_KEYS = ("chunk_series", "workers")
+_SECTIONS: dict[str, tuple[str, ...]] = {
+    "job": ("name",),
+    "source": _SOURCE_KEYS,
+    "model": tuple(f.name for f in fields(ModelSettings)),
+    "forecast": tuple(f.name for f in fields(ForecastSettings)),
+    "gates": tuple(f.name for f in fields(GateSettings)),
+    "publish": _PUBLISH_KEYS,
+    "run": _RUN_KEYS,
+}
+
+
+@dataclass(frozen=True)
+class SourceSpec:
+    """Where the long-format panel comes from.
+
+    Exactly one of ``database`` (a DuckDB file) and ``parquet`` (path or glob).
+    With a database, exactly one of ``table`` (``("table",)`` or
+    ``("schema", "table")``) and ``query``; with parquet, ``query`` is optional
+    and reads the files as the relation ``source``.
+    """
+
+    keys: tuple[str, ...]
+    period: str
+    value: str
+    database: Path | None = None
+    parquet: str | None = None
+    table: tuple[str, ...] | None = None
+    query: str | None = None
+
+    def describe(self) -> str:
+        """Short human description for logs."""
+        where = str(self.database) if self.database else f"parquet {self.parquet}"
+        what = ".".join(self.table) if self.table else ("query" if self.query else "files")
+        return f"{where} ({what})"
+
+
+@dataclass(frozen=True)
+class PublishSpec:
+    """Where vetted results go and what happens to a series that fails its gates."""
+
+    database: Path
+    schema: str = "arflow"
+    on_failure: str = "keep-previous"
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    """How the work is cut up: series per chunk and parallel workers."""
+
+    chunk_series: int = 50_000
+    workers: int = 1
+
+
+@dataclass(frozen=True)
+class JobSpec:
+    """A parsed, validated job file."""
+
+    name: str
+    source: SourceSpec
+    settings: Settings
+    publish: PublishSpec
+    run: RunOptions
+    config_sha256: str
+    path: Path | None = None
+
+
+def load_job(path: str | Path) -> JobSpec:
+    """Read and validate a job file."""
+    path = Path(path).expanduser()
+    if not path.is_file():
+        raise SettingsError(f"job file {path} not found; check the path")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SettingsError(f"job file {path} cannot be read ({exc}); save it as UTF-8 text") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise SettingsError(f"job file {path} is not valid TOML ({exc}); fix the syntax") from None
+    return parse_job(data, base_dir=path.resolve().parent, path=path)
+
+
+def parse_job(data: dict[str, Any], *, base_dir: Path, path: Path | None = None) -> JobSpec:
+    """Validate a parsed TOML document; relative paths resolve against ``base_dir``."""
+    for section, body in data.items():
+        if section not in _SECTIONS:
+            raise SettingsError(_unknown(f"[{section}]", section, tuple(_SECTIONS), "sections"))
+        if not isinstance(body, dict):
+            raise SettingsError(f"{section} must be a table ([{section}]) in the job file, not a single value")
+        allowed = _SECTIONS[section]
+        for key in body:
+            if key not in allowed:
+                raise SettingsError(_unknown(f"{section}.{key}", key, allowed, f"keys in [{section}]"))
+    job = data.get("job", {})
+    name = _required(job, "job", "name")
+    if not isinstance(name, str) or not JOB_NAME_RE.fullmatch(name):
+        raise SettingsError(
+            f"job.name = {name!r} is not allowed; use 1-64 letters, digits, '_', '-' or '.', starting with a letter or digit"
+        )
+    source, frequency = _parse_source(data.get("source"), base_dir)
+    settings = Settings(
+        frequency=frequency,
+        model=ModelSettings(**_tuples(data.get("model", {}))),
+        forecast=ForecastSettings(**_tuples(data.get("forecast", {}))),
+        gates=GateSettings(**_tuples(data.get("gates", {}))),
+    )
+    publish = _parse_publish(data.get("publish", {}), source, base_dir)
+    run = _parse_run(data.get("run", {}))
+    digest = hashlib.sha256(json.dumps(data, sort_keys=True, default=str).encode()).hexdigest()
+    return JobSpec(name=name, source=source, settings=settings, publish=publish, run=run, config_sha256=digest, path=path)
+
+
+def _unknown(full: str, key: str, allowed: tuple[str, ...], what: str) -> str:
+    close = difflib.get_close_matches(key, allowed, n=1)
+    hint = f"did you mean {close[0]}? " if close else ""
+    return f"unknown {full} in job file; {hint}allowed {what}: {', '.join(allowed)}"
+
+
+def _required(section: dict[str, Any], name: str, key: str) -> Any:
+    if key not in section:
+        raise SettingsError(f"{name}.{key} is missing; add it under [{name}] in the job file")
+    return section[key]
+
+
+def _tuples(section: dict[str, Any]) -> dict[str, Any]:
+    return {k: tuple(v) if isinstance(v, list) else v for k, v in section.items()}
+
+
+def _resolve(value: Any, key: str, base_dir: Path) -> Path:
+    if not isinstance(value, str) or not value.strip():
+        raise SettingsError(f"{key} = {value!r} is not allowed; use a file path as a string")
+    p = Path(value).expanduser()
+    return p if p.is_absolute() else (base_dir / p)
+
+
+def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
+    if section is None:
+        raise SettingsError("[source] is missing; add it with database (or parquet), table (or query), keys, period, value and frequency")
+    has_db, has_pq = "database" in section, "parquet" in section
+    if has_db == has_pq:
+        raise SettingsError("[source] needs exactly one of database (a DuckDB file) and parquet (a path or glob)")
+    database = _resolve(section["database"], "source.database", base_dir) if has_db else None
+    parquet = str(_resolve(section["parquet"], "source.parquet", base_dir)) if has_pq else None
+    table: tuple[str, ...] | None = None
+    query: str | None = None
+    if "table" in section:
+        if has_pq:
+            raise SettingsError("source.table is not used with source.parquet; leave it out (or use query, reading the files as `source`)")
+        table = check_qualified(section["table"], "source.table")
+    if "query" in section:
+        query = section["query"]
+        if not isinstance(query, str) or not query.strip():
+            raise SettingsError("source.query must be a non-empty string holding one SELECT statement")
+        if table is not None:
+            raise SettingsError("[source] takes either table or query, not both; remove one")
+    if has_db and table is None and query is None:
+        raise SettingsError("[source] needs table (e.g. table = \"sales\") or query (one SELECT statement)")
+    keys = _required(section, "source", "keys")
+    if isinstance(keys, str):
+        keys = [keys]
+    if not isinstance(keys, list) or not keys:
+        raise SettingsError(f"source.keys = {keys!r} is not allowed; use a list of column names, e.g. [\"zone\"]")
+    keys_t = tuple(check_identifier(k, "source.keys") for k in keys)
+    period = check_identifier(_required(section, "source", "period"), "source.period")
+    value = check_identifier(_required(section, "source", "value"), "source.value")
+    lowered = [c.lower() for c in (*keys_t, period, value)]
+    if len(set(lowered)) != len(lowered):
+        raise SettingsError("source.keys, source.period and source.value must name different columns")
+    for k in keys_t:
+        if k.lower() in RESERVED_COLUMNS or k.lower().startswith(("lower_", "upper_")):
+            raise SettingsError(
+                f"source.keys: column name {k!r} is used by arflow's output tables; rename it in a [source] query (e.g. SELECT {k} AS {k}_key ...)"
+            )
+    frequency = _required(section, "source", "frequency")
+    if frequency not in FREQUENCIES:
+        raise SettingsError(f"source.frequency = {frequency!r} is not allowed; use " + " / ".join(f'"{f}"' for f in FREQUENCIES))
+    spec = SourceSpec(keys=keys_t, period=period, value=value, database=database, parquet=parquet, table=table, query=query)
+    return spec, frequency
+
+
+def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) -> PublishSpec:
+    if "database" in section:
+        database = _resolve(section["database"], "publish.database", base_dir)
+    elif source.database is not None:
+        database = source.database
+    else:
+        raise SettingsError("publish.database is missing; with a parquet source name the DuckDB file to publish to")
+    schema = check_identifier(section.get("schema", "arflow"), "publish.schema")
+    on_failure = section.get("on_failure", "keep-previous")
+    if on_failure not in ON_FAILURE_POLICIES:
+        raise SettingsError(
+            f"publish.on_failure = {on_failure!r} is not allowed; use " + " / ".join(f'"{p}"' for p in ON_FAILURE_POLICIES)
+        )
+    return PublishSpec(database=database, schema=schema, on_failure=on_failure)
+
+
+def _parse_run(section: dict[str, Any]) -> RunOptions:
+    chunk = section.get("chunk_series", RunOptions.chunk_series)
+    workers = section.get("workers", RunOptions.workers)
+    if not (isinstance(chunk, int) and not isinstance(chunk, bool) and chunk >= 1):
+        raise SettingsError(f"run.chunk_series = {chunk!r} is not allowed; use an integer of at least 1")
+    if not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
+        raise SettingsError(f"run.workers = {workers!r} is not allowed; use an integer from 1 to 256")
+    return RunOptions(chunk_series=chunk, workers=workers)
