@@ -228,6 +228,10 @@ def _adf_chunk(
         cols.append(np.broadcast_to(np.arange(T, dtype=np.float64), (G, T)))
     X = np.stack(cols, axis=2)
     k = X.shape[2]
+    # zero the lag columns a series never uses: a zero column is "degenerate"
+    # to ols.gram (unit diagonal, no coupling), so unused columns of other
+    # series' width cannot make this regression look collinear
+    X[:, :, 1 : kmax + 1] *= np.arange(1, kmax + 1)[None, None, :] <= ml[:, None, None]
     tcol = np.arange(T)[None, :]
     first_dy = (T - n + 1)[:, None]  # first column holding a valid dy_t
     ntrend = 2 if trend else 1
@@ -256,7 +260,8 @@ def _adf_chunk(
                 ic[:, L] = np.where((L <= ml) & ~np.isnan(val), val, np.inf)
             lag = np.argmin(ic, axis=1)
         w = (tcol >= first_dy + lag[:, None]).astype(np.float64)
-        res = ols.fit(X, dy, w, mask_for(lag))
+        m = mask_for(lag)
+        res = ols.fit(X * m[:, None, :], dy, w, m)
         se = res.std_errors[:, 0]
         stat = np.where(se > 0, res.beta[:, 0] / se, np.nan)
     return stat, lag, (n - 1 - lag)
