@@ -12,6 +12,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 import polars as pl
 
 from .settings import Settings
@@ -67,3 +68,61 @@ class ForecastRun:
             return {}
         counts = self.models.select(pl.col("reasons").explode().drop_nulls().value_counts(sort=True)).unnest("reasons")
         return {row[0]: int(row[1]) for row in counts.iter_rows()}
+
+
+def forecast(
+    frame: Any,
+    *,
+    keys: list[str] | str,
+    period: str,
+    value: str,
+    settings: Settings | None = None,
+    as_of: Any = None,
+) -> ForecastRun:
+    """Fit, check, gate and forecast every series of a long frame.
+
+    ``frame`` is a polars DataFrame (or LazyFrame) or a pyarrow Table with one
+    row per series and period. ``keys`` name the columns that identify a
+    series; ``period`` is a Date/Datetime/ISO-text column (or integers with
+    ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
+    or int) ignores later rows; by default it is the latest period present.
+
+    Schema problems raise :class:`arflow.errors.SchemaError`; per-series
+    problems become quarantine reasons.
+
+    >>> import polars as pl, numpy as np, datetime as dt, arflow
+    >>> rng = np.random.default_rng(0); y = np.zeros(120)
+    >>> for t in range(1, 120): y[t] = 0.5 * y[t - 1] + rng.normal()
+    >>> months = pl.date_range(dt.date(2015, 1, 1), dt.date(2024, 12, 1), "1mo", eager=True)
+    >>> df = pl.DataFrame({"site": "north", "month": months, "flow": 50 + y})
+    >>> run = arflow.forecast(df, keys="site", period="month", value="flow")
+    >>> run.models["decision"].to_list(), run.forecasts.height
+    (['published'], 12)
+    """
+    from .core.panel import build_panel
+    from .core.pipeline import run_core
+    from .frames import encode_as_of, result_frames, to_panel_inputs
+
+    settings = settings or Settings()
+    key_list = [keys] if isinstance(keys, str) else list(keys)
+    inp = to_panel_inputs(frame, key_list, period, value, settings.frequency)
+    as_of_ord = encode_as_of(as_of, inp.codec)
+    panel = build_panel(
+        inp.codes,
+        inp.ordinals,
+        inp.values,
+        len(inp.keys),
+        as_of=as_of_ord,
+        min_observations=settings.gates.min_observations,
+    )
+    core = run_core(panel, settings)
+    frames = result_frames(inp, core, settings)
+    as_of_label = inp.codec.decode(np.array([panel.as_of])).item()
+    return ForecastRun(
+        models=frames["models"],
+        gates=frames["gates"],
+        residual_acf=frames["residual_acf"],
+        forecasts=frames["forecasts"],
+        as_of=as_of_label,
+        settings=settings,
+    )

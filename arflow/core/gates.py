@@ -1,0 +1,233 @@
+"""Publish-or-quarantine decisions as a pure function of the diagnostics.
+
+Each gate gives, per series, a statistic, a p-value (where it is a test), the
+threshold it was held to and whether it passed. A series is published only if
+every gate passed; otherwise it is quarantined with one reason code per
+failure. Nothing here computes statistics: it only compares.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+#: Reason codes, in the order they are reported.
+REASONS = (
+    "no_data",
+    "duplicate_periods",
+    "data_gaps",
+    "non_finite_values",
+    "constant_series",
+    "stale_series",
+    "too_short",
+    "fit_failed",
+    "unit_root",
+    "not_stationary",
+    "residual_autocorrelation",
+    "residual_arch",
+    "forecast_out_of_bounds",
+    "worse_than_naive",
+)
+REASON_INDEX = {r: i for i, r in enumerate(REASONS)}
+
+
+@dataclass(frozen=True)
+class GateRow:
+    """One gate over all series: arrays of shape (G,). ``applies`` False rows are not reported."""
+
+    statistic: np.ndarray
+    pvalue: np.ndarray
+    threshold: np.ndarray
+    passed: np.ndarray
+    applies: np.ndarray
+
+
+@dataclass(frozen=True)
+class GateOutcome:
+    """``gates`` maps gate name -> :class:`GateRow`; ``reasons`` (G, len(REASONS)) bool."""
+
+    gates: dict[str, GateRow]
+    reasons: np.ndarray
+
+    @property
+    def published(self) -> np.ndarray:
+        return ~self.reasons.any(axis=1)
+
+    def reason_lists(self) -> list[list[str]]:
+        names = np.array(REASONS, dtype=object)
+        return [list(names[row]) for row in self.reasons]
+
+
+class GateBuilder:
+    """Collects gate rows and reason bits; see :func:`arflow.core.pipeline.run_core`."""
+
+    def __init__(self, n_series: int) -> None:
+        self.G = n_series
+        self.rows: dict[str, GateRow] = {}
+        self.reasons = np.zeros((n_series, len(REASONS)), dtype=bool)
+
+    def _full(self, v, dtype=np.float64) -> np.ndarray:
+        return np.broadcast_to(np.asarray(v, dtype=dtype), (self.G,)).copy()
+
+    def add(
+        self,
+        gate: str,
+        passed: np.ndarray,
+        statistic=np.nan,
+        pvalue=np.nan,
+        threshold=np.nan,
+        applies=True,
+        reason: str | None = None,
+    ) -> None:
+        passed = self._full(passed, bool)
+        applies = self._full(applies, bool)
+        self.rows[gate] = GateRow(
+            self._full(statistic), self._full(pvalue), self._full(threshold), passed | ~applies, applies
+        )
+        if reason is not None:
+            self.flag(reason, applies & ~passed)
+
+    def flag(self, reason: str, where: np.ndarray) -> None:
+        self.reasons[:, REASON_INDEX[reason]] |= np.asarray(where, dtype=bool)
+
+    def outcome(self) -> GateOutcome:
+        return GateOutcome(self.rows, self.reasons)
+
+
+@dataclass(frozen=True)
+class GateInputs:
+    """What the gates look at, per series (arrays of shape (G,))."""
+
+    flags: np.ndarray  # data-quality bits from the panel
+    n: np.ndarray  # length of the fitted run
+    stale_periods: np.ndarray  # as_of - last observed period
+    fitted: np.ndarray
+    unit_root: np.ndarray  # judged to carry a unit root
+    differenced: np.ndarray  # modelled on first differences
+    adf_statistic: np.ndarray
+    adf_pvalue: np.ndarray
+    max_root_modulus: np.ndarray
+    residual_statistic: np.ndarray
+    residual_pvalue: np.ndarray
+    forecast_min: np.ndarray
+    forecast_max: np.ndarray
+    forecast_finite: np.ndarray
+    arch_statistic: np.ndarray | None = None
+    arch_pvalue: np.ndarray | None = None
+    naive_statistic: np.ndarray | None = None  # model RMSE / naive RMSE
+    naive_threshold: float | None = None
+
+
+def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off") -> GateOutcome:
+    """Decide publish or quarantine for every series.
+
+    ``gates`` is a :class:`arflow.settings.GateSettings`. ``unit_root_policy``
+    is the model setting (``"difference"``, ``"quarantine"``, ``"ignore"``).
+    ``naive_mode``: ``"off"``, ``"warn"`` (recorded, never quarantines) or
+    ``"enforce"``.
+    """
+    from .panel import (
+        CONSTANT,
+        DUPLICATE_PERIODS,
+        INTERNAL_GAPS,
+        NO_DATA,
+        NON_FINITE_VALUES,
+    )
+
+    G = len(x.n)
+    b = GateBuilder(G)
+    f = x.flags
+    no_data = (f & NO_DATA) != 0
+    dup = ((f & DUPLICATE_PERIODS) != 0) & (not gates.allow_duplicates)
+    gaps = ((f & INTERNAL_GAPS) != 0) & (not gates.allow_gaps)
+    nonfin = ((f & NON_FINITE_VALUES) != 0) & (not gates.allow_gaps)
+    const = (f & CONSTANT) != 0
+    stale = x.stale_periods > gates.max_stale_periods
+    b.flag("no_data", no_data)
+    b.flag("duplicate_periods", dup)
+    b.flag("data_gaps", gaps)
+    b.flag("non_finite_values", nonfin)
+    b.flag("constant_series", const)
+    b.flag("stale_series", stale & ~no_data)
+    problems = no_data.astype(int) + dup + gaps + nonfin + const + (stale & ~no_data)
+    b.add("data_quality", problems == 0, statistic=problems, threshold=0)
+
+    short = (x.n < gates.min_observations) & ~no_data
+    b.add("min_observations", ~short, statistic=x.n, threshold=gates.min_observations, reason="too_short")
+    # a series long enough for the gate but not for its model
+    b.flag("fit_failed", ~x.fitted & ~short & ~no_data & ~const)
+
+    fitted = x.fitted
+    if unit_root_policy == "quarantine":
+        ur_pass = ~x.unit_root
+    else:
+        ur_pass = np.ones(G, dtype=bool)
+    b.add(
+        "unit_root",
+        ur_pass,
+        statistic=x.adf_statistic,
+        pvalue=x.adf_pvalue,
+        threshold=np.nan,
+        applies=fitted & np.isfinite(x.adf_statistic),
+        reason="unit_root",
+    )
+    if gates.require_stationary:
+        b.add(
+            "stationarity",
+            x.max_root_modulus < 1.0,
+            statistic=x.max_root_modulus,
+            threshold=1.0,
+            applies=fitted,
+            reason="not_stationary",
+        )
+    p = x.residual_pvalue
+    b.add(
+        "residual_autocorrelation",
+        ~(p < gates.alpha),
+        statistic=x.residual_statistic,
+        pvalue=p,
+        threshold=gates.alpha,
+        applies=fitted,
+        reason="residual_autocorrelation",
+    )
+    if gates.arch_test and x.arch_pvalue is not None:
+        b.add(
+            "residual_arch",
+            ~(x.arch_pvalue < gates.alpha),
+            statistic=x.arch_statistic,
+            pvalue=x.arch_pvalue,
+            threshold=gates.alpha,
+            applies=fitted,
+            reason="residual_arch",
+        )
+    b.flag("fit_failed", fitted & ~x.forecast_finite)
+    if gates.lower_bound is not None:
+        b.add(
+            "forecast_lower_bound",
+            ~(x.forecast_min < gates.lower_bound),
+            statistic=x.forecast_min,
+            threshold=gates.lower_bound,
+            applies=fitted,
+            reason="forecast_out_of_bounds",
+        )
+    if gates.upper_bound is not None:
+        b.add(
+            "forecast_upper_bound",
+            ~(x.forecast_max > gates.upper_bound),
+            statistic=x.forecast_max,
+            threshold=gates.upper_bound,
+            applies=fitted,
+            reason="forecast_out_of_bounds",
+        )
+    if naive_mode != "off" and x.naive_statistic is not None:
+        ok = ~(x.naive_statistic > x.naive_threshold)
+        b.add(
+            "beats_naive",
+            ok if naive_mode == "enforce" else np.ones(G, dtype=bool),
+            statistic=x.naive_statistic,
+            threshold=x.naive_threshold,
+            applies=fitted & np.isfinite(x.naive_statistic),
+            reason="worse_than_naive",
+        )
+    return b.outcome()

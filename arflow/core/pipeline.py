@@ -1,0 +1,138 @@
+"""The core run on one panel: fit -> unit roots -> diagnostics -> forecasts -> gates.
+
+Pure arrays in and out; the frame adapters key the results back to the user's
+columns. Everything is batched over series.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..settings import Settings
+from . import autoreg, diagnostics, gates, unitroot
+from .forecast import Forecasts, forecast_ar
+from .panel import CONSTANT, NO_DATA, Panel
+
+
+@dataclass(frozen=True)
+class CoreResult:
+    """Everything computed for one panel (arrays lead with the series axis)."""
+
+    panel: Panel
+    fit: autoreg.ARFit
+    differenced: np.ndarray
+    unit_root: np.ndarray
+    adf: unitroot.AdfResult
+    kpss: unitroot.KpssResult
+    acf: diagnostics.AcfResult
+    residual_test: diagnostics.TestResult
+    arch: diagnostics.TestResult | None
+    forecasts: Forecasts
+    outcome: gates.GateOutcome
+
+
+def _diff_right_aligned(Y: np.ndarray) -> np.ndarray:
+    """First differences, right-aligned, same width (one more leading NaN)."""
+    D = np.full_like(Y, np.nan)
+    D[:, 1:] = Y[:, 1:] - Y[:, :-1]
+    return D
+
+
+def residual_test(fit: autoreg.ARFit, modelled: np.ndarray, acf: diagnostics.AcfResult, settings: Settings):
+    """The configured residual autocorrelation test, one p-value per series."""
+    g = settings.gates
+    K = g.residual_lags
+    if g.residual_test == "ljung-box":
+        return diagnostics.ljung_box(acf, K, model_df=fit.n_lags)
+    if g.residual_test == "breusch-godfrey":
+        X = np.nan_to_num(autoreg.lag_design(modelled, fit.lags))
+        return diagnostics.breusch_godfrey(fit.resid, X, fit.lag_mask, K)
+    # per-lag t tests, Holm step-down across lags unless switched off
+    p = acf.pvalue
+    if g.lag_correction == "holm":
+        p = diagnostics.holm(p)
+    with np.errstate(invalid="ignore"):
+        pmin = np.where(np.all(np.isnan(p), axis=1), np.nan, np.nanmin(np.where(np.isnan(p), np.inf, p), axis=1))
+        tmax = np.nanmax(np.where(np.isnan(acf.t_stat), -np.inf, np.abs(acf.t_stat)), axis=1)
+    tmax = np.where(np.isfinite(tmax), tmax, np.nan)
+    return diagnostics.TestResult(tmax, pmin, np.full(len(pmin), float(K)))
+
+
+def run_core(panel: Panel, settings: Settings) -> CoreResult:
+    """Run the statistical core on a panel with the given settings."""
+    ms, gs, fs = settings.model, settings.gates, settings.forecast
+    Y = panel.values
+    G = Y.shape[0]
+    seasonal = ms.seasonal_for(settings.frequency)
+    usable = (panel.n >= max(gs.min_observations, 3)) & ((panel.flags & (NO_DATA | CONSTANT)) == 0)
+    fit_kw = dict(
+        order=ms.order,
+        max_order=ms.max_order,
+        criterion=ms.criterion,
+        seasonal_lag=seasonal,
+        seasonal_alpha=ms.seasonal_alpha,
+    )
+    fit = autoreg.fit_ar(Y, fit_mask=usable, **fit_kw)
+
+    # ---- unit roots on levels -------------------------------------------------------
+    Yu = np.where(fit.fitted[:, None], Y, np.nan)
+    adf = unitroot.adf(Yu, criterion=ms.criterion)
+    kp = unitroot.kpss(Yu)
+    with np.errstate(invalid="ignore"):
+        persistence = np.nansum(fit.coef, axis=1)
+        persistent = persistence >= 1.0 - ms.unit_root_bias / np.maximum(fit.n_obs, 1)
+        unit_root = fit.fitted & (adf.pvalue > ms.unit_root_alpha) & persistent
+    differenced = np.zeros(G, dtype=bool)
+    modelled = Y
+    if ms.unit_root == "difference" and unit_root.any():
+        idx = np.flatnonzero(unit_root)
+        D = _diff_right_aligned(Y[idx])
+        sub = autoreg.fit_ar(D, **fit_kw)
+        fit = autoreg.splice(fit, sub, idx)
+        differenced[idx] = True
+        modelled = Y.copy()
+        modelled[idx] = D
+
+    # ---- residual diagnostics -------------------------------------------------------------
+    acf = diagnostics.residual_acf(fit.resid, gs.residual_lags)
+    rtest = residual_test(fit, modelled, acf, settings)
+    rp = rtest.pvalue
+    if gs.series_fdr is not None:
+        rp = diagnostics.benjamini_hochberg(np.where(fit.fitted, rp, np.nan))
+        rtest = diagnostics.TestResult(rtest.statistic, rp, rtest.df)
+    arch = diagnostics.arch_lm(fit.resid, gs.arch_lags) if gs.arch_test else None
+
+    # ---- forecasts -------------------------------------------------------------------------------
+    fc = forecast_ar(
+        np.nan_to_num(Y[:, -max(int(fit.lags.max()), 1) - 1 :]) if Y.shape[1] else np.zeros((G, 1)),
+        np.nan_to_num(fit.intercept),
+        np.nan_to_num(fit.phi()),
+        np.nan_to_num(fit.sigma),
+        fs.horizon,
+        fs.coverage,
+        differenced,
+    )
+    finite = np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
+
+    inputs = gates.GateInputs(
+        flags=panel.flags,
+        n=panel.n,
+        stale_periods=panel.as_of - panel.last_period,
+        fitted=fit.fitted,
+        unit_root=unit_root,
+        differenced=differenced,
+        adf_statistic=adf.statistic,
+        adf_pvalue=adf.pvalue,
+        max_root_modulus=fit.max_root_modulus,
+        residual_statistic=rtest.statistic,
+        residual_pvalue=rp,
+        forecast_min=fc.mean.min(axis=1) if fs.horizon else np.full(G, np.nan),
+        forecast_max=fc.mean.max(axis=1) if fs.horizon else np.full(G, np.nan),
+        forecast_finite=finite,
+        arch_statistic=None if arch is None else arch.statistic,
+        arch_pvalue=None if arch is None else arch.pvalue,
+    )
+    outcome = gates.decide(inputs, gs, ms.unit_root)
+    return CoreResult(panel, fit, differenced, unit_root, adf, kp, acf, rtest, arch, fc, outcome)

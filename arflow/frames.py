@@ -1,0 +1,333 @@
+"""Frame adapter: long polars/Arrow frames <-> the core's arrays.
+
+In: key columns, a period column (Date, Datetime, ISO date text, or integer
+steps) and a numeric value column become series codes, integer period
+ordinals on the declared frequency and float values. Out: the core's arrays
+become polars DataFrames keyed by the user's own key columns.
+
+Period labels: monthly, quarterly and yearly periods are labelled by their
+first day, or by their last day when every input date is a period end (so
+forecasts join to actuals labelled the same way). Weekly periods keep the
+weekday the input uses.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import polars as pl
+import pyarrow as pa
+
+from .core import gates as core_gates
+from .core.panel import QUALITY_FLAG_NAMES
+from .core.pipeline import CoreResult
+from .errors import SchemaError, SourceError
+from .settings import coverage_label
+
+_EPOCH = _dt.date(1970, 1, 1)
+
+
+@dataclass(frozen=True)
+class PeriodCodec:
+    """Maps period labels to integer ordinals on a frequency and back."""
+
+    frequency: str
+    anchor: str = "start"  # "start" | "end" (month/quarter/year)
+    weekday_offset: int = 0  # week: days since epoch modulo 7 of the labels
+    dtype: Any = pl.Date
+
+    def encode(self, s: pl.Series) -> np.ndarray:
+        f = self.frequency
+        if f == "step":
+            return s.cast(pl.Int64).to_numpy()
+        if f == "day":
+            return s.cast(pl.Int32).cast(pl.Int64).to_numpy()
+        if f == "week":
+            days = s.cast(pl.Int32).cast(pl.Int64).to_numpy()
+            return (days - self.weekday_offset) // 7
+        year = s.dt.year().cast(pl.Int64).to_numpy()
+        month = s.dt.month().cast(pl.Int64).to_numpy()
+        if f == "month":
+            return year * 12 + month - 1
+        if f == "quarter":
+            return year * 4 + (month - 1) // 3
+        return year  # year
+
+    def decode(self, ordinals: np.ndarray) -> pl.Series:
+        o = np.asarray(ordinals, dtype=np.int64)
+        f = self.frequency
+        if f == "step":
+            return pl.Series("period", o).cast(self.dtype)
+        if f in ("day", "week"):
+            days = o if f == "day" else o * 7 + self.weekday_offset
+            return pl.Series("period", days.astype(np.int32)).cast(pl.Date)
+        if f == "month":
+            year, month = o // 12, o % 12 + 1
+        elif f == "quarter":
+            year, month = o // 4, (o % 4) * 3 + 1
+        else:
+            year, month = o, np.ones_like(o)
+        df = pl.DataFrame({"y": year.astype(np.int32), "m": month.astype(np.int8)})
+        start = df.select(pl.date(pl.col("y"), pl.col("m"), 1).alias("period")).to_series()
+        if self.anchor == "end":
+            step = {"month": "1mo", "quarter": "3mo", "year": "1y"}[f]
+            start = start.dt.offset_by(step).dt.offset_by("-1d")
+        return start
+
+
+@dataclass(frozen=True)
+class PanelInputs:
+    """Flat arrays for :func:`arflow.core.panel.build_panel` plus what is needed to key results."""
+
+    keys: pl.DataFrame  # G rows, one per series, in code order
+    codes: np.ndarray
+    ordinals: np.ndarray
+    values: np.ndarray
+    codec: PeriodCodec
+
+
+def _as_polars(frame: Any) -> pl.DataFrame:
+    if isinstance(frame, pl.DataFrame):
+        return frame
+    if isinstance(frame, pl.LazyFrame):
+        return frame.collect()
+    if isinstance(frame, (pa.Table, pa.RecordBatch)):
+        return pl.from_arrow(frame)
+    raise SchemaError(f"expected a polars DataFrame or pyarrow Table, got {type(frame).__name__}")
+
+
+def _require(df: pl.DataFrame, col: str, role: str) -> None:
+    if col not in df.columns:
+        raise SchemaError(
+            f"source has no {role} column {col!r}; available columns: {', '.join(df.columns) or '(none)'}"
+        )
+
+
+def _period_series(df: pl.DataFrame, period: str, frequency: str) -> pl.Series:
+    s = df.get_column(period)
+    dt = s.dtype
+    if frequency == "step":
+        if not dt.is_integer():
+            raise SchemaError(
+                f"period column {period!r} must hold integers for frequency 'step', found {dt}; "
+                "cast it or choose a calendar frequency"
+            )
+        return s
+    if dt == pl.Date:
+        return s
+    if isinstance(dt, pl.Datetime):
+        return s.dt.date()
+    if dt == pl.String:
+        parsed = s.str.to_date(strict=False)
+        bad = parsed.is_null() & s.is_not_null()
+        if bad.any():
+            example = s.filter(bad)[0]
+            raise SchemaError(
+                f"period column {period!r} has a value that is not an ISO date ({example!r}); "
+                "use YYYY-MM-DD text or a DATE column"
+            )
+        return parsed
+    raise SchemaError(
+        f"period column {period!r} must be a DATE, TIMESTAMP or ISO date text for frequency "
+        f"{frequency!r}, found {dt}; cast it, or use frequency 'step' for integer periods"
+    )
+
+
+def _codec_for(s: pl.Series, frequency: str) -> PeriodCodec:
+    if frequency == "step":
+        return PeriodCodec("step", dtype=s.dtype)
+    if frequency == "day":
+        return PeriodCodec("day")
+    if frequency == "week":
+        rem = (s.cast(pl.Int32).cast(pl.Int64) % 7).unique()
+        if len(rem) > 1:
+            raise SchemaError(
+                "weekly periods fall on different weekdays; label each week by the same weekday "
+                "(e.g. its Monday) or use frequency 'day'"
+            )
+        return PeriodCodec("week", weekday_offset=int(rem[0]) if len(rem) else 0)
+    is_end = s.dt.month_end() == s if frequency == "month" else None
+    if frequency == "quarter":
+        is_end = (s.dt.month_end() == s) & (s.dt.month() % 3 == 0)
+    if frequency == "year":
+        is_end = (s.dt.month() == 12) & (s.dt.day() == 31)
+    anchor = "end" if len(s) and bool(is_end.all()) else "start"
+    return PeriodCodec(frequency, anchor=anchor)
+
+
+def encode_as_of(as_of: Any, codec: PeriodCodec) -> int | None:
+    """The as-of period (a date, ISO text, or an int for 'step') as an ordinal."""
+    if as_of is None:
+        return None
+    if codec.frequency == "step":
+        try:
+            return int(as_of)
+        except (TypeError, ValueError):
+            raise SchemaError(f"as-of {as_of!r} must be an integer period for frequency 'step'") from None
+    if isinstance(as_of, _dt.datetime):
+        as_of = as_of.date()
+    if isinstance(as_of, str):
+        try:
+            as_of = _dt.date.fromisoformat(as_of.strip())
+        except ValueError:
+            raise SchemaError(f"as-of {as_of!r} is not an ISO date; use YYYY-MM-DD") from None
+    if not isinstance(as_of, _dt.date):
+        raise SchemaError(f"as-of {as_of!r} must be a date (YYYY-MM-DD)")
+    s = pl.Series([as_of])
+    if codec.frequency == "week":
+        # any day of the week counts as that week
+        days = (as_of - _EPOCH).days
+        return int((days - codec.weekday_offset) // 7)
+    return int(codec.encode(s)[0])
+
+
+def to_panel_inputs(frame: Any, keys: list[str], period: str, value: str, frequency: str) -> PanelInputs:
+    """Validate a long frame and flatten it for the core; schema problems raise one clear error."""
+    df = _as_polars(frame)
+    if not keys:
+        raise SchemaError("no key columns given; name at least one column that identifies a series")
+    for k in keys:
+        _require(df, k, "key")
+    _require(df, period, "period")
+    _require(df, value, "value")
+    if df.height == 0:
+        raise SourceError("the source returned no rows; check the table, query or as-of period")
+    vdt = df.schema[value]
+    if not (vdt.is_numeric() or vdt == pl.Null):
+        raise SchemaError(f"value column {value!r} must be numeric, found {vdt}; cast it in the source query")
+    for k in keys:
+        nulls = df.get_column(k).null_count()
+        if nulls:
+            raise SourceError(f"key column {k!r} has {nulls} NULL value(s); filter or fill them in the source")
+    ps = _period_series(df, period, frequency)
+    if ps.null_count():
+        raise SourceError(f"period column {period!r} has {ps.null_count()} NULL value(s); filter them in the source")
+    codec = _codec_for(ps, frequency)
+    ordinals = codec.encode(ps)
+    values = df.get_column(value).cast(pl.Float64).fill_null(float("nan")).to_numpy()
+    key_df = df.select(keys)
+    if len(keys) == 1:
+        codes_s = key_df.get_column(keys[0]).rank("dense")
+    else:
+        codes_s = key_df.select(pl.struct(keys).rank("dense")).to_series()
+    codes = codes_s.cast(pl.Int64).to_numpy() - 1
+    G = int(codes.max()) + 1
+    first_row = np.full(G, len(codes), dtype=np.int64)
+    np.minimum.at(first_row, codes, np.arange(len(codes)))
+    uniq = key_df[first_row]
+    return PanelInputs(uniq, codes, ordinals, values, codec)
+
+
+# ------------------------------------------------------------------------------------- out
+
+
+def _list_column(name: str, mask: np.ndarray, values: np.ndarray, pa_type: pa.DataType) -> pl.Series:
+    """(G, K) mask + (G, K) values -> a list column of the masked values per row."""
+    counts = mask.sum(axis=1)
+    offsets = np.zeros(len(counts) + 1, dtype=np.int32)
+    np.cumsum(counts, out=offsets[1:])
+    flat = values[mask]
+    arr = pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), pa.array(flat, pa_type))
+    return pl.Series(name, arr)
+
+
+def _nullable(a: np.ndarray) -> pl.Series:
+    s = pl.Series(a)
+    return s.fill_nan(None) if s.dtype.is_float() else s
+
+
+def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.DataFrame]:
+    """Key the core's arrays back to the user's columns."""
+    fit, out, G = res.fit, res.outcome, res.panel.n_series
+    keys = inp.keys
+    K = len(fit.lags)
+    lagmat = np.broadcast_to(fit.lags, (G, K))
+    published = out.published
+    flag_bits = np.array(list(QUALITY_FLAG_NAMES), dtype=np.int64)
+    flag_mask = (res.panel.flags[:, None] & flag_bits[None, :]) != 0
+    flag_names = np.array(list(QUALITY_FLAG_NAMES.values()), dtype=object)
+    reason_names = np.array(core_gates.REASONS, dtype=object)
+    codec = inp.codec
+    models = keys.with_columns(
+        pl.Series("transform", np.where(res.differenced, "difference", "level")),
+        _list_column("lags", fit.lag_mask, lagmat, pa.int32()),
+        _nullable(fit.intercept).alias("intercept"),
+        _nullable(fit.intercept_se).alias("intercept_std_error"),
+        _list_column("coefficients", fit.lag_mask, fit.coef, pa.float64()),
+        _list_column("std_errors", fit.lag_mask, fit.std_err, pa.float64()),
+        _list_column("t_stats", fit.lag_mask, fit.t_stat, pa.float64()),
+        _nullable(fit.sigma).alias("sigma"),
+        pl.Series("n_obs", fit.n_obs.astype(np.int64)),
+        _nullable(fit.r_squared).alias("r_squared"),
+        _nullable(fit.aic).alias("aic"),
+        _nullable(fit.bic).alias("bic"),
+        _nullable(fit.hqic).alias("hqic"),
+        _nullable(fit.max_root_modulus).alias("max_root_modulus"),
+        pl.Series("stationary", fit.stationary),
+        _nullable(fit.mean_level).alias("mean_reverting_level"),
+        _nullable(res.adf.statistic).alias("adf_statistic"),
+        _nullable(res.adf.pvalue).alias("adf_p_value"),
+        _nullable(res.kpss.statistic).alias("kpss_statistic"),
+        _nullable(res.kpss.pvalue).alias("kpss_p_value"),
+        codec.decode(res.panel.first_period).alias("first_period"),
+        codec.decode(res.panel.last_period).alias("last_period"),
+        _list_column("quality_flags", flag_mask, np.broadcast_to(flag_names, flag_mask.shape), pa.string()),
+        pl.Series("decision", np.where(published, "published", "quarantined")),
+        _list_column("reasons", out.reasons, np.broadcast_to(reason_names, out.reasons.shape), pa.string()),
+    )
+    # the level of a differenced model is a random walk with drift: no mean-reverting level
+    models = models.with_columns(
+        pl.when(pl.col("transform") == "difference").then(None).otherwise(pl.col("mean_reverting_level"))
+        .alias("mean_reverting_level")
+    )
+
+    # gates: long, one row per series and applicable gate
+    parts = []
+    for name, row in out.gates.items():
+        idx = np.flatnonzero(row.applies)
+        if not len(idx):
+            continue
+        parts.append(
+            keys[idx].with_columns(
+                pl.lit(name).alias("gate"),
+                _nullable(row.statistic[idx]).alias("statistic"),
+                _nullable(row.pvalue[idx]).alias("p_value"),
+                _nullable(row.threshold[idx]).alias("threshold"),
+                pl.Series("passed", row.passed[idx]),
+            )
+        )
+    gate_schema = {"gate": pl.String, "statistic": pl.Float64, "p_value": pl.Float64, "threshold": pl.Float64, "passed": pl.Boolean}
+    gates_df = pl.concat(parts) if parts else keys.clear().with_columns(
+        *[pl.Series(c, [], dtype=t) for c, t in gate_schema.items()]
+    )
+
+    # residual autocorrelations of fitted series
+    fitted = np.flatnonzero(fit.fitted)
+    Kacf = res.acf.acf.shape[1]
+    rep = np.repeat(fitted, Kacf)
+    acf = keys[rep].with_columns(
+        pl.Series("lag", np.tile(np.arange(1, Kacf + 1, dtype=np.int32), len(fitted))),
+        _nullable(res.acf.acf[fitted].ravel()).alias("autocorrelation"),
+        _nullable(res.acf.t_stat[fitted].ravel()).alias("t_stat"),
+        _nullable(res.acf.pvalue[fitted].ravel()).alias("p_value"),
+    ).filter(pl.col("autocorrelation").is_not_null())
+
+    # forecasts of published series only
+    pub = np.flatnonzero(published)
+    H = res.forecasts.mean.shape[1]
+    rep = np.repeat(pub, H)
+    steps = np.tile(np.arange(1, H + 1, dtype=np.int64), len(pub))
+    cols = [
+        codec.decode(res.panel.last_period[rep] + steps).alias("period"),
+        pl.Series("step", steps.astype(np.int32)),
+        pl.Series("forecast", res.forecasts.mean[pub].ravel()),
+    ]
+    for ci, level in enumerate(res.forecasts.coverage):
+        lab = coverage_label(level)
+        cols.append(pl.Series(f"lower_{lab}", res.forecasts.lower[ci][pub].ravel()))
+        cols.append(pl.Series(f"upper_{lab}", res.forecasts.upper[ci][pub].ravel()))
+    fc = keys[rep].with_columns(*cols)
+    return {"models": models, "gates": gates_df, "residual_acf": acf, "forecasts": fc}
