@@ -144,21 +144,27 @@ def _fmt_period(value: Any) -> str:
 
 
 def _summary(outcome: Any) -> str:
-    total = outcome.series_total
+    def row(label: str, value: str, note: str = "") -> str:
+        return f"  {label:<26}{value:>9}" + (f"   {note}" if note else "")
+
+    head = f"arflow {'dry run' if outcome.dry_run else 'run'} {outcome.job} as of {_fmt_period(outcome.as_of)}"
+    if not outcome.dry_run:
+        head += f"  (run id {outcome.run_id}, attempt {outcome.attempt})"
     lines = [
-        f"arflow {'dry run' if outcome.dry_run else 'run'} {outcome.job} as of {_fmt_period(outcome.as_of)}"
-        + ("" if outcome.dry_run else f"  (run id {outcome.run_id}, attempt {outcome.attempt})"),
-        f"  series read        {total:>9,}   ({outcome.rows_read:,} rows, {outcome.chunks} chunk{'s' if outcome.chunks != 1 else ''})",
-        f"  published          {outcome.series_published:>9,}",
-        f"  quarantined        {outcome.series_quarantined:>9,}   ({100 * outcome.quarantine_share:.1f}% of series; alarm above {100 * outcome.max_quarantine_share:g}%)",
+        head,
+        row("series read", f"{outcome.series_total:,}",
+            f"({outcome.rows_read:,} rows, {outcome.chunks} chunk{'s' if outcome.chunks != 1 else ''})"),
+        row("would publish" if outcome.dry_run else "published", f"{outcome.series_published:,}"),
+        row("would quarantine" if outcome.dry_run else "quarantined", f"{outcome.series_quarantined:,}",
+            f"({100 * outcome.quarantine_share:.1f}% of series; alarm above {100 * outcome.max_quarantine_share:g}%)"),
     ]
     for reason, count in sorted(outcome.reason_counts.items(), key=lambda kv: (-kv[1], kv[0])):
-        lines.append(f"    {reason:<24}{count:>7,}")
-    lines.append(f"  time taken         {outcome.seconds:>9.1f} s")
+        lines.append(row("  " + reason, f"{count:,}"))
+    lines.append(row("time taken", f"{outcome.seconds:.1f} s"))
     if outcome.dry_run:
-        lines.append(f"  results            not written (dry run); would go to {outcome.target}")
+        lines.append(f"  {'results':<26}not written (dry run); would go to {outcome.target}")
     else:
-        lines.append(f"  results            {outcome.target}")
+        lines.append(f"  {'results':<26}{outcome.target}")
     lines.extend(f"  note: {n}" for n in outcome.notes)
     return "\n".join(lines) + "\n"
 
@@ -218,8 +224,8 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
     code = _finish(outcome, reporter)
     if not reporter.json:
         reporter.out.write(
-            f"  job file           {directory / 'demo_job.toml'}\n"
-            f"  try                arflow run {directory / 'demo_job.toml'} --as-of 2024-12 --dry-run\n"
+            f"  {'job file':<26}{directory / 'demo_job.toml'}\n"
+            f"  {'try next':<26}arflow run {directory / 'demo_job.toml'} --as-of 2024-12 --dry-run\n"
         )
     return code
 
