@@ -81,3 +81,38 @@ def default_job(database: str = "warehouse.duckdb", table: str = "readings", nam
         "gates": {"alpha": 0.01, "min_observations": 24, "max_quarantine_share": 0.9},
         "publish": {"schema": "arflow", "on_failure": "keep-previous"},
     }
+
+
+def mixed_panel(n_clean: int = 6, n_periods: int = 96, seed: int = 11) -> pl.DataFrame:
+    """Clean AR(1) sites ``s01``.. plus one site per problem.
+
+    ``short`` (12 months), ``flat`` (constant), ``dup`` (one month twice) and
+    ``lag6`` (dependence at lag 6 that a low-order AR leaves in the residuals).
+    """
+    start = dt.date(2019, 1, 1)
+    calendar = months(start, n_periods)
+    short = ar_panel(1, 12, seed=seed + 1, start=calendar[-12]).with_columns(site=pl.lit("short"))
+    flat = pl.DataFrame({"site": ["flat"] * n_periods, "month": calendar, "reading": [50.0] * n_periods})
+    dup = ar_panel(1, n_periods, seed=seed + 2, start=start).with_columns(site=pl.lit("dup"))
+    dup = pl.concat([dup, dup[n_periods // 2: n_periods // 2 + 1]])
+    rng = np.random.default_rng(seed + 3)
+    x = np.zeros(n_periods + 100)
+    for t in range(6, len(x)):
+        x[t] = 0.85 * x[t - 6] + rng.normal()
+    lag6 = pl.DataFrame({"site": ["lag6"] * n_periods, "month": calendar, "reading": (100 + 5 * x[-n_periods:]).round(4)})
+    clean = ar_panel(n_clean, n_periods, seed=seed, start=start)
+    return pl.concat([clean, short, flat, dup, lag6]).sort("site", "month", maintain_order=True)
+
+
+def warehouse_state(database: str | Path, schema: str = "arflow") -> dict[str, list[tuple[Any, ...]]]:
+    """Every row of every table and view in ``schema`` (sorted), to compare before/after a run."""
+    if not Path(database).exists():
+        return {}
+    con = duckdb.connect(str(database), read_only=True)
+    try:
+        names = [r[0] for r in con.execute(
+            "SELECT table_name FROM information_schema.tables WHERE table_schema = ? ORDER BY 1", [schema]
+        ).fetchall()]
+        return {n: con.execute(f'SELECT * FROM "{schema}"."{n}" ORDER BY ALL').fetchall() for n in names}
+    finally:
+        con.close()
