@@ -78,13 +78,21 @@ class RunRecord:
 
 
 def _fault_point(name: str) -> None:
-    """Test-only hooks: fail or pause inside the transaction after writing ``name``."""
+    """Test-only hooks, inside the transaction after writing ``name``.
+
+    ``ARFLOW_TEST_FAIL_AFTER=name`` raises; ``ARFLOW_TEST_PAUSE_AFTER=name``
+    prints a marker line on stderr and waits (at most 60 s) until the file
+    named by ``ARFLOW_TEST_RESUME_FILE`` exists.
+    """
     if os.environ.get("ARFLOW_TEST_FAIL_AFTER") == name:
         raise RuntimeError(f"test fault injected after writing {name}")
     if os.environ.get("ARFLOW_TEST_PAUSE_AFTER") == name:
         sys.stderr.write(f"arflow-test: paused after {name}\n")
         sys.stderr.flush()
-        time.sleep(float(os.environ.get("ARFLOW_TEST_PAUSE_SECONDS", "30")))
+        resume = os.environ.get("ARFLOW_TEST_RESUME_FILE")
+        deadline = time.monotonic() + 60.0
+        while time.monotonic() < deadline and not (resume and Path(resume).exists()):
+            time.sleep(0.02)
 
 
 def load_sql(name: str) -> str:
