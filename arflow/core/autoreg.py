@@ -68,6 +68,7 @@ class ARFit:
     max_root_modulus: np.ndarray
     stationary: np.ndarray
     mean_level: np.ndarray
+    persistence_se: np.ndarray
     resid: np.ndarray
     fitted: np.ndarray
 
@@ -89,14 +90,19 @@ class ARFit:
         return out
 
 
-def lag_design(Y: np.ndarray, lags: np.ndarray) -> np.ndarray:
-    """(G, T, K) matrix whose column j at row t is ``Y[:, t - lags[j]]`` (NaN before the start)."""
+def lag_design(Y: np.ndarray, lags: np.ndarray, fill: float = np.nan) -> np.ndarray:
+    """(G, T, K) matrix whose column j at row t is ``Y[:, t - lags[j]]`` (``fill`` before the start).
+
+    Returned as a transposed view of a (G, K, T) array: the layout in which
+    the batched cross-products run fastest.
+    """
     G, T = Y.shape
-    X = np.full((G, T, len(lags)), np.nan)
+    Xt = np.empty((G, len(lags), T))
     for j, lag in enumerate(lags):
-        if lag < T:
-            X[:, lag:, j] = Y[:, : T - lag]
-    return X
+        lag = min(int(lag), T)
+        Xt[:, j, :lag] = fill
+        Xt[:, j, lag:] = Y[:, : T - lag]
+    return Xt.transpose(0, 2, 1)
 
 
 def information_criteria(rss: np.ndarray, nobs: np.ndarray, n_params: np.ndarray) -> dict[str, np.ndarray]:
@@ -146,9 +152,8 @@ def fit_ar(
     lags = np.array(sorted(lag_list), dtype=np.int64)
     K = len(lags)
     hold = int(lags.max())
-    X = lag_design(Y, lags)
     Yz = np.nan_to_num(Y)
-    Xz = np.nan_to_num(X)
+    Xz = lag_design(Yz, lags, fill=0.0)
 
     want = np.ones(G, dtype=bool) if fit_mask is None else np.asarray(fit_mask, dtype=bool)
     # selection needs room for the largest candidate
@@ -239,6 +244,7 @@ def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable) -> ARFit:
         max_root_modulus=max_root,
         stationary=stationary,
         mean_level=level,
+        persistence_se=np.sqrt(np.maximum(res.cov_beta.sum(axis=(1, 2)), 0.0)) * nan,
         resid=resid,
         fitted=fittable,
     )

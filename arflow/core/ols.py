@@ -21,8 +21,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-#: Smallest eigenvalue of the unit-diagonal Gram matrix below which a
-#: regression is treated as collinear (its regressors are ridged slightly).
+#: When a batch holds an exactly singular system, regressions whose unit-diagonal
+#: Gram matrix has a smallest eigenvalue below this get a tiny ridge (1e-9).
 COLLINEAR_EIG = 1e-11
 
 
@@ -32,8 +32,7 @@ class Gram:
 
     Shapes: ``xtx`` (G, k, k), ``xty`` (G, k), ``yty`` (G,), ``xmean`` (G, k),
     ``ymean`` (G,), ``scale`` (G, k), ``nobs`` (G,), ``degenerate`` (G, k)
-    marks columns with no variation in the sample, ``collinear`` (G,) marks
-    regressions whose regressors are (near) linearly dependent.
+    marks columns with no variation in the sample (they are dropped).
     """
 
     xtx: np.ndarray
@@ -44,7 +43,6 @@ class Gram:
     scale: np.ndarray
     nobs: np.ndarray
     degenerate: np.ndarray
-    collinear: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -88,52 +86,62 @@ class OLSResult:
 def _wmean(a: np.ndarray, w: np.ndarray, n: np.ndarray) -> np.ndarray:
     """Weighted mean over axis 1 of (G, n[, k]) ``a``."""
     if a.ndim == 3:
-        s = np.einsum("gtk,gt->gk", a, w)
-        return s / n[:, None]
-    return np.einsum("gt,gt->g", a, w) / n
+        return np.matmul(w[:, None, :], a)[:, 0, :] / n[:, None]
+    return np.matmul(a[:, None, :], w[:, :, None])[:, 0, 0] / n
+
+
+def _centred(X: np.ndarray, y: np.ndarray, w: np.ndarray):
+    """Weighted means, centred (and row-weighted) copies, and the raw cross-products."""
+    nobs = w.sum(axis=1)
+    n_safe = np.where(nobs > 0, nobs, 1.0)
+    xmean = _wmean(X, w, n_safe)
+    ymean = _wmean(y, w, n_safe)
+    Xc = X - xmean[:, None, :]
+    Xc *= w[:, :, None]
+    yc = (y - ymean[:, None]) * w
+    XcT = np.swapaxes(Xc, 1, 2)
+    xtx = np.matmul(XcT, Xc)
+    xty = np.matmul(XcT, yc[:, :, None])[:, :, 0]
+    yty = np.matmul(yc[:, None, :], yc[:, :, None])[:, 0, 0]
+    return nobs, n_safe, xmean, ymean, Xc, yc, xtx, xty, yty
 
 
 def gram(X: np.ndarray, y: np.ndarray, w: np.ndarray) -> Gram:
     """Centred, scaled cross-products of ``X`` (G, n, k) and ``y`` (G, n) under weights ``w`` (G, n).
 
     Rows with zero weight are ignored (their values may be anything finite).
+    ``X`` may be a transposed view of a (G, k, n) array; that layout is the
+    fastest for the cross-products.
 
     >>> X = np.arange(10.0).reshape(1, 10, 1); y = 2 + 3 * X[..., 0]
     >>> g = gram(X, y, np.ones((1, 10)))
     >>> float(np.round(solve(g).beta[0, 0], 12))
     3.0
     """
+    return _gram(X, y, w)[0]
+
+
+def _gram(X, y, w):
     X = np.asarray(X, dtype=np.float64)
     y = np.asarray(y, dtype=np.float64)
     w = np.asarray(w, dtype=np.float64)
-    nobs = w.sum(axis=1)
-    n_safe = np.where(nobs > 0, nobs, 1.0)
-    xmean = _wmean(X, w, n_safe)
-    ymean = _wmean(y, w, n_safe)
-    Xc = (X - xmean[:, None, :]) * w[:, :, None]
-    yc = (y - ymean[:, None]) * w
-    scale = np.sqrt(np.einsum("gtk,gtk->gk", Xc, Xc))
-    ymag = np.sqrt(np.einsum("gt,gt->g", yc, yc))
-    # a column is degenerate when it does not vary within the sample
-    xabs = np.abs(xmean) + np.sqrt(np.einsum("gtk,gt->gk", X * X, w) / n_safe[:, None])
-    degenerate = scale <= 1e-12 * np.maximum(xabs, 1e-300) * np.sqrt(n_safe)[:, None]
-    scale = np.where(degenerate, 1.0, scale)
-    Xs = Xc / scale[:, None, :]
-    xtx = np.matmul(np.swapaxes(Xs, 1, 2), Xs)
-    xty = np.einsum("gtk,gt->gk", Xs, yc)
-    yty = ymag * ymag
+    nobs, n_safe, xmean, ymean, Xc, yc, xtx, xty, yty = _centred(X, y, w)
     k = X.shape[2]
-    eye = np.eye(k)
+    diag = np.diagonal(xtx, axis1=1, axis2=2)
+    scale = np.sqrt(np.maximum(diag, 0.0))
+    # a column is degenerate when it does not vary within the sample
+    rms = np.sqrt(diag / n_safe[:, None] + xmean * xmean)
+    degenerate = scale <= 1e-12 * np.maximum(np.abs(xmean) + rms, 1e-300) * np.sqrt(n_safe)[:, None]
+    scale = np.where(degenerate, 1.0, scale)
+    inv = 1.0 / scale
+    xtx = xtx * (inv[:, :, None] * inv[:, None, :])
+    xty = xty * inv
     # degenerate columns: unit diagonal, no coupling (their coefficient is 0)
     keep = ~degenerate
-    xtx = xtx * (keep[:, :, None] & keep[:, None, :]) + eye * degenerate[:, None, :]
-    xty = xty * keep
-    if k:
-        eig_min = np.linalg.eigvalsh(xtx)[:, 0]
-        collinear = eig_min < COLLINEAR_EIG
-    else:
-        collinear = np.zeros(len(nobs), dtype=bool)
-    return Gram(xtx, xty, yty, xmean, ymean, scale, nobs, degenerate, collinear)
+    if degenerate.any():
+        xtx = xtx * (keep[:, :, None] & keep[:, None, :]) + np.eye(k) * degenerate[:, None, :]
+        xty = xty * keep
+    return Gram(xtx, xty, yty, xmean, ymean, scale, nobs, degenerate), Xc, yc
 
 
 def _masked(g: Gram, mask: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -141,11 +149,31 @@ def _masked(g: Gram, mask: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, n
     m = ~g.degenerate if mask is None else (np.asarray(mask, dtype=bool) & ~g.degenerate)
     mf = m.astype(np.float64)
     A = g.xtx * (mf[:, :, None] * mf[:, None, :]) + np.eye(k) * (1.0 - mf)[:, None, :]
-    if g.collinear.any():
-        # a tiny ridge on the used columns of collinear regressions only
-        A = A + (np.eye(k) * (1e-9 * mf)[:, None, :]) * g.collinear[:, None, None]
     b = g.xty * mf
     return A, b, m
+
+
+def _ridge_collinear(A: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """Fallback when a batch holds an exactly singular system: find the regressions whose
+    (masked, unit-diagonal) Gram matrix is (near) singular and give only those a tiny ridge."""
+    eig_min = np.linalg.eigvalsh(A)[:, 0]
+    collinear = eig_min < COLLINEAR_EIG
+    k = A.shape[1]
+    return A + (np.eye(k) * (1e-9 * m.astype(np.float64))[:, None, :]) * collinear[:, None, None]
+
+
+def _solve(A: np.ndarray, b: np.ndarray, m: np.ndarray) -> np.ndarray:
+    try:
+        return np.linalg.solve(A, b[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        return np.linalg.solve(_ridge_collinear(A, m), b[..., None])[..., 0]
+
+
+def _inv(A: np.ndarray, m: np.ndarray) -> np.ndarray:
+    try:
+        return np.linalg.inv(A)
+    except np.linalg.LinAlgError:
+        return np.linalg.inv(_ridge_collinear(A, m))
 
 
 def solve(g: Gram, mask: np.ndarray | None = None) -> OLSResult:
@@ -156,7 +184,7 @@ def solve(g: Gram, mask: np.ndarray | None = None) -> OLSResult:
     for the exact residuals, refinement and covariance.
     """
     A, b, m = _masked(g, mask)
-    bs = np.linalg.solve(A, b[..., None])[..., 0]
+    bs = _solve(A, b, m)
     rss = np.maximum(g.yty - np.einsum("gk,gk->g", bs, b), 0.0)
     beta = bs / g.scale
     intercept = g.ymean - np.einsum("gk,gk->g", beta, g.xmean)
@@ -176,34 +204,32 @@ def fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, mask: np.ndarray | None = N
     >>> np.allclose(r.beta, [0.5, -2.0]) and np.allclose(r.intercept, 1.0)
     True
     """
-    X = np.asarray(X, dtype=np.float64)
-    y = np.asarray(y, dtype=np.float64)
+    g, Xc, yc = _gram(X, y, w)
     w = np.asarray(w, dtype=np.float64)
-    g = gram(X, y, w)
     A, b, m = _masked(g, mask)
-    Ainv = np.linalg.inv(A)
-    bs = np.einsum("gij,gj->gi", Ainv, b)
+    Ainv = _inv(A, m)
+    bs = np.matmul(Ainv, b[:, :, None])[:, :, 0]
     mf = m.astype(np.float64)
-    Xs = (X - g.xmean[:, None, :]) * (w / 1.0)[:, :, None] / g.scale[:, None, :] * mf[:, None, :]
-    yc = (y - g.ymean[:, None]) * w
-    resid = yc - np.einsum("gtk,gk->gt", Xs, bs)
+    sc = mf / g.scale  # scaled-coefficient -> original-unit factor (0 when masked)
+    beta = bs * sc
+    resid = yc - np.matmul(Xc, beta[:, :, None])[:, :, 0]
     # one step of iterative refinement from the exact residuals
-    grad = np.einsum("gtk,gt->gk", Xs, resid) * mf
-    delta = np.einsum("gij,gj->gi", Ainv, grad)
+    grad = np.matmul(np.swapaxes(Xc, 1, 2), resid[:, :, None])[:, :, 0] * sc
+    delta = np.matmul(Ainv, grad[:, :, None])[:, :, 0]
     bs = bs + delta
-    resid = resid - np.einsum("gtk,gk->gt", Xs, delta)
+    dbeta = delta * sc
+    beta = bs * sc
+    resid -= np.matmul(Xc, dbeta[:, :, None])[:, :, 0]
     # the intercept absorbs the (tiny) weighted mean of the residuals
     rbar = _wmean(resid, w, np.where(g.nobs > 0, g.nobs, 1.0))
     resid = (resid - rbar[:, None]) * w
-    rss = np.einsum("gt,gt->g", resid, resid)
-    beta = bs / g.scale
+    rss = np.matmul(resid[:, None, :], resid[:, :, None])[:, 0, 0]
     intercept = g.ymean + rbar - np.einsum("gk,gk->g", beta, g.xmean)
     n_params = m.sum(axis=1) + 1
     df = g.nobs - n_params
     with np.errstate(divide="ignore", invalid="ignore"):
         s2 = np.where(df > 0, rss / df, np.nan)
-    inv_scale = (1.0 / g.scale) * mf
-    cov_beta = Ainv * (inv_scale[:, :, None] * inv_scale[:, None, :]) * s2[:, None, None]
+    cov_beta = Ainv * (sc[:, :, None] * sc[:, None, :]) * s2[:, None, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         var_intercept = s2 / g.nobs + np.einsum("gi,gij,gj->g", g.xmean, cov_beta, g.xmean)
     return OLSResult(intercept, beta, rss, g.nobs, n_params, resid, cov_beta, var_intercept, g.yty)
