@@ -1,0 +1,87 @@
+"""Calibration of the gates and policies by simulation (fixed seeds).
+
+The nominal levels are the outside reference here: a 5% test must reject about
+5% of series for which its null hypothesis holds. Data are simulated Gaussian
+AR processes (the reference model itself), so the rates are exact targets.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from arflow.core.gates import REASONS
+from arflow.core.panel import build_panel
+from arflow.core.pipeline import run_core
+from arflow.settings import GateSettings, ModelSettings, Settings
+
+pytestmark = pytest.mark.slow
+
+
+def simulate(phi: dict[int, float], G: int, T: int, seed: int, burn: int = 200) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    e = rng.normal(size=(G, T + burn))
+    y = np.zeros((G, T + burn))
+    L = max(phi)
+    for t in range(L, T + burn):
+        y[:, t] = sum(c * y[:, t - lag] for lag, c in phi.items()) + e[:, t]
+    return 50.0 + y[:, burn:]
+
+
+def panel_of(Y: np.ndarray):
+    G, T = Y.shape
+    return build_panel(np.repeat(np.arange(G), T), np.tile(np.arange(T), G), Y.ravel(), G)
+
+
+def residual_rate(result) -> float:
+    return float(result.outcome.reasons[:, REASONS.index("residual_autocorrelation")].mean())
+
+
+@pytest.fixture(scope="module")
+def ar12():
+    # 1,000 AR(1) (phi 0.5) and 1,000 AR(2) (0.5, 0.3) series of length 120
+    return np.vstack([simulate({1: 0.5}, 1000, 120, 11), simulate({1: 0.5, 2: 0.3}, 1000, 120, 12)])
+
+
+def test_default_residual_gate_size(ar12):
+    r = run_core(panel_of(ar12), Settings(frequency="month"))
+    # nominal 5%: the default gate (Ljung-Box, 12 lags, df 12 - p, BIC order) must quarantine 3%..7%
+    assert 0.03 <= residual_rate(r) <= 0.07
+
+
+def test_breusch_godfrey_and_holm_lag_t_are_not_oversized(ar12):
+    for gate in (GateSettings(residual_test="breusch-godfrey"), GateSettings(residual_test="lag-t")):
+        r = run_core(panel_of(ar12), Settings(frequency="month", gates=gate))
+        assert residual_rate(r) <= 0.07
+
+
+def test_uncorrected_per_lag_t_test_over_12_lags_is_badly_oversized(ar12):
+    # common practice per-lag t test without multiplicity control: with 12 looks at 5% each
+    # the chance of at least one false alarm is far above 5% (about 1 - 0.95^12 = 46% for
+    # independent looks; residual autocorrelations of a fitted AR are not independent).
+    gate = GateSettings(residual_test="lag-t", lag_correction="none")
+    r = run_core(panel_of(ar12), Settings(frequency="month", gates=gate))
+    assert residual_rate(r) > 0.12
+
+
+def test_omitted_seasonal_lag_is_caught():
+    Y = simulate({1: 0.2, 4: 0.5}, 2000, 120, 21)
+    s = Settings(frequency="quarter", model=ModelSettings(order=1, seasonal_lag="off", unit_root="ignore"))
+    assert residual_rate(run_core(panel_of(Y), s)) >= 0.90
+
+
+def test_seasonal_candidate_publishes_with_the_seasonal_lag():
+    Y = simulate({1: 0.2, 4: 0.5}, 2000, 120, 22)
+    for model in (ModelSettings(), ModelSettings(order=1)):
+        r = run_core(panel_of(Y), Settings(frequency="quarter", model=model))
+        j = list(r.fit.lags).index(4)
+        assert (r.outcome.published & r.fit.lag_mask[:, j]).mean() >= 0.90
+
+
+def test_differencing_policy_rates():
+    rng = np.random.default_rng(31)
+    walks = 50.0 + np.cumsum(rng.normal(size=(2000, 120)), axis=1)
+    seasonal = simulate({1: 0.2, 4: 0.5}, 2000, 120, 32)
+    s = Settings(frequency="quarter", model=ModelSettings(unit_root="difference"))
+    assert run_core(panel_of(walks), s).differenced.mean() >= 0.90
+    assert run_core(panel_of(seasonal), s).differenced.mean() <= 0.15
