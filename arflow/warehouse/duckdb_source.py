@@ -257,7 +257,10 @@ class DuckDBSource:
             f"FROM {self._from()} WHERE {period} <= ? ORDER BY {keys}, {period}"
         )
         try:
-            reader = self.con.sql(sql, params=[as_of]).to_arrow_reader(batch_rows)
+            relation = self.con.sql(sql, params=[as_of])
+            # DuckDB 2 names it to_arrow_reader; 1.x had fetch_arrow_reader
+            to_reader = getattr(relation, "to_arrow_reader", None) or relation.fetch_arrow_reader
+            reader = to_reader(batch_rows)
             pending: list[pl.DataFrame] = []
             current: int | None = None
             for batch in reader:
