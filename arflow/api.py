@@ -78,6 +78,7 @@ def forecast(
     value: str,
     settings: Settings | None = None,
     as_of: Any = None,
+    workers: int = 1,
 ) -> ForecastRun:
     """Fit, check, gate and forecast every series of a long frame.
 
@@ -86,6 +87,7 @@ def forecast(
     series; ``period`` is a Date/Datetime/ISO-text column (or integers with
     ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
     or int) ignores later rows; by default it is the latest period present.
+    ``workers`` > 1 uses that many threads for the statistical core.
 
     Schema problems raise :class:`arflow.errors.SchemaError`; per-series
     problems become quarantine reasons.
@@ -115,7 +117,7 @@ def forecast(
         as_of=as_of_ord,
         min_observations=settings.gates.min_observations,
     )
-    core = run_core(panel, settings)
+    core = run_core(panel, settings, workers=workers)
     frames = result_frames(inp, core, settings)
     as_of_label = inp.codec.decode(np.array([panel.as_of])).item()
     return ForecastRun(

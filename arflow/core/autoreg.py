@@ -164,16 +164,11 @@ def fit_ar(
     if order == "auto":
         w_sel = _sample_weights(n, T, np.full(G, hold)) * can_select[:, None]
         g = ols.gram(Xz, Yz, w_sel)
-        nobs = g.nobs
-        best_ic = np.full(G, np.inf)
-        best_p = np.ones(G, dtype=np.int64)
-        for p in range(1, P + 1):
-            m = np.broadcast_to(lags <= p, (G, K))
-            r = ols.solve(g, m)
-            ic = information_criteria(r.rss, nobs, r.n_params)[criterion]
-            better = ic < best_ic
-            best_ic = np.where(better, ic, best_ic)
-            best_p = np.where(better, p, best_p)
+        # every order 1..P from one sweep of the common-sample Gram matrix
+        rss = ols.nested_rss(g, np.flatnonzero(base_cols))
+        orders = np.arange(1, P + 1)
+        ic = information_criteria(rss, g.nobs[:, None], (orders + 1)[None, :])[criterion]
+        best_p = np.argmin(ic, axis=1) + 1  # ties go to the smaller order
         chosen = lags[None, :] <= best_p[:, None]
     else:
         chosen = np.broadcast_to(base_cols, (G, K)).copy()
@@ -204,6 +199,29 @@ def fit_ar(
     return _finish(lags, chosen, res, w_fit, Y, fittable)
 
 
+def max_root_modulus(phi: np.ndarray, maxlag: np.ndarray) -> np.ndarray:
+    """Largest modulus of the companion-matrix eigenvalues of each AR polynomial.
+
+    ``phi`` (G, L) holds lag j in column j-1; ``maxlag`` (G,) the highest lag
+    used. Series are bucketed by their highest lag (a loop over at most L
+    sizes, never over series) so an AR(1) does not pay for a 12 x 12 matrix.
+    Covariance stationary iff the result is below 1 (every root of
+    1 - phi_1 z - ... - phi_p z^p outside the unit circle; common practice).
+    """
+    out = np.zeros(phi.shape[0])
+    for L in np.unique(maxlag):
+        idx = np.flatnonzero(maxlag == L)
+        L = int(L)
+        if L == 1:
+            out[idx] = np.abs(phi[idx, 0])
+            continue
+        comp = np.zeros((len(idx), L, L))
+        comp[:, 0, :] = phi[idx, :L]
+        comp[:, np.arange(1, L), np.arange(L - 1)] = 1.0
+        out[idx] = np.abs(np.linalg.eigvals(comp)).max(axis=1)
+    return out
+
+
 def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable) -> ARFit:
     G = Y.shape[0]
     nan = np.where(fittable, 1.0, np.nan)
@@ -214,16 +232,10 @@ def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable) -> ARFit:
     sigma = np.sqrt(res.sigma2) * nan
     ic = information_criteria(res.rss, res.nobs, res.n_params)
     resid = np.where(w > 0, res.resid, np.nan)
-    # companion-matrix roots
     L = int(lags.max())
     phi = np.zeros((G, L))
-    phi[:, lags - 1] = coef
-    comp = np.zeros((G, L, L))
-    comp[:, 0, :] = phi
-    if L > 1:
-        comp[:, np.arange(1, L), np.arange(L - 1)] = 1.0
-    roots = np.abs(np.linalg.eigvals(np.where(fittable[:, None, None], comp, 0.0)))
-    max_root = roots.max(axis=1) * nan
+    phi[:, lags - 1] = np.where(fittable[:, None], coef, 0.0)
+    max_root = max_root_modulus(phi, np.where(mask.any(axis=1), np.max(np.where(mask, lags[None, :], 0), axis=1), 1)) * nan
     stationary = fittable & (max_root < 1.0 - 1e-8)
     with np.errstate(divide="ignore", invalid="ignore"):
         level = np.where(stationary, res.intercept / (1.0 - coef.sum(axis=1)), np.nan)

@@ -233,3 +233,30 @@ def fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, mask: np.ndarray | None = N
     with np.errstate(divide="ignore", invalid="ignore"):
         var_intercept = s2 / g.nobs + np.einsum("gi,gij,gj->g", g.xmean, cov_beta, g.xmean)
     return OLSResult(intercept, beta, rss, g.nobs, n_params, resid, cov_beta, var_intercept, g.yty)
+
+
+def nested_rss(g: Gram, columns: np.ndarray) -> np.ndarray:
+    """RSS of the nested regressions on ``columns[:1]``, ``columns[:2]``, ... (with intercept).
+
+    One sweep of the augmented Gram matrix (a batched, pivot-guarded Cholesky
+    elimination) gives every prefix at once: (G, len(columns)). A column that
+    is (numerically) a combination of earlier ones is skipped, leaving the RSS
+    unchanged, which is what a least-squares fit on the prefix would give.
+    """
+    k = g.xty.shape[1]
+    G = len(g.yty)
+    cols = np.asarray(columns, dtype=np.int64)
+    M = np.empty((G, k + 1, k + 1))
+    M[:, :k, :k] = g.xtx
+    M[:, :k, k] = g.xty
+    M[:, k, :k] = g.xty
+    M[:, k, k] = g.yty
+    out = np.empty((G, len(cols)))
+    for i, j in enumerate(cols):
+        piv = M[:, j, j].copy()
+        ok = piv > 1e-10  # unit-diagonal scale: relative to the column's own norm
+        safe = np.where(ok, piv, 1.0)
+        row = M[:, j, :] * ok[:, None]
+        M -= row[:, :, None] * (row[:, None, :] / safe[:, None, None])
+        out[:, i] = np.maximum(M[:, k, k], 0.0)
+    return out
