@@ -109,6 +109,9 @@ def test_locked_target_with_separate_source(tmp_path: Path, capsys) -> None:
         code = main(["run", str(job)])
         err = capsys.readouterr().err
         assert code == 3 and err.startswith("arflow: error: target database") and "in use by another process" in err
+        # a dry run only reads the source, so it still works and says the target was busy
+        assert main(["run", str(job), "--dry-run"]) == 0
+        assert "target in use by another process" in capsys.readouterr().out
     finally:
         (tmp_path / "resume").touch()
         first.communicate(timeout=60)

@@ -160,7 +160,12 @@ def check_target(database: Path, layout: TableLayout) -> str:
     """Read-only look at the target for ``validate`` and dry runs; returns a status note."""
     if not database.exists():
         return "will be created"
-    con = _open(database, read_only=True)
+    try:
+        con = duckdb.connect(str(database), read_only=True)
+    except duckdb.Error as exc:
+        if is_lock_error(exc):
+            return "in use by another process right now (not checked)"
+        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
     try:
         check_layout(con, layout, database)
         return "tables exist" if _existing_layout(con, layout.schema) else "tables will be created"
