@@ -152,18 +152,34 @@ def fit_ar(
     lags = np.array(sorted(lag_list), dtype=np.int64)
     K = len(lags)
     hold = int(lags.max())
-    Yz = np.nan_to_num(Y)
-    Xz = lag_design(Yz, lags, fill=0.0)
+    # shift every series by its own mean (keeps the raw-sum Gram accurate), then
+    # one (G, K+1, T) array: the K lag rows and the series itself
+    with np.errstate(invalid="ignore"):
+        shift = np.where(n > 0, np.nansum(Y, axis=1) / np.maximum(n, 1), 0.0)
+    Yz = np.nan_to_num(Y - shift[:, None])
+    ZT = np.empty((G, K + 1, T))
+    for j, lag in enumerate(lags):
+        lag = min(int(lag), T)
+        ZT[:, j, :lag] = 0.0
+        ZT[:, j, lag:] = Yz[:, : T - lag]
+    ZT[:, K, :] = Yz
+    Xz = ZT[:, :K, :].transpose(0, 2, 1)
 
     want = np.ones(G, dtype=bool) if fit_mask is None else np.asarray(fit_mask, dtype=bool)
     # selection needs room for the largest candidate
     can_select = want & (n - hold >= K + 1 + MIN_RESID_DF)
     base_cols = lags <= P
     seasonal_col = (lags == s) if s is not None else np.zeros(K, dtype=bool)
+    # raw sums over the common sample (every candidate lag available): one pass
+    w_common = _sample_weights(n, T, np.full(G, hold)) * want[:, None]
+    ZTw = ZT * w_common[:, None, :]
+    S = np.matmul(ZTw, np.swapaxes(ZT, 1, 2))
+    ssum = ZTw.sum(axis=2)
+    ncommon = w_common.sum(axis=1)
+    del ZTw
+    g = ols.gram_from_sums(S, ssum, ncommon)
     # ---- candidate lag sets -------------------------------------------------------
     if order == "auto":
-        w_sel = _sample_weights(n, T, np.full(G, hold)) * can_select[:, None]
-        g = ols.gram(Xz, Yz, w_sel)
         # every order 1..P from one sweep of the common-sample Gram matrix
         rss = ols.nested_rss(g, np.flatnonzero(base_cols))
         orders = np.arange(1, P + 1)
@@ -172,15 +188,10 @@ def fit_ar(
         chosen = lags[None, :] <= best_p[:, None]
     else:
         chosen = np.broadcast_to(base_cols, (G, K)).copy()
-        best_p = np.full(G, P)
-        g = None
     chosen = chosen & base_cols[None, :]
     if s is not None and s > 0:
         add = chosen | seasonal_col[None, :]
         differs = ~np.all(add == chosen, axis=1)
-        if g is None:
-            w_sel = _sample_weights(n, T, np.full(G, hold)) * can_select[:, None]
-            g = ols.gram(Xz, Yz, w_sel)
         ra = ols.solve(g, chosen)
         rb = ols.solve(g, add)
         ica = information_criteria(ra.rss, g.nobs, ra.n_params)[criterion]
@@ -192,11 +203,25 @@ def fit_ar(
         keep_s = differs & can_select & ((icb < ica) | (p_add < seasonal_alpha))
         chosen = np.where(keep_s[:, None], add, chosen)
     # series too short to select are fitted at the smallest order that fits
+    chosen = np.where(can_select[:, None], chosen, lags[None, :] <= 1)
     maxlag = np.where(chosen.any(axis=1), np.max(np.where(chosen, lags[None, :], 0), axis=1), 1)
     fittable = want & (n - maxlag >= chosen.sum(axis=1) + 1 + MIN_RESID_DF)
+    # the chosen lags are refitted on their own longer sample: add the rows
+    # between each series' own hold-back and the common one to the sums
+    if hold > 1:
+        r = np.arange(hold)[None, :]
+        rows = (T - n)[:, None] + r
+        wx = ((r >= maxlag[:, None]) & (rows <= T - 1) & (rows >= 0) & fittable[:, None]).astype(np.float64)
+        Zx = np.take_along_axis(ZT, np.clip(rows, 0, T - 1)[:, None, :], axis=2)
+        Zxw = Zx * wx[:, None, :]
+        S = S + np.matmul(Zxw, np.swapaxes(Zx, 1, 2))
+        ssum = ssum + Zxw.sum(axis=2)
+        ncommon = ncommon + wx.sum(axis=1)
+    keepf = fittable.astype(np.float64)
+    gfit = ols.gram_from_sums(S * keepf[:, None, None], ssum * keepf[:, None], ncommon * keepf)
     w_fit = _sample_weights(n, T, maxlag) * fittable[:, None]
-    res = ols.fit(Xz, Yz, w_fit, chosen)
-    return _finish(lags, chosen, res, w_fit, Y, fittable)
+    res = ols.fit_with_gram(gfit, Xz, ZT[:, K, :], w_fit, chosen)
+    return _finish(lags, chosen, res, w_fit, Y, fittable, shift, gfit.xmean)
 
 
 def max_root_modulus(phi: np.ndarray, maxlag: np.ndarray) -> np.ndarray:
@@ -222,8 +247,14 @@ def max_root_modulus(phi: np.ndarray, maxlag: np.ndarray) -> np.ndarray:
     return out
 
 
-def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable) -> ARFit:
+def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable, shift, xmean) -> ARFit:
     G = Y.shape[0]
+    # undo the shift y = x + m: b0 = a + m (1 - sum b), and
+    # Var(b0) = Var(a) + m^2 1'V1 + 2 m 1'V xbar  (Cov(a, b) = -V xbar)
+    V = res.cov_beta
+    ones_V = V.sum(axis=1)
+    intercept = res.intercept + shift * (1.0 - res.beta.sum(axis=1))
+    var_b0 = res.var_intercept + shift**2 * ones_V.sum(axis=1) + 2.0 * shift * np.einsum("gk,gk->g", ones_V, xmean)
     nan = np.where(fittable, 1.0, np.nan)
     coef = res.beta * mask
     se = res.std_errors * mask
@@ -238,12 +269,12 @@ def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable) -> ARFit:
     max_root = max_root_modulus(phi, np.where(mask.any(axis=1), np.max(np.where(mask, lags[None, :], 0), axis=1), 1)) * nan
     stationary = fittable & (max_root < 1.0 - 1e-8)
     with np.errstate(divide="ignore", invalid="ignore"):
-        level = np.where(stationary, res.intercept / (1.0 - coef.sum(axis=1)), np.nan)
+        level = np.where(stationary, intercept / (1.0 - coef.sum(axis=1)), np.nan)
     return ARFit(
         lags=lags,
         lag_mask=mask & fittable[:, None],
-        intercept=res.intercept * nan,
-        intercept_se=res.intercept_std_error * nan,
+        intercept=intercept * nan,
+        intercept_se=np.sqrt(np.maximum(var_b0, 0.0)) * nan,
         coef=coef * nan[:, None],
         std_err=se * nan[:, None],
         t_stat=t * nan[:, None],

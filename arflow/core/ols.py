@@ -126,11 +126,33 @@ def _gram(X, y, w):
     y = np.asarray(y, dtype=np.float64)
     w = np.asarray(w, dtype=np.float64)
     nobs, n_safe, xmean, ymean, Xc, yc, xtx, xty, yty = _centred(X, y, w)
-    k = X.shape[2]
+    return _scaled(xtx, xty, yty, xmean, ymean, nobs), Xc, yc
+
+
+def gram_from_sums(S: np.ndarray, s: np.ndarray, nobs: np.ndarray) -> Gram:
+    """A :class:`Gram` from raw weighted sums of ``z = [x_1..x_k, y]``.
+
+    ``S`` (G, k+1, k+1) is sum w z z', ``s`` (G, k+1) is sum w z. The centred
+    cross-products are formed as ``S - s s' / n``: accurate when the data were
+    shifted close to their mean beforehand (the caller's duty; AR fits shift
+    every series by its own mean), and it lets a caller update the sums for a
+    few extra rows instead of passing over all rows again.
+    """
+    nobs = np.asarray(nobs, dtype=np.float64)
+    n_safe = np.where(nobs > 0, nobs, 1.0)
+    mean = s / n_safe[:, None]
+    C = S - s[:, :, None] * mean[:, None, :]
+    k = S.shape[1] - 1
+    return _scaled(C[:, :k, :k], C[:, :k, k], np.maximum(C[:, k, k], 0.0), mean[:, :k], mean[:, k], nobs)
+
+
+def _scaled(xtx, xty, yty, xmean, ymean, nobs) -> Gram:
+    k = xtx.shape[1]
+    n_safe = np.where(nobs > 0, nobs, 1.0)
     diag = np.diagonal(xtx, axis1=1, axis2=2)
     scale = np.sqrt(np.maximum(diag, 0.0))
     # a column is degenerate when it does not vary within the sample
-    rms = np.sqrt(diag / n_safe[:, None] + xmean * xmean)
+    rms = np.sqrt(np.maximum(diag, 0.0) / n_safe[:, None] + xmean * xmean)
     degenerate = scale <= 1e-12 * np.maximum(np.abs(xmean) + rms, 1e-300) * np.sqrt(n_safe)[:, None]
     scale = np.where(degenerate, 1.0, scale)
     inv = 1.0 / scale
@@ -141,7 +163,7 @@ def _gram(X, y, w):
     if degenerate.any():
         xtx = xtx * (keep[:, :, None] & keep[:, None, :]) + np.eye(k) * degenerate[:, None, :]
         xty = xty * keep
-    return Gram(xtx, xty, yty, xmean, ymean, scale, nobs, degenerate), Xc, yc
+    return Gram(xtx, xty, yty, xmean, ymean, scale, nobs, degenerate)
 
 
 def _masked(g: Gram, mask: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -204,27 +226,40 @@ def fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, mask: np.ndarray | None = N
     >>> np.allclose(r.beta, [0.5, -2.0]) and np.allclose(r.intercept, 1.0)
     True
     """
-    g, Xc, yc = _gram(X, y, w)
+    X = np.asarray(X, dtype=np.float64)
+    y = np.asarray(y, dtype=np.float64)
     w = np.asarray(w, dtype=np.float64)
+    g = gram(X, y, w)
+    return fit_with_gram(g, X, y, w, mask)
+
+
+def fit_with_gram(g: Gram, X: np.ndarray, y: np.ndarray, w: np.ndarray, mask: np.ndarray | None = None) -> OLSResult:
+    """Finish a fit from its Gram matrix: solve, exact residuals from the data, one refinement step.
+
+    Residuals are formed from the uncentred ``X``: ``e = y - a - X b`` on rows
+    with weight, so no centred copy of the design is needed.
+    """
     A, b, m = _masked(g, mask)
     Ainv = _inv(A, m)
     bs = np.matmul(Ainv, b[:, :, None])[:, :, 0]
     mf = m.astype(np.float64)
     sc = mf / g.scale  # scaled-coefficient -> original-unit factor (0 when masked)
     beta = bs * sc
-    resid = yc - np.matmul(Xc, beta[:, :, None])[:, :, 0]
-    # one step of iterative refinement from the exact residuals
-    grad = np.matmul(np.swapaxes(Xc, 1, 2), resid[:, :, None])[:, :, 0] * sc
+    a = g.ymean - np.einsum("gk,gk->g", beta, g.xmean)
+    resid = (y - a[:, None] - np.matmul(X, beta[:, :, None])[:, :, 0]) * w
+    # one step of iterative refinement from the exact residuals (gradient of the centred problem)
+    esum = resid.sum(axis=1)
+    grad = (np.matmul(np.swapaxes(X, 1, 2), resid[:, :, None])[:, :, 0] - g.xmean * esum[:, None]) * sc
     delta = np.matmul(Ainv, grad[:, :, None])[:, :, 0]
-    bs = bs + delta
     dbeta = delta * sc
-    beta = bs * sc
-    resid -= np.matmul(Xc, dbeta[:, :, None])[:, :, 0]
+    beta = beta + dbeta
+    da = -np.einsum("gk,gk->g", dbeta, g.xmean)
+    resid -= (da[:, None] + np.matmul(X, dbeta[:, :, None])[:, :, 0]) * w
     # the intercept absorbs the (tiny) weighted mean of the residuals
     rbar = _wmean(resid, w, np.where(g.nobs > 0, g.nobs, 1.0))
     resid = (resid - rbar[:, None]) * w
     rss = np.matmul(resid[:, None, :], resid[:, :, None])[:, 0, 0]
-    intercept = g.ymean + rbar - np.einsum("gk,gk->g", beta, g.xmean)
+    intercept = a + da + rbar
     n_params = m.sum(axis=1) + 1
     df = g.nobs - n_params
     with np.errstate(divide="ignore", invalid="ignore"):
