@@ -48,13 +48,14 @@ class PeriodCodec:
         if f == "week":
             days = s.cast(pl.Int32).cast(pl.Int64).to_numpy()
             return (days - self.weekday_offset) // 7
-        year = s.dt.year().cast(pl.Int64).to_numpy()
-        month = s.dt.month().cast(pl.Int64).to_numpy()
+        # months since 1970-01 straight from the day numbers (numpy calendar arithmetic)
+        days = s.cast(pl.Int32).to_numpy()
+        months = days.astype("datetime64[D]").astype("datetime64[M]").astype(np.int64) + 1970 * 12
         if f == "month":
-            return year * 12 + month - 1
+            return months
         if f == "quarter":
-            return year * 4 + (month - 1) // 3
-        return year  # year
+            return months // 3
+        return months // 12  # year
 
     def decode(self, ordinals: np.ndarray) -> pl.Series:
         o = np.asarray(ordinals, dtype=np.int64)
@@ -142,13 +143,14 @@ def _codec_for(s: pl.Series, frequency: str) -> PeriodCodec:
     if frequency == "day":
         return PeriodCodec("day")
     if frequency == "week":
-        rem = (s.cast(pl.Int32).cast(pl.Int64) % 7).unique()
+        rem = (s.unique().cast(pl.Int32).cast(pl.Int64) % 7).unique()
         if len(rem) > 1:
             raise SchemaError(
                 "weekly periods fall on different weekdays; label each week by the same weekday "
                 "(e.g. its Monday) or use frequency 'day'"
             )
         return PeriodCodec("week", weekday_offset=int(rem[0]) if len(rem) else 0)
+    s = s.unique()  # a few hundred distinct periods at most: check the labels on those
     is_end = s.dt.month_end() == s if frequency == "month" else None
     if frequency == "quarter":
         is_end = (s.dt.month_end() == s) & (s.dt.month() % 3 == 0)
@@ -208,17 +210,34 @@ def to_panel_inputs(frame: Any, keys: list[str], period: str, value: str, freque
     codec = _codec_for(ps, frequency)
     ordinals = codec.encode(ps)
     values = df.get_column(value).cast(pl.Float64).fill_null(float("nan")).to_numpy()
-    key_df = df.select(keys)
-    if len(keys) == 1:
-        codes_s = key_df.get_column(keys[0]).rank("dense")
+    codes, uniq = _series_codes(df.select(keys))
+    return PanelInputs(uniq, codes, ordinals, values, codec)
+
+
+def _series_codes(key_df: pl.DataFrame) -> tuple[np.ndarray, pl.DataFrame]:
+    """Series code per row (0..G-1) and the G distinct keys in code order.
+
+    Fast path: when each series' rows are contiguous (the job reads them
+    ordered by keys) the code is a running count of key changes.
+    """
+    changed = key_df.select(
+        pl.any_horizontal([pl.col(c).ne_missing(pl.col(c).shift(1)) for c in key_df.columns]).alias("chg")
+    ).to_series().to_numpy()
+    changed[0] = True
+    firsts = np.flatnonzero(changed)
+    uniq = key_df[firsts]
+    if not uniq.is_duplicated().any():
+        return np.cumsum(changed, dtype=np.int64) - 1, uniq
+    # rows of a series are spread out: dense rank of the keys (sorts)
+    if key_df.width == 1:
+        codes_s = key_df.to_series().rank("dense")
     else:
-        codes_s = key_df.select(pl.struct(keys).rank("dense")).to_series()
+        codes_s = key_df.select(pl.struct(key_df.columns).rank("dense")).to_series()
     codes = codes_s.cast(pl.Int64).to_numpy() - 1
     G = int(codes.max()) + 1
     first_row = np.full(G, len(codes), dtype=np.int64)
     np.minimum.at(first_row, codes, np.arange(len(codes)))
-    uniq = key_df[first_row]
-    return PanelInputs(uniq, codes, ordinals, values, codec)
+    return codes, key_df[first_row]
 
 
 # ------------------------------------------------------------------------------------- out

@@ -101,75 +101,90 @@ def build_panel(
     flags = np.zeros(G, dtype=np.int64)
     if as_of is None:
         as_of = int(periods.max()) if len(periods) else 0
-    keep = periods <= as_of
-    codes, periods, values = codes[keep], periods[keep], values[keep]
+    if len(periods) and periods.max() > as_of:
+        keep = periods <= as_of
+        codes, periods, values = codes[keep], periods[keep], values[keep]
     if len(codes) == 0:
         flags[:] = NO_DATA | TOO_SHORT
         z = np.zeros(G, dtype=np.int64)
         return Panel(np.full((G, 0), np.nan), z, z.copy(), z.copy(), flags, int(as_of))
 
-    # stable sort by (code, period): a later duplicate wins
-    order = np.lexsort((np.arange(len(codes)), periods, codes))
-    codes, periods, values = codes[order], periods[order], values[order]
-    same = (codes[1:] == codes[:-1]) & (periods[1:] == periods[:-1])
+    # sort by (code, period), stable so that a later duplicate wins; skipped
+    # when the rows already arrive in that order (the job reads them so)
+    pmin = int(periods.min())
+    span = int(periods.max()) - pmin + 1
+    composite = codes * span + (periods - pmin)
+    if len(composite) > 1 and np.any(composite[1:] < composite[:-1]):
+        order = np.argsort(composite, kind="stable")
+        codes, periods, values, composite = codes[order], periods[order], values[order], composite[order]
+    same = composite[1:] == composite[:-1]
     if same.any():
-        np.bitwise_or.at(flags, codes[1:][same], DUPLICATE_PERIODS)
+        flags[np.unique(codes[1:][same])] |= DUPLICATE_PERIODS
         last_of_pair = np.ones(len(codes), dtype=bool)
         last_of_pair[:-1] = ~same
         codes, periods, values = codes[last_of_pair], periods[last_of_pair], values[last_of_pair]
 
     finite = np.isfinite(values)
     if not finite.all():
-        np.bitwise_or.at(flags, codes[~finite], NON_FINITE_VALUES)
+        flags[np.unique(codes[~finite])] |= NON_FINITE_VALUES
 
+    # per-series boundaries of the sorted rows
+    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
+    ends = np.r_[starts[1:], len(codes)]
+    present = codes[starts]
     has = np.zeros(G, dtype=bool)
-    has[codes] = True
-    first = np.full(G, np.iinfo(np.int64).max, dtype=np.int64)
-    np.minimum.at(first, codes, periods)
-    last_any = np.full(G, np.iinfo(np.int64).min, dtype=np.int64)
-    np.maximum.at(last_any, codes, periods)
-    # count of rows per series vs span -> internal gaps (missing periods)
-    count = np.bincount(codes, minlength=G)
-    span = np.where(has, last_any - first + 1, 0)
-    flags[has & (count < span)] |= INTERNAL_GAPS
+    has[present] = True
+    first = np.full(G, as_of, dtype=np.int64)
+    first[present] = periods[starts]
+    last_any = np.full(G, as_of, dtype=np.int64)
+    last_any[present] = periods[ends - 1]
+    count = np.zeros(G, dtype=np.int64)
+    count[present] = ends - starts
+    flags[has & (count < last_any - first + 1)] |= INTERNAL_GAPS
 
-    # keep finite rows; the run is the trailing block of consecutive finite periods
-    c, p, v = codes[finite], periods[finite], values[finite]
+    # keep finite rows; the run is the trailing block of consecutive periods
+    if not finite.all():
+        codes, periods, values = codes[finite], periods[finite], values[finite]
+        starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if len(codes) else np.zeros(0, np.int64)
+        ends = np.r_[starts[1:], len(codes)]
     has_f = np.zeros(G, dtype=bool)
-    has_f[c] = True
-    last = np.full(G, np.iinfo(np.int64).min, dtype=np.int64)
-    np.maximum.at(last, c, p)
-    # a break: same series, period not consecutive
-    brk = np.zeros(len(c), dtype=bool)
-    brk[1:] = (c[1:] == c[:-1]) & (p[1:] != p[:-1] + 1)
-    # position from each series' end: rows with a later break in the same series are dropped
-    # compute, per row, whether any break occurs after it within its series
-    brk_pos = np.where(brk, np.arange(len(c)), -1)
-    # last break index per series
-    last_brk = np.full(G, -1, dtype=np.int64)
-    np.maximum.at(last_brk, c, brk_pos)
-    in_run = np.arange(len(c)) >= last_brk[c]
-    c, p, v = c[in_run], p[in_run], v[in_run]
-    n = np.bincount(c, minlength=G).astype(np.int64)
-    if max_history is not None:
-        n_cap = np.minimum(n, max_history)
-        offs = last[c] - p  # 0 for the last observation
-        keep = offs < n_cap[c]
-        c, p, v, n = c[keep], p[keep], v[keep], n_cap
-    T = int(n.max()) if G else 0
-    panel = np.full((G, T), np.nan)
-    col = T - 1 - (last[c] - p)
-    panel[c, col] = v
+    last = np.full(G, as_of, dtype=np.int64)
+    n = np.zeros(G, dtype=np.int64)
+    if len(codes):
+        present = codes[starts]
+        has_f[present] = True
+        last[present] = periods[ends - 1]
+        newcode = np.r_[True, codes[1:] != codes[:-1]]
+        # a break: within a series, the period is not the previous one plus one
+        brk = newcode | np.r_[True, periods[1:] != periods[:-1] + 1]
+        rows = np.arange(len(codes))
+        run_start = np.maximum.reduceat(np.where(brk, rows, 0), starts)
+        if max_history is not None:
+            run_start = np.maximum(run_start, ends - max_history)
+        n[present] = ends - run_start
+        T = int(n.max())
+        block = np.cumsum(newcode) - 1  # which series block each sorted row is in
+        # column of row i in the right-aligned panel: T - (end of its block - i)
+        dest = codes * T + (T - ends[block] + rows)
+        panel = np.full((G, T), np.nan)
+        if np.all(run_start == starts):
+            panel.flat[dest] = values
+        else:
+            keep = rows >= run_start[block]
+            panel.flat[dest[keep]] = values[keep]
+    else:
+        T = 0
+        panel = np.full((G, 0), np.nan)
 
     last = np.where(has_f, last, np.where(has, last_any, as_of))
-    first = np.where(has, first, as_of)
     flags[~has] |= NO_DATA
     flags[has & ~has_f] |= NO_DATA
     flags[has_f & (last < as_of)] |= ENDS_BEFORE_AS_OF
     flags[n < min_observations] |= TOO_SHORT
-    # constant: no variation in the run
-    with np.errstate(invalid="ignore"):
-        rng = np.nanmax(panel, axis=1, initial=-np.inf) - np.nanmin(panel, axis=1, initial=np.inf) if T else np.zeros(G)
-    const = has_f & (n >= 2) & (rng <= 1e-12 * np.maximum(1.0, np.abs(np.nan_to_num(panel[:, -1]))) if T else np.zeros(G, bool))
-    flags[const] |= CONSTANT
+    if T:
+        with np.errstate(invalid="ignore"):
+            hi = np.nanmax(np.where(np.isnan(panel), -np.inf, panel), axis=1)
+            lo = np.nanmin(np.where(np.isnan(panel), np.inf, panel), axis=1)
+        const = has_f & (n >= 2) & (hi - lo <= 1e-12 * np.maximum(1.0, np.abs(hi)))
+        flags[const] |= CONSTANT
     return Panel(panel, n, first, last, flags, int(as_of))

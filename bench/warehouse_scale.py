@@ -1,0 +1,208 @@
+"""End-to-end scale benchmark: arflow run vs the SQL AR(1) shortcut vs a plain scan, side by side.
+
+    python bench/warehouse_scale.py                       # G = 10,000 and 100,000, T = 120
+    python bench/warehouse_scale.py --series 1000000      # one size
+    python bench/warehouse_scale.py --series 100000 --workers 1 2
+
+For each size G it builds a DuckDB warehouse (seeded generator: AR(1),
+seasonal AR and random-walk series, monthly, one VARCHAR key) in a temporary
+folder and times, each in a fresh subprocess (so peak memory is per task):
+
+* ``arflow run``: read, order selection up to 8 with the seasonal candidate,
+  diagnostics, gates, 12-step forecasts at 80% and 95%, publish to DuckDB;
+* the SQL shortcut: AR(1) per series with ``lag()`` and ``regr_slope`` /
+  ``regr_intercept`` plus its one-step forecast, written to a table;
+* a plain grouped scan (the floor: reading the data once);
+* the statsmodels per-series loop doing arflow's work on 300 series, scaled.
+
+Prints wall time, peak resident memory and the ratios arflow/SQL,
+arflow/scan and loop/arflow, plus arflow's own phase profile.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+
+
+def peak_mib() -> float:
+    own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    return (own + kids) / 1024.0  # own peak + the largest child's peak (an upper bound)
+
+
+def simulate_block(G: int, T: int, seed: int) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    burn = 60
+    e = rng.normal(size=(G, T + burn))
+    kind = rng.integers(0, 3, size=G)
+    a1 = np.where(kind == 0, 0.6, np.where(kind == 1, 0.2, 1.0))
+    a12 = np.where(kind == 1, 0.5, 0.0)
+    y = np.zeros((G, T + burn))
+    for t in range(12, T + burn):
+        y[:, t] = a1 * y[:, t - 1] + a12 * y[:, t - 12] + e[:, t]
+    return 500.0 + y[:, burn:]
+
+
+def build_warehouse(path: Path, G: int, T: int, block: int = 100_000) -> None:
+    import duckdb
+    import pyarrow as pa
+
+    start = np.datetime64("2015-01", "M")
+    months = (start + np.arange(T)).astype("datetime64[D]")
+    con = duckdb.connect(str(path))
+    con.execute("CREATE TABLE readings (site VARCHAR, period DATE, value DOUBLE)")
+    for b0 in range(0, G, block):
+        g = min(block, G - b0)
+        Y = simulate_block(g, T, seed=1000 + b0 // block)
+        ids = np.char.add("site-", np.char.zfill(np.arange(b0, b0 + g).astype(str), 7))
+        tbl = pa.table({
+            "site": pa.array(np.repeat(ids, T)),
+            "period": pa.array(np.tile(months, g)),
+            "value": pa.array(Y.ravel()),
+        })
+        con.register("chunk", tbl)
+        con.execute("INSERT INTO readings SELECT * FROM chunk")
+        con.unregister("chunk")
+    con.close()
+
+
+JOB = """\
+[job]
+name = "scale_bench"
+
+[source]
+database = "{db}"
+table = "readings"
+keys = ["site"]
+period = "period"
+value = "value"
+frequency = "month"
+
+[model]
+order = "auto"
+max_order = 8
+seasonal_lag = "auto"
+
+[forecast]
+horizon = 12
+coverage = [0.8, 0.95]
+
+[publish]
+database = "{out}"
+
+[run]
+chunk_series = {chunk}
+workers = {workers}
+"""
+
+SHORTCUT_SQL = """
+CREATE OR REPLACE TABLE shortcut_forecasts AS
+WITH lagged AS (
+    SELECT site, period, value, lag(value) OVER (PARTITION BY site ORDER BY period) AS prev
+    FROM readings
+), fits AS (
+    SELECT site, regr_slope(value, prev) AS b1, regr_intercept(value, prev) AS b0,
+           max(period) AS last_period, arg_max(value, period) AS last_value
+    FROM lagged WHERE prev IS NOT NULL GROUP BY site
+)
+SELECT site, last_period + INTERVAL 1 MONTH AS period, b0 + b1 * last_value AS forecast FROM fits
+"""
+
+
+def task(kind: str, db: str, workdir: str, workers: int, chunk: int) -> dict:
+    import duckdb
+
+    t0 = time.perf_counter()
+    extra: dict = {}
+    if kind == "arflow":
+        from arflow.job import run_job
+        from arflow.job_file import load_job
+
+        out = Path(workdir) / f"published_{workers}.duckdb"
+        out.unlink(missing_ok=True)
+        job = Path(workdir) / f"job_{workers}.toml"
+        job.write_text(JOB.format(db=db, out=out, chunk=chunk, workers=workers))
+        outcome = run_job(load_job(job))
+        extra = {"published": outcome.series_published, "series": outcome.series_total,
+                 "phases": dict(getattr(outcome, "phase_seconds", {}) or {})}
+    elif kind == "sql":
+        con = duckdb.connect(db)
+        con.execute(SHORTCUT_SQL)
+        extra = {"rows": con.execute("SELECT count(*) FROM shortcut_forecasts").fetchone()[0]}
+        con.execute("DROP TABLE shortcut_forecasts")
+        con.close()
+    elif kind == "scan":
+        con = duckdb.connect(db, read_only=True)
+        extra = {"groups": len(con.execute(
+            "SELECT site, count(*), sum(value), max(period) FROM readings GROUP BY site").fetchall())}
+        con.close()
+    elif kind == "loop":
+        sys.path.insert(0, str(HERE))
+        from core_speed import statsmodels_loop
+
+        Y = simulate_block(300, 120, seed=1)
+        secs = statsmodels_loop(Y)
+        return {"seconds": secs, "per_series": secs / 300, "rss_mib": peak_mib()}
+    return {"seconds": time.perf_counter() - t0, "rss_mib": peak_mib(), **extra}
+
+
+def run_task(kind: str, db: Path, workdir: Path, workers: int = 1, chunk: int = 50_000) -> dict:
+    cmd = [sys.executable, __file__, "--task", kind, "--db", str(db), "--workdir", str(workdir),
+           "--workers", str(workers), "--chunk-series", str(chunk)]
+    out = subprocess.run(cmd, check=True, capture_output=True, text=True, env=os.environ.copy())
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description="arflow end-to-end scale benchmark")
+    ap.add_argument("--series", type=int, nargs="+", default=[10_000, 100_000])
+    ap.add_argument("--periods", type=int, default=120)
+    ap.add_argument("--workers", type=int, nargs="+", default=[2])
+    ap.add_argument("--chunk-series", type=int, default=50_000)
+    ap.add_argument("--task")
+    ap.add_argument("--db")
+    ap.add_argument("--workdir")
+    a = ap.parse_args()
+    if a.task:
+        print(json.dumps(task(a.task, a.db, a.workdir, a.workers[0], a.chunk_series), default=str))
+        return
+    loop = run_task("loop", Path("-"), Path("-"))
+    print(f"statsmodels loop: {loop['per_series'] * 1e3:.2f} ms per series (300-series sample)")
+    header = (f"{'series':>10} {'wk':>3} {'arflow s':>9} {'sql s':>7} {'scan s':>7} {'arflow/sql':>10} "
+              f"{'arflow/scan':>11} {'loop/arflow':>11} {'arflow MiB':>10} {'sql MiB':>8}")
+    print(header)
+    for G in a.series:
+        with tempfile.TemporaryDirectory(prefix="arflow-bench-") as tmp:
+            tmp = Path(tmp)
+            db = tmp / "warehouse.duckdb"
+            t0 = time.perf_counter()
+            build_warehouse(db, G, a.periods)
+            build_s = time.perf_counter() - t0
+            scan = run_task("scan", db, tmp)
+            sql = run_task("sql", db, tmp)
+            for workers in a.workers:
+                arf = run_task("arflow", db, tmp, workers, a.chunk_series)
+                loop_total = loop["per_series"] * G
+                print(f"{G:>10,} {workers:>3} {arf['seconds']:>9.2f} {sql['seconds']:>7.2f} {scan['seconds']:>7.2f} "
+                      f"{arf['seconds'] / sql['seconds']:>10.2f} {arf['seconds'] / scan['seconds']:>11.1f} "
+                      f"{loop_total / arf['seconds']:>10.0f}x {arf['rss_mib']:>10,.0f} {sql['rss_mib']:>8,.0f}")
+                if arf.get("phases"):
+                    phases = ", ".join(f"{k} {v:.2f}s" for k, v in arf["phases"].items())
+                    print(f"{'':>14} phases: {phases}; per series {arf['seconds'] / G * 1e6:.1f} us")
+            print(f"{'':>14} (warehouse built in {build_s:.1f}s)")
+
+
+if __name__ == "__main__":
+    main()
