@@ -41,6 +41,11 @@ class ForecastRun:
     forecasts
         Published series only: keys, ``period``, ``step``, ``forecast``,
         ``lower_NN`` / ``upper_NN`` per coverage level.
+    backtests
+        When the backtest is enabled: keys, ``model`` ("ar", "naive",
+        "seasonal_naive"), ``horizon`` (step), ``rmse``, ``mae``, ``mase``,
+        ``coverage_NN`` (empirical interval coverage of the AR model),
+        ``origins`` (origins scored).
     """
 
     models: pl.DataFrame
@@ -49,6 +54,7 @@ class ForecastRun:
     forecasts: pl.DataFrame
     as_of: Any
     settings: Settings
+    backtests: pl.DataFrame | None = None
 
     @property
     def series_total(self) -> int:
@@ -127,4 +133,5 @@ def forecast(
         forecasts=frames["forecasts"],
         as_of=as_of_label,
         settings=settings,
+        backtests=frames.get("backtests"),
     )

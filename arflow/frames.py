@@ -349,4 +349,36 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
         cols.append(pl.Series(f"lower_{lab}", res.forecasts.lower[ci][pub].ravel()))
         cols.append(pl.Series(f"upper_{lab}", res.forecasts.upper[ci][pub].ravel()))
     fc = keys[rep].with_columns(*cols)
-    return {"models": models, "gates": gates_df, "residual_acf": acf, "forecasts": fc}
+    out = {"models": models, "gates": gates_df, "residual_acf": acf, "forecasts": fc}
+    if res.backtest is not None:
+        out["backtests"] = backtest_frame(keys, res)
+    return out
+
+
+def backtest_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:
+    """Long backtest accuracy: one row per series, method and step (series with scored origins)."""
+    bt = res.backtest
+    scored = np.flatnonzero(bt.n_origins > 0)
+    H = bt.horizon
+    parts = []
+    for method, acc in (("ar", bt.model), ("naive", bt.naive), ("seasonal_naive", bt.seasonal_naive)):
+        rows = scored[np.isfinite(acc.rmse[scored]).any(axis=1)] if len(scored) else scored
+        if not len(rows):
+            continue
+        rep = np.repeat(rows, H)
+        cols = [
+            pl.lit(method).alias("model"),
+            pl.Series("horizon", np.tile(np.arange(1, H + 1, dtype=np.int32), len(rows))),
+            _nullable(acc.rmse[rows].ravel()).alias("rmse"),
+            _nullable(acc.mae[rows].ravel()).alias("mae"),
+            _nullable(acc.mase[rows].ravel()).alias("mase"),
+        ]
+        for ci, level in enumerate(bt.coverage):
+            lab = coverage_label(level)
+            vals = bt.coverage_rate[ci][rows].ravel() if method == "ar" else np.full(len(rep), np.nan)
+            cols.append(_nullable(vals).alias(f"coverage_{lab}"))
+        cols.append(pl.Series("origins", acc.count[rows].ravel().astype(np.int32)))
+        parts.append(keys[rep].with_columns(*cols))
+    if not parts:
+        return keys.clear().with_columns(pl.lit("ar").alias("model"))
+    return pl.concat(parts, how="diagonal_relaxed")

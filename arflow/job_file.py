@@ -18,8 +18,8 @@ from pathlib import Path
 from typing import Any
 
 from .errors import SettingsError
-from .settings import FREQUENCIES, ForecastSettings, GateSettings, ModelSettings, Settings
-from .warehouse.identifiers import check_identifier, check_qualified
+from .settings import FREQUENCIES, BacktestSettings, ForecastSettings, GateSettings, ModelSettings, Settings
+from .warehouse.identifiers import check_identifier, check_qualified, is_identifier
 
 ON_FAILURE_POLICIES = ("keep-previous", "withdraw")
 JOB_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
@@ -35,8 +35,10 @@ RESERVED_COLUMNS = frozenset(
     threshold passed lag autocorrelation t_stat""".split()
 )
 
-_SOURCE_KEYS = ("database", "parquet", "table", "query", "keys", "period", "value", "frequency")
-_PUBLISH_KEYS = ("database", "schema", "on_failure")
+_SOURCE_KEYS = ("engine", "database", "parquet", "table", "query", "keys", "period", "value", "frequency")
+_PUBLISH_KEYS = ("database", "lakehouse", "schema", "on_failure")
+ENGINES = ("duckdb", "spark")
+_SPARK_KEYS = ("master", "partitions", "config")
 _RUN_KEYS = ("chunk_series", "workers")
 _SECTIONS: dict[str, tuple[str, ...]] = {
     "job": ("name",),
@@ -44,8 +46,10 @@ _SECTIONS: dict[str, tuple[str, ...]] = {
     "model": tuple(f.name for f in fields(ModelSettings)),
     "forecast": tuple(f.name for f in fields(ForecastSettings)),
     "gates": tuple(f.name for f in fields(GateSettings)),
+    "backtest": tuple(f.name for f in fields(BacktestSettings)),
     "publish": _PUBLISH_KEYS,
     "run": _RUN_KEYS,
+    "spark": _SPARK_KEYS,
 }
 
 
@@ -57,6 +61,9 @@ class SourceSpec:
     With a database, exactly one of ``table`` (``("table",)`` or
     ``("schema", "table")``) and ``query``; with parquet, ``query`` is optional
     and reads the files as the relation ``source``.
+
+    ``engine = "spark"``: exactly one of ``table`` (a name in Spark's catalog,
+    up to ``catalog.schema.table``) and ``parquet`` (a path or URI Spark reads).
     """
 
     keys: tuple[str, ...]
@@ -66,9 +73,12 @@ class SourceSpec:
     parquet: str | None = None
     table: tuple[str, ...] | None = None
     query: str | None = None
+    engine: str = "duckdb"
 
     def describe(self) -> str:
         """Short human description for logs."""
+        if self.engine == "spark":
+            return f"spark table {'.'.join(self.table)}" if self.table else f"spark parquet {self.parquet}"
         where = str(self.database) if self.database else f"parquet {self.parquet}"
         what = ".".join(self.table) if self.table else ("query" if self.query else "files")
         return f"{where} ({what})"
@@ -76,11 +86,18 @@ class SourceSpec:
 
 @dataclass(frozen=True)
 class PublishSpec:
-    """Where vetted results go and what happens to a series that fails its gates."""
+    """Where vetted results go and what happens to a series that fails its gates.
 
-    database: Path
+    ``database``: the DuckDB warehouse (None when only ``lakehouse`` is set).
+    ``lakehouse``: a folder of Parquet datasets partitioned by run, each run
+    made visible by a commit marker written last (see
+    :mod:`arflow.warehouse.parquet_store`).
+    """
+
+    database: Path | None
     schema: str = "arflow"
     on_failure: str = "keep-previous"
+    lakehouse: Path | None = None
 
 
 @dataclass(frozen=True)
@@ -89,6 +106,22 @@ class RunOptions:
 
     chunk_series: int = 50_000
     workers: int = 1
+
+
+@dataclass(frozen=True)
+class SparkOptions:
+    """``[spark]``: how arflow starts Spark when no session is active.
+
+    ``master``: e.g. ``"local[2]"`` or ``"spark://host:7077"`` (None: Spark's
+    own setting, else ``local[*]``). ``partitions``: number of tasks the
+    series are hash-bucketed into (None: one per ``run.chunk_series`` series,
+    at least Spark's default parallelism). ``config``: extra Spark settings,
+    as (key, value) text pairs, used only when arflow starts the session.
+    """
+
+    master: str | None = None
+    partitions: int | None = None
+    config: tuple[tuple[str, str], ...] = ()
 
 
 @dataclass(frozen=True)
@@ -102,6 +135,7 @@ class JobSpec:
     run: RunOptions
     config_sha256: str
     path: Path | None = None
+    spark: SparkOptions | None = None
 
 
 def load_job(path: str | Path) -> JobSpec:
@@ -143,11 +177,15 @@ def parse_job(data: dict[str, Any], *, base_dir: Path, path: Path | None = None)
         model=ModelSettings(**_tuples(data.get("model", {}))),
         forecast=ForecastSettings(**_tuples(data.get("forecast", {}))),
         gates=GateSettings(**_tuples(data.get("gates", {}))),
+        backtest=BacktestSettings(**_tuples(data.get("backtest", {}))),
     )
     publish = _parse_publish(data.get("publish", {}), source, base_dir)
     run = _parse_run(data.get("run", {}))
+    spark = _parse_spark(data.get("spark"), source)
     digest = hashlib.sha256(json.dumps(data, sort_keys=True, default=str).encode()).hexdigest()
-    return JobSpec(name=name, source=source, settings=settings, publish=publish, run=run, config_sha256=digest, path=path)
+    return JobSpec(
+        name=name, source=source, settings=settings, publish=publish, run=run, config_sha256=digest, path=path, spark=spark
+    )
 
 
 def _unknown(full: str, key: str, allowed: tuple[str, ...], what: str) -> str:
@@ -176,6 +214,11 @@ def _resolve(value: Any, key: str, base_dir: Path) -> Path:
 def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
     if section is None:
         raise SettingsError("[source] is missing; add it with database (or parquet), table (or query), keys, period, value and frequency")
+    engine = section.get("engine", "duckdb")
+    if engine not in ENGINES:
+        raise SettingsError(f"source.engine = {engine!r} is not allowed; use " + " / ".join(f'"{e}"' for e in ENGINES))
+    if engine == "spark":
+        return _parse_spark_source(section, base_dir)
     has_db, has_pq = "database" in section, "parquet" in section
     if has_db == has_pq:
         raise SettingsError("[source] needs exactly one of database (a DuckDB file) and parquet (a path or glob)")
@@ -195,6 +238,46 @@ def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
             raise SettingsError("[source] takes either table or query, not both; remove one")
     if has_db and table is None and query is None:
         raise SettingsError("[source] needs table (e.g. table = \"sales\") or query (one SELECT statement)")
+    keys_t, period, value, frequency = _parse_columns(section)
+    spec = SourceSpec(keys=keys_t, period=period, value=value, database=database, parquet=parquet, table=table, query=query)
+    return spec, frequency
+
+
+def _parse_spark_source(section: dict[str, Any], base_dir: Path) -> tuple[SourceSpec, str]:
+    if "database" in section:
+        raise SettingsError(
+            'source.database names a DuckDB file, which Spark does not read; with engine = "spark" give table '
+            "(a Spark table) or parquet (a path Spark reads)"
+        )
+    if "query" in section:
+        raise SettingsError(
+            'source.query is not used with engine = "spark"; register your query as a Spark view and name it in table'
+        )
+    if ("table" in section) == ("parquet" in section):
+        raise SettingsError('with engine = "spark", [source] needs exactly one of table (a Spark table) and parquet (a path)')
+    table: tuple[str, ...] | None = None
+    parquet: str | None = None
+    if "table" in section:
+        name = section["table"]
+        parts = name.split(".") if isinstance(name, str) else []
+        if not (1 <= len(parts) <= 3 and all(is_identifier(p) for p in parts)):
+            raise SettingsError(
+                f"source.table = {name!r} is not allowed; use table, schema.table or catalog.schema.table "
+                "made of letters, digits and underscores"
+            )
+        table = tuple(parts)
+    else:
+        raw = section["parquet"]
+        if isinstance(raw, str) and re.match(r"^[A-Za-z][A-Za-z0-9+.-]*://", raw):
+            parquet = raw  # a URI (s3a://, hdfs://, file://): Spark resolves it
+        else:
+            parquet = str(_resolve(raw, "source.parquet", base_dir))
+    keys_t, period, value, frequency = _parse_columns(section)
+    spec = SourceSpec(keys=keys_t, period=period, value=value, parquet=parquet, table=table, engine="spark")
+    return spec, frequency
+
+
+def _parse_columns(section: dict[str, Any]) -> tuple[tuple[str, ...], str, str, str]:
     keys = _required(section, "source", "keys")
     if isinstance(keys, str):
         keys = [keys]
@@ -214,24 +297,30 @@ def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
     frequency = _required(section, "source", "frequency")
     if frequency not in FREQUENCIES:
         raise SettingsError(f"source.frequency = {frequency!r} is not allowed; use " + " / ".join(f'"{f}"' for f in FREQUENCIES))
-    spec = SourceSpec(keys=keys_t, period=period, value=value, database=database, parquet=parquet, table=table, query=query)
-    return spec, frequency
+    return keys_t, period, value, frequency
 
 
 def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) -> PublishSpec:
+    lakehouse = _resolve(section["lakehouse"], "publish.lakehouse", base_dir) if "lakehouse" in section else None
+    database: Path | None
     if "database" in section:
         database = _resolve(section["database"], "publish.database", base_dir)
     elif source.database is not None:
         database = source.database
+    elif lakehouse is not None:
+        database = None
     else:
-        raise SettingsError("publish.database is missing; with a parquet source name the DuckDB file to publish to")
+        what = "a Spark source" if source.engine == "spark" else "a parquet source"
+        raise SettingsError(
+            f"publish.database is missing; with {what} name the DuckDB file to publish to (or publish.lakehouse, a folder)"
+        )
     schema = check_identifier(section.get("schema", "arflow"), "publish.schema")
     on_failure = section.get("on_failure", "keep-previous")
     if on_failure not in ON_FAILURE_POLICIES:
         raise SettingsError(
             f"publish.on_failure = {on_failure!r} is not allowed; use " + " / ".join(f'"{p}"' for p in ON_FAILURE_POLICIES)
         )
-    return PublishSpec(database=database, schema=schema, on_failure=on_failure)
+    return PublishSpec(database=database, schema=schema, on_failure=on_failure, lakehouse=lakehouse)
 
 
 def _parse_run(section: dict[str, Any]) -> RunOptions:
@@ -242,3 +331,28 @@ def _parse_run(section: dict[str, Any]) -> RunOptions:
     if not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
         raise SettingsError(f"run.workers = {workers!r} is not allowed; use an integer from 1 to 256")
     return RunOptions(chunk_series=chunk, workers=workers)
+
+
+def _parse_spark(section: dict[str, Any] | None, source: SourceSpec) -> SparkOptions | None:
+    if source.engine != "spark":
+        if section is not None:
+            raise SettingsError('[spark] is only used with [source] engine = "spark"; remove it or set the engine')
+        return None
+    section = section or {}
+    master = section.get("master")
+    if master is not None and not (isinstance(master, str) and master.strip()):
+        raise SettingsError(f"spark.master = {master!r} is not allowed; use a Spark master URL such as \"local[2]\"")
+    partitions = section.get("partitions")
+    if partitions is not None and not (isinstance(partitions, int) and not isinstance(partitions, bool) and 1 <= partitions <= 100_000):
+        raise SettingsError(f"spark.partitions = {partitions!r} is not allowed; use an integer from 1 to 100000")
+    config = section.get("config", {})
+    if not isinstance(config, dict):
+        raise SettingsError('spark.config must be a table of Spark settings, e.g. config = { "spark.driver.memory" = "4g" }')
+    pairs = []
+    for key, value in config.items():
+        if not key.startswith("spark.") or isinstance(value, (dict, list)):
+            raise SettingsError(
+                f"spark.config: {key} = {value!r} is not allowed; use Spark setting names (spark.*) with text, number or true/false values"
+            )
+        pairs.append((key, str(value).lower() if isinstance(value, bool) else str(value)))
+    return SparkOptions(master=master.strip() if master else None, partitions=partitions, config=tuple(pairs))

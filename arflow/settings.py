@@ -185,6 +185,52 @@ class GateSettings:
             _fail("gates.max_quarantine_share", self.max_quarantine_share, "a number from 0 to 1")
 
 
+NAIVE_GATE_MODES = ("off", "warn", "enforce")
+
+
+@dataclass(frozen=True)
+class BacktestSettings:
+    """Rolling-origin backtest and the ``beats_naive`` gate.
+
+    ``origins``: how many forecast origins (expanding window) to refit and
+    score; ``horizon``: steps scored per origin (default: the forecast
+    horizon). ``naive_gate``: ``"off"``, ``"warn"`` (recorded in the gates
+    table, never quarantines) or ``"enforce"`` (quarantine with reason
+    ``worse_than_naive``). The gate statistic is model RMSE / naive RMSE
+    pooled over the origins and steps 1..``naive_steps``; a series fails when
+    it exceeds ``1 + naive_tolerance``. Few steps and many origins keep the
+    ratio from showing chance skill (errors of overlapping horizons are
+    strongly correlated). Measured with the defaults (24 origins, step 1) on
+    1,000 simulated series of length 150: stationary AR(1) with phi 0.5 beats
+    naive in 96%; random walks show a ratio below 0.95 in 3.7%
+    (``bench/calibration.py``).
+
+    >>> BacktestSettings(origins=24).naive_steps
+    1
+    """
+
+    enabled: bool = True
+    origins: int = 24
+    horizon: int | None = None
+    naive_gate: str = "warn"
+    naive_tolerance: float = 0.05
+    naive_steps: int = 1
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.enabled, bool):
+            _fail("backtest.enabled", self.enabled, "true or false")
+        if not (_is_int(self.origins) and 1 <= self.origins <= 500):
+            _fail("backtest.origins", self.origins, "an integer from 1 to 500")
+        if self.horizon is not None and not (_is_int(self.horizon) and 1 <= self.horizon <= 1000):
+            _fail("backtest.horizon", self.horizon, "an integer from 1 to 1000, or leave it out")
+        if self.naive_gate not in NAIVE_GATE_MODES:
+            _fail("backtest.naive_gate", self.naive_gate, '"off", "warn" or "enforce"')
+        if not (_is_num(self.naive_tolerance) and 0 <= self.naive_tolerance < 10):
+            _fail("backtest.naive_tolerance", self.naive_tolerance, "a number from 0 (e.g. 0.05 for 5%)")
+        if not (_is_int(self.naive_steps) and 1 <= self.naive_steps <= 1000):
+            _fail("backtest.naive_steps", self.naive_steps, "an integer from 1 up to the backtest horizon")
+
+
 @dataclass(frozen=True)
 class Settings:
     """Everything the core needs for one run (besides the data)."""
@@ -193,6 +239,7 @@ class Settings:
     model: ModelSettings = field(default_factory=ModelSettings)
     forecast: ForecastSettings = field(default_factory=ForecastSettings)
     gates: GateSettings = field(default_factory=GateSettings)
+    backtest: BacktestSettings = field(default_factory=BacktestSettings)
 
     def __post_init__(self) -> None:
         if self.frequency not in FREQUENCIES:

@@ -222,12 +222,13 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off")
         )
     if naive_mode != "off" and x.naive_statistic is not None:
         ok = ~(x.naive_statistic > x.naive_threshold)
+        # "warn" records the outcome in the gates table but never holds a series back
         b.add(
             "beats_naive",
-            ok if naive_mode == "enforce" else np.ones(G, dtype=bool),
+            ok,
             statistic=x.naive_statistic,
             threshold=x.naive_threshold,
             applies=fitted & np.isfinite(x.naive_statistic),
-            reason="worse_than_naive",
+            reason="worse_than_naive" if naive_mode == "enforce" else None,
         )
     return b.outcome()

@@ -11,7 +11,7 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from ..settings import Settings
-from . import autoreg, diagnostics, gates, unitroot
+from . import autoreg, backtest, diagnostics, gates, unitroot
 from .forecast import Forecasts, forecast_ar
 from .panel import CONSTANT, NO_DATA, Panel
 
@@ -31,6 +31,7 @@ class CoreResult:
     arch: diagnostics.TestResult | None
     forecasts: Forecasts
     outcome: gates.GateOutcome
+    backtest: backtest.BacktestResult | None = None
 
 
 def _diff_right_aligned(Y: np.ndarray) -> np.ndarray:
@@ -134,8 +135,22 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         fs.coverage,
         differenced,
     )
+    bt = None
+    bs = settings.backtest
+    if bs.enabled:
+        bt = backtest.rolling_origin(
+            Y,
+            fit.lag_mask,
+            fit.lags,
+            differenced,
+            origins=bs.origins,
+            horizon=bs.horizon or fs.horizon,
+            coverage=fs.coverage,
+            season=seasonal,
+            min_train=gs.min_observations,
+        )
     return dict(fit=fit, differenced=differenced, unit_root=unit_root, adf=adf, kpss=kp, acf=acf,
-                residual_test=rtest, arch=arch, forecasts=fc)
+                residual_test=rtest, arch=arch, forecasts=fc, backtest=bt)
 
 
 def _concat(objs: list, axis: int = 0):
@@ -148,16 +163,18 @@ def _concat(objs: list, axis: int = 0):
             W = max(o.shape[1] for o in objs)
             objs = [np.concatenate([np.full((o.shape[0], W - o.shape[1]), np.nan), o], axis=1) for o in objs]
         return np.concatenate(objs, axis=axis)
-    if isinstance(first, tuple):
-        return first
+    if isinstance(first, np.ndarray) and first.ndim == 0 or not hasattr(first, "__dataclass_fields__"):
+        return first  # scalars and tuples shared by every block
     cls = type(first)
     out = {}
     for f in fields(cls):
         vals = [getattr(o, f.name) for o in objs]
         if f.name == "lags":
             out[f.name] = vals[0]
-        elif f.name in ("lower", "upper"):
+        elif f.name in ("lower", "upper", "coverage_rate", "coverage_rate_all"):
             out[f.name] = np.concatenate(vals, axis=1)
+        elif f.name == "origin_columns":
+            out[f.name] = vals[0]
         else:
             out[f.name] = _concat(vals)
     return cls(**out)
@@ -193,6 +210,7 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         blocks = [_run_block(p, settings) for p in pieces]
     parts = {k: _concat([b[k] for b in blocks]) for k in blocks[0]}
     fit, fc, rtest, arch = parts["fit"], parts["forecasts"], parts["residual_test"], parts["arch"]
+    bt = parts["backtest"]
     rp = rtest.pvalue
     if gs.series_fdr is not None:
         # Benjamini-Hochberg across all series of the run
@@ -216,7 +234,9 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         forecast_finite=finite,
         arch_statistic=None if arch is None else arch.statistic,
         arch_pvalue=None if arch is None else arch.pvalue,
+        naive_statistic=None if bt is None else bt.relative_rmse_over(settings.backtest.naive_steps),
+        naive_threshold=1.0 + settings.backtest.naive_tolerance,
     )
-    outcome = gates.decide(inputs, gs, ms.unit_root)
+    outcome = gates.decide(inputs, gs, ms.unit_root, settings.backtest.naive_gate if bt is not None else "off")
     return CoreResult(panel, fit, parts["differenced"], parts["unit_root"], parts["adf"], parts["kpss"],
-                      parts["acf"], rtest, arch, fc, outcome)
+                      parts["acf"], rtest, arch, fc, outcome, bt)
