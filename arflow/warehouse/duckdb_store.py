@@ -31,9 +31,12 @@ from .duckdb_source import first_line, is_lock_error, lock_message
 from .identifiers import quote
 
 #: Tables written per run, in insert order (the fault hook names these).
-RUN_TABLES = ("series_status", "models", "gates", "residual_acf", "forecasts")
-DDL_FILES = ("runs", "vintages", "series_status", "models", "gates", "residual_acf", "forecasts")
+RUN_TABLES = ("series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy")
+DDL_FILES = ("runs", "vintages", "series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy")
 VIEW_FILE = "published_forecasts"
+ACCURACY_VIEW = "accuracy_by_horizon"
+#: per coverage level: table -> column prefixes added with ALTER TABLE
+COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("coverage",), "accuracy": ("covered",)}
 _STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
 
 
@@ -100,10 +103,15 @@ def load_sql(name: str) -> str:
     return resources.files("arflow.sql").joinpath(f"{name}.sql").read_text(encoding="utf-8")
 
 
-def render_sql(name: str, layout: TableLayout) -> str:
+def render_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ...] = ()) -> str:
     """Fill a DDL template with quoted identifiers and whitelisted types only."""
     keys = [quote(k) for k in layout.keys]
+    hit_rates = "".join(
+        f",\n       avg(CASE WHEN {quote('covered_' + lab)} THEN 1.0 ELSE 0.0 END) AS {quote('hit_rate_' + lab)}"
+        for lab in coverage_labels
+    )
     return Template(load_sql(name)).substitute(
+        hit_rates=hit_rates,
         schema=quote(layout.schema),
         period_type=layout.period_type,
         key_defs=",\n    ".join(f"{k} {t} NOT NULL" for k, t in zip(keys, layout.key_types)),
@@ -188,13 +196,20 @@ class DuckDBStore:
         self,
         record: RunRecord,
         *,
-        models: pl.DataFrame,
-        gates: pl.DataFrame,
-        residual_acf: pl.DataFrame,
-        forecasts: pl.DataFrame,
         coverage_labels: tuple[str, ...],
+        tables: "RunTables | None" = None,
+        **frames: pl.DataFrame | None,
     ) -> int:
-        """Write one run atomically; returns the attempt number of this vintage."""
+        """Write one run atomically; returns the attempt number of this vintage.
+
+        The run's rows come from ``tables`` (frames in memory or Parquet files
+        staged on disk, see :class:`RunTables`) or, for convenience, from
+        keyword frames (``models=``, ``gates=``, ``residual_acf=``,
+        ``forecasts=``, ``backtests=``, ``actuals=``). ``actuals`` (keys,
+        period, value) lets the run record, once, how earlier published
+        vintages fared (table ``accuracy``).
+        """
+        tables = tables if tables is not None else FrameTables(frames)
         con = _open(self.database)
         try:
             con.execute("BEGIN TRANSACTION")
@@ -204,14 +219,16 @@ class DuckDBStore:
             ).fetchone() or (None,)
             attempt = int(previous or 0) + 1
             for table in (*RUN_TABLES, "runs"):
-                con.execute(f"DELETE FROM {self._schema}.{quote(table)} WHERE run_id = ?", [record.run_id])
+                column = "recorded_by" if table == "accuracy" else "run_id"
+                con.execute(f"DELETE FROM {self._schema}.{quote(table)} WHERE {column} = ?", [record.run_id])
             con.execute(f"DELETE FROM {self._schema}.vintages WHERE job = ? AND as_of = ?", [record.job, record.as_of])
-            status = models.select(*self.layout.keys, "decision").with_columns(
-                pl.lit(record.job).alias("job"), pl.lit(record.on_failure).alias("on_failure")
-            ) if models.height else pl.DataFrame()
-            frames = {"series_status": status, "models": models, "gates": gates, "residual_acf": residual_acf, "forecasts": forecasts}
             for table in RUN_TABLES:
-                self._insert(con, table, frames[table], record)
+                if table == "series_status":
+                    self._insert_status(con, tables, record)
+                elif table == "accuracy":
+                    self._record_accuracy(con, tables, record, coverage_labels)
+                else:
+                    self._insert(con, table, tables, record)
                 _fault_point(table)
             self._insert_run(con, record, attempt)
             _fault_point("runs")
@@ -221,6 +238,7 @@ class DuckDBStore:
             )
             _fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
+            con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
             con.execute("COMMIT")
             return attempt
         except BaseException as exc:
@@ -234,6 +252,7 @@ class DuckDBStore:
                 ) from None
             raise
         finally:
+            tables.release(con)
             con.close()
 
     def _ensure_tables(self, con: duckdb.DuckDBPyConnection, coverage_labels: tuple[str, ...]) -> None:
@@ -241,12 +260,17 @@ class DuckDBStore:
         con.execute(f"CREATE SCHEMA IF NOT EXISTS {self._schema}")
         for name in DDL_FILES:
             con.execute(render_sql(name, self.layout))
-        have = self._columns(con, "forecasts")
-        for label in coverage_labels:
-            for side in ("lower", "upper"):
-                col = f"{side}_{label}"
-                if col not in have:
-                    con.execute(f"ALTER TABLE {self._schema}.forecasts ADD COLUMN {quote(col)} DOUBLE")
+        for table, prefixes in COVERAGE_COLUMNS.items():
+            have = self._columns(con, table)
+            kind = "BOOLEAN" if table == "accuracy" else "DOUBLE"
+            for label in coverage_labels:
+                for prefix in prefixes:
+                    col = f"{prefix}_{label}"
+                    if col not in have:
+                        con.execute(f"ALTER TABLE {self._schema}.{quote(table)} ADD COLUMN {quote(col)} {kind}")
+
+    def _labels(self, con: duckdb.DuckDBPyConnection) -> tuple[str, ...]:
+        return tuple(sorted(c[len("covered_"):] for c in self._columns(con, "accuracy") if c.startswith("covered_")))
 
     def _columns(self, con: duckdb.DuckDBPyConnection, table: str) -> set[str]:
         rows = con.execute(
@@ -255,20 +279,65 @@ class DuckDBStore:
         ).fetchall()
         return {r[0] for r in rows}
 
-    def _insert(self, con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, record: RunRecord) -> None:
-        if frame.height == 0:
+    def _insert(self, con: duckdb.DuckDBPyConnection, table: str, tables: "RunTables", record: RunRecord) -> None:
+        source = tables.relation(con, table)
+        if source is None:
             return
-        frame = frame.with_columns(pl.lit(record.run_id).alias("run_id"))
-        if table == "series_status":
-            frame = frame.with_columns(pl.lit(record.as_of).alias("as_of"))
         have = self._columns(con, table)
-        cols = [c for c in frame.columns if c in have]
-        con.register("arflow_stage", frame.select(cols).to_arrow())
-        try:
-            col_list = ", ".join(quote(c) for c in cols)
-            con.execute(f"INSERT INTO {self._schema}.{quote(table)} BY NAME SELECT {col_list} FROM arflow_stage")
-        finally:
-            con.unregister("arflow_stage")
+        cols = [c for c in tables.columns(table) if c in have and c != "run_id"]
+        col_list = ", ".join(quote(c) for c in cols)
+        con.execute(
+            f"INSERT INTO {self._schema}.{quote(table)} BY NAME SELECT ? AS run_id, {col_list} FROM {source}",
+            [record.run_id],
+        )
+
+    def _insert_status(self, con: duckdb.DuckDBPyConnection, tables: "RunTables", record: RunRecord) -> None:
+        source = tables.relation(con, "models")
+        if source is None:
+            return
+        keys = ", ".join(quote(k) for k in self.layout.keys)
+        con.execute(
+            f"INSERT INTO {self._schema}.series_status BY NAME "
+            f"SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision, ? AS on_failure FROM {source}",
+            [record.run_id, record.job, record.as_of, record.on_failure],
+        )
+
+    def _record_accuracy(
+        self, con: duckdb.DuckDBPyConnection, tables: "RunTables", record: RunRecord, coverage_labels: tuple[str, ...]
+    ) -> None:
+        """Score earlier published vintages of this job against the actuals this run saw (once each)."""
+        source = tables.relation(con, "actuals")
+        if source is None:
+            return
+        s = self._schema
+        keys = [quote(k) for k in self.layout.keys]
+        on = " AND ".join(f"a.{k} = f.{k}" for k in keys)
+        same = " AND ".join(f"x.{k} = f.{k}" for k in keys)
+        value = quote(tables.value_column)
+        period = quote(tables.period_column)
+        labels = [lab for lab in self._labels(con) if {f"lower_{lab}", f"upper_{lab}"} <= self._columns(con, "forecasts")]
+        covered = "".join(
+            f", CASE WHEN f.{quote('lower_' + lab)} IS NULL THEN NULL "
+            f"ELSE a.{value} BETWEEN f.{quote('lower_' + lab)} AND f.{quote('upper_' + lab)} END AS {quote('covered_' + lab)}"
+            for lab in labels
+        )
+        con.execute(
+            f"""
+            INSERT INTO {s}.accuracy BY NAME
+            SELECT f.run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
+                   a.{value} AS actual, a.{value} - f.forecast AS error,
+                   CASE WHEN a.{value} <> 0 THEN abs((a.{value} - f.forecast) / a.{value}) END AS abs_pct_error,
+                   ? AS recorded_by{covered}
+            FROM {s}.forecasts AS f
+            JOIN {s}.vintages AS v ON v.run_id = f.run_id AND v.job = ? AND v.as_of < ?
+            JOIN {source} AS a ON {on} AND a.{period} = f.period
+            WHERE a.{value} IS NOT NULL AND isfinite(a.{value})
+              AND NOT EXISTS (
+                  SELECT 1 FROM {s}.accuracy AS x WHERE x.run_id = f.run_id AND x.period = f.period AND {same}
+              )
+            """,
+            [record.run_id, record.job, record.as_of],
+        )
 
     def _insert_run(self, con: duckdb.DuckDBPyConnection, record: RunRecord, attempt: int) -> None:
         duration = (record.finished_at - record.started_at).total_seconds()
@@ -297,3 +366,53 @@ class DuckDBStore:
         cols = ", ".join(quote(c) for c in values)
         marks = ", ".join("?" for _ in values)
         con.execute(f"INSERT INTO {self._schema}.runs ({cols}) VALUES ({marks})", list(values.values()))
+
+
+class RunTables:
+    """The rows of one run, as DuckDB can read them inside the publishing transaction.
+
+    Subclasses hold them in memory (:class:`FrameTables`) or as Parquet files
+    staged on local disk (:class:`arflow.warehouse.stage.RunStage`), which keeps
+    a large run's memory bounded by one chunk.
+    """
+
+    value_column = "value"
+    period_column = "period"
+
+    def columns(self, table: str) -> list[str]:  # pragma: no cover - interface
+        raise NotImplementedError
+
+    def relation(self, con: duckdb.DuckDBPyConnection, table: str) -> str | None:  # pragma: no cover
+        """A FROM-clause expression for ``table`` (None when the run has no such rows)."""
+        raise NotImplementedError
+
+    def release(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Undo what :meth:`relation` registered on ``con``."""
+
+
+class FrameTables(RunTables):
+    """A run's tables as polars frames (``actuals`` carries keys, ``period`` and ``value``)."""
+
+    def __init__(self, frames: dict[str, pl.DataFrame | None]) -> None:
+        self.frames = {k: v for k, v in frames.items() if v is not None and v.height}
+        self._registered: list[str] = []
+
+    def columns(self, table: str) -> list[str]:
+        return self.frames[table].columns
+
+    def relation(self, con: duckdb.DuckDBPyConnection, table: str) -> str | None:
+        frame = self.frames.get(table)
+        if frame is None:
+            return None
+        name = f"arflow_stage_{table}"
+        con.register(name, frame.to_arrow())
+        self._registered.append(name)
+        return name
+
+    def release(self, con: duckdb.DuckDBPyConnection) -> None:
+        for name in self._registered:
+            try:
+                con.unregister(name)
+            except duckdb.Error:
+                pass
+        self._registered.clear()

@@ -1,0 +1,16 @@
+-- How published forecasts fared once their actuals arrived: one row per
+-- forecast vintage (run_id), series and forecast period, written once by the
+-- first run that sees the actual. covered_NN columns (added with ALTER TABLE)
+-- say whether the NN% interval held the actual.
+CREATE TABLE IF NOT EXISTS ${schema}.accuracy (
+    run_id          VARCHAR NOT NULL,
+    job             VARCHAR NOT NULL,
+    ${key_defs},
+    period          ${period_type} NOT NULL,
+    step            INTEGER NOT NULL,
+    forecast        DOUBLE,
+    actual          DOUBLE,
+    error           DOUBLE,
+    abs_pct_error   DOUBLE,
+    recorded_by     VARCHAR NOT NULL
+);
