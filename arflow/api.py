@@ -89,7 +89,9 @@ def forecast(
     """Fit, check, gate and forecast every series of a long frame.
 
     ``frame`` is a polars DataFrame (or LazyFrame) or a pyarrow Table with one
-    row per series and period. ``keys`` name the columns that identify a
+    row per series and period, or a Spark DataFrame (needs the ``spark``
+    extra; the work then runs in Spark tasks on buckets of whole series, see
+    :mod:`arflow.spark_engine`). ``keys`` name the columns that identify a
     series; ``period`` is a Date/Datetime/ISO-text column (or integers with
     ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
     or int) ignores later rows; by default it is the latest period present.
@@ -113,6 +115,10 @@ def forecast(
 
     settings = settings or Settings()
     key_list = [keys] if isinstance(keys, str) else list(keys)
+    if _is_spark_frame(frame):  # computed by Spark tasks, each calling this function on whole series
+        from .spark_engine import forecast_spark_frame
+
+        return forecast_spark_frame(frame, keys=key_list, period=period, value=value, settings=settings, as_of=as_of)
     inp = to_panel_inputs(frame, key_list, period, value, settings.frequency)
     as_of_ord = encode_as_of(as_of, inp.codec)
     panel = build_panel(
@@ -135,3 +141,8 @@ def forecast(
         settings=settings,
         backtests=frames.get("backtests"),
     )
+
+
+def _is_spark_frame(frame: Any) -> bool:
+    """A Spark DataFrame, recognised without importing pyspark."""
+    return type(frame).__module__.startswith("pyspark.") and hasattr(frame, "sparkSession") and hasattr(frame, "groupBy")

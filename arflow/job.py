@@ -11,7 +11,7 @@ import datetime as dt
 import time
 from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from importlib import metadata
 from pathlib import Path
 from typing import Any
@@ -24,6 +24,7 @@ from .job_file import JobSpec, load_job
 from .settings import coverage_label
 from .warehouse.duckdb_source import DuckDBSource
 from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, run_id_for
+from .warehouse.parquet_store import ParquetStore
 
 Event = dict[str, Any]
 EventSink = Callable[[Event], None]
@@ -86,18 +87,31 @@ def _layout(spec: JobSpec, source: DuckDBSource) -> TableLayout:
 
 
 def _target_text(spec: JobSpec) -> str:
-    return f"{spec.publish.database} (schema {spec.publish.schema}, view {spec.publish.schema}.published_forecasts)"
+    pub = spec.publish
+    texts = [f"{pub.database} (schema {pub.schema}, view {pub.schema}.published_forecasts)"] if pub.database else []
+    if pub.lakehouse is not None:
+        texts.append(f"lakehouse {pub.lakehouse / pub.schema} (Parquet, committed runs only)")
+    return "; ".join(texts)
+
+
+def _open_source(spec: JobSpec) -> Any:
+    """The job's source: DuckDB (default) or, with ``[source] engine = "spark"``, Spark."""
+    if spec.source.engine == "spark":
+        from .spark_engine import SparkSource
+
+        return SparkSource(spec)
+    return DuckDBSource(spec.source, spec.settings.frequency)
 
 
 def validate_job(spec: JobSpec) -> ValidationReport:
     """Check the job file's source and target (columns, types, NULL keys) without fitting."""
-    with DuckDBSource(spec.source, spec.settings.frequency) as source:
+    with _open_source(spec) as source:
         src = source.layout()
         source.check_rows()
         latest = source.latest_period()
         rows, series, first = source.stats(latest)
         layout = _layout(spec, source)
-    status = check_target(spec.publish.database, layout)
+    status = check_target(spec.publish.database, layout) if spec.publish.database else "lakehouse only"
     wanted = {*spec.source.keys, spec.source.period, spec.source.value}
     columns = tuple((n, t) for n, t in src.columns if n in wanted)
     return ValidationReport(spec.name, spec.source.describe(), columns, rows, series, first, latest, _target_text(spec), status)
@@ -110,7 +124,8 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
     started_at = _utcnow()
     settings = spec.settings
     notes: list[str] = []
-    with DuckDBSource(spec.source, settings.frequency) as source:
+    spark = spec.source.engine == "spark"
+    with _open_source(spec) as source:
         source.layout()
         source.check_rows()
         as_of_value = source.parse_as_of(as_of) if as_of is not None else source.latest_period()
@@ -118,10 +133,10 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
         if rows == 0:
             raise SourceError(f"the source has no rows at or before --as-of {as_of}; pick a later period")
         chunk_series = spec.run.chunk_series
-        if settings.gates.series_fdr is not None and series > chunk_series:
+        if settings.gates.series_fdr is not None and series > chunk_series and not spark:
             chunk_series = series
             notes.append("gates.series_fdr adjusts across all series of a run, so the run used one chunk")
-        n_chunks = -(-series // chunk_series)
+        n_chunks = source.task_count(series, chunk_series) if spark else -(-series // chunk_series)
         layout = _layout(spec, source)
         run_id = run_id_for(spec.name, as_of_value)
         emit({
@@ -129,7 +144,11 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
             "source": spec.source.describe(), "target": _target_text(spec), "rows": rows, "series": series,
             "chunks": n_chunks, "workers": spec.run.workers, "notes": notes,
         })
-        parts = _forecast_chunks(spec, source, as_of_value, chunk_series, n_chunks, series, emit)
+        if spark:  # the same per-chunk api.forecast, run by Spark tasks on buckets of whole series
+            parts = source.forecast_chunks(as_of_value, n_chunks, series, emit)
+            notes.extend(source.notes)
+        else:
+            parts = _forecast_chunks(spec, source, as_of_value, chunk_series, n_chunks, series, emit)
     run = api.ForecastRun(
         models=_concat([p.models for p in parts]),
         gates=_concat([p.gates for p in parts]),
@@ -143,11 +162,10 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
     alarm = share > settings.gates.max_quarantine_share
     attempt: int | None = None
     if dry_run:
-        status_note = check_target(spec.publish.database, layout)
+        status_note = check_target(spec.publish.database, layout) if spec.publish.database else "lakehouse only"
         notes.append(f"dry run: nothing was written; target {status_note}")
     else:
-        store = DuckDBStore(spec.publish.database, layout)
-        emit({"event": "publish", "run_id": run_id, "target": store.describe()})
+        emit({"event": "publish", "run_id": run_id, "target": _target_text(spec)})
         record = RunRecord(
             run_id=run_id, job=spec.name, as_of=as_of_value, started_at=started_at, finished_at=_utcnow(),
             status="alarm" if alarm else "ok", series_total=total, series_published=run.series_published,
@@ -156,10 +174,23 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
             source=spec.source.describe(), config_sha256=spec.config_sha256, arflow_version=arflow_version(),
             reason_counts=run.reason_counts(),
         )
-        attempt = store.publish(
-            record, models=run.models, gates=run.gates, residual_acf=run.residual_acf, forecasts=run.forecasts,
-            coverage_labels=tuple(coverage_label(c) for c in settings.forecast.coverage),
-        )
+        # lakehouse: files first (invisible), then the DuckDB transaction, then the lakehouse commit marker
+        staged = None
+        if spec.publish.lakehouse is not None:
+            frames = {f.name: getattr(run, f.name) for f in fields(run) if isinstance(getattr(run, f.name), pl.DataFrame)}
+            staged = ParquetStore(spec.publish.lakehouse, layout).stage(record, frames)
+        try:
+            if spec.publish.database is not None:
+                attempt = DuckDBStore(spec.publish.database, layout).publish(
+                    record, models=run.models, gates=run.gates, residual_acf=run.residual_acf, forecasts=run.forecasts,
+                    coverage_labels=tuple(coverage_label(c) for c in settings.forecast.coverage),
+                )
+            if staged is not None:
+                lake_attempt = staged.commit()
+                attempt = attempt if attempt is not None else lake_attempt
+        finally:
+            if staged is not None:
+                staged.abort()  # no-op after a commit
     outcome = JobOutcome(
         job=spec.name, run_id=run_id, as_of=as_of_value, dry_run=dry_run, rows_read=rows, series_total=total,
         series_published=run.series_published, series_quarantined=run.series_quarantined,
