@@ -22,23 +22,10 @@ import time
 import numpy as np
 
 from arflow.core.backtest import rolling_origin
-from arflow.core.panel import build_panel
+
+from arflow.sample.simulate import mixed_monthly, to_panel
 from arflow.core.pipeline import run_core
 from arflow.settings import ForecastSettings, ModelSettings, Settings
-
-
-def simulate(G: int, T: int, seed: int = 7) -> np.ndarray:
-    """A mix of AR(1), seasonal AR and random-walk series (vectorised over series)."""
-    rng = np.random.default_rng(seed)
-    burn = 60
-    e = rng.normal(size=(G, T + burn))
-    kind = rng.integers(0, 3, size=G)
-    a1 = np.where(kind == 0, 0.6, np.where(kind == 1, 0.2, 1.0))
-    a12 = np.where(kind == 1, 0.5, 0.0)
-    y = np.zeros((G, T + burn))
-    for t in range(12, T + burn):
-        y[:, t] = a1 * y[:, t - 1] + a12 * y[:, t - 12] + e[:, t]
-    return 100.0 + y[:, burn:]
 
 
 def peak_rss_mib() -> float:
@@ -53,8 +40,8 @@ def main() -> None:
     ap.add_argument("--horizon", type=int, default=12)
     args = ap.parse_args()
     G, T, H = args.series, args.periods, args.horizon
-    Y = simulate(G, T)
-    panel = build_panel(np.repeat(np.arange(G), T), np.tile(np.arange(T), G), Y.ravel(), G)
+    Y = mixed_monthly(G, T)
+    panel = to_panel(Y)
     settings = Settings(
         frequency="month",
         model=ModelSettings(order="auto", max_order=8, seasonal_lag="auto"),

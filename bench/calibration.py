@@ -14,23 +14,9 @@ import argparse
 import numpy as np
 
 from arflow.core.gates import REASONS
-from arflow.core.panel import build_panel
+from arflow.sample.simulate import random_walks, simulate_ar as simulate, to_panel as panel_of
 from arflow.core.pipeline import run_core
 from arflow.settings import GateSettings, ModelSettings, Settings
-
-
-def simulate(phi: dict[int, float], G: int, T: int, seed: int, burn: int = 200) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    e = rng.normal(size=(G, T + burn))
-    y = np.zeros((G, T + burn))
-    for t in range(max(phi), T + burn):
-        y[:, t] = sum(c * y[:, t - lag] for lag, c in phi.items()) + e[:, t]
-    return 50.0 + y[:, burn:]
-
-
-def panel_of(Y: np.ndarray):
-    G, T = Y.shape
-    return build_panel(np.repeat(np.arange(G), T), np.tile(np.arange(T), G), Y.ravel(), G)
 
 
 def rate(result, reason: str) -> float:
@@ -46,7 +32,7 @@ def main() -> None:
     half = G // 2
     ar12 = panel_of(np.vstack([simulate({1: 0.5}, half, T, 11), simulate({1: 0.5, 2: 0.3}, G - half, T, 12)]))
     seasonal = simulate({1: 0.2, 4: 0.5}, G, T, 21)
-    walks = 50.0 + np.cumsum(np.random.default_rng(31).normal(size=(G, T)), axis=1)
+    walks = random_walks(G, T, 31)
     ar09 = simulate({1: 0.9}, G, T, 41)
     rows = []
     month = "month"

@@ -33,6 +33,8 @@ from pathlib import Path
 
 import numpy as np
 
+from arflow.sample.simulate import mixed_monthly
+
 HERE = Path(__file__).resolve().parent
 
 
@@ -40,19 +42,6 @@ def peak_mib() -> float:
     own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     return (own + kids) / 1024.0  # own peak + the largest child's peak (an upper bound)
-
-
-def simulate_block(G: int, T: int, seed: int) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    burn = 60
-    e = rng.normal(size=(G, T + burn))
-    kind = rng.integers(0, 3, size=G)
-    a1 = np.where(kind == 0, 0.6, np.where(kind == 1, 0.2, 1.0))
-    a12 = np.where(kind == 1, 0.5, 0.0)
-    y = np.zeros((G, T + burn))
-    for t in range(12, T + burn):
-        y[:, t] = a1 * y[:, t - 1] + a12 * y[:, t - 12] + e[:, t]
-    return 500.0 + y[:, burn:]
 
 
 def build_warehouse(path: Path, G: int, T: int, block: int = 100_000) -> None:
@@ -65,7 +54,7 @@ def build_warehouse(path: Path, G: int, T: int, block: int = 100_000) -> None:
     con.execute("CREATE TABLE readings (site VARCHAR, period DATE, value DOUBLE)")
     for b0 in range(0, G, block):
         g = min(block, G - b0)
-        Y = simulate_block(g, T, seed=1000 + b0 // block)
+        Y = mixed_monthly(g, T, seed=1000 + b0 // block, level=500.0)
         ids = np.char.add("site-", np.char.zfill(np.arange(b0, b0 + g).astype(str), 7))
         tbl = pa.table({
             "site": pa.array(np.repeat(ids, T)),
@@ -152,7 +141,7 @@ def task(kind: str, db: str, workdir: str, workers: int, chunk: int) -> dict:
         sys.path.insert(0, str(HERE))
         from core_speed import statsmodels_loop
 
-        Y = simulate_block(300, 120, seed=1)
+        Y = mixed_monthly(300, 120, seed=1, level=500.0)
         secs = statsmodels_loop(Y)
         return {"seconds": secs, "per_series": secs / 300, "rss_mib": peak_mib()}
     return {"seconds": time.perf_counter() - t0, "rss_mib": peak_mib(), **extra}

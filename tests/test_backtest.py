@@ -15,24 +15,9 @@ from scipy import stats
 from statsmodels.tsa.ar_model import AutoReg
 
 from arflow.core.backtest import rolling_origin
-from arflow.core.panel import build_panel
+from arflow.sample.simulate import simulate_ar as simulate, to_panel as panel_of
 from arflow.core.pipeline import run_core
 from arflow.settings import Settings
-
-
-def simulate(phi: dict[int, float], G: int, T: int, seed: int, burn: int = 200) -> np.ndarray:
-    """Gaussian AR series with unit innovation variance (vectorised over series)."""
-    rng = np.random.default_rng(seed)
-    e = rng.normal(size=(G, T + burn))
-    y = np.zeros((G, T + burn))
-    for t in range(max(phi), T + burn):
-        y[:, t] = sum(c * y[:, t - lag] for lag, c in phi.items()) + e[:, t]
-    return 50.0 + y[:, burn:]
-
-
-def panel_of(Y: np.ndarray):
-    G, T = Y.shape
-    return build_panel(np.repeat(np.arange(G), T), np.tile(np.arange(T), G), Y.ravel(), G)
 
 
 # ---------------------------------------------------------------------------------------------

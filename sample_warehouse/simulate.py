@@ -1,0 +1,50 @@
+"""Seeded simulators of AR panels, shared by the benchmarks, the calibration tests and the demo tools.
+
+Everything is vectorised over series (the loop runs over time only).
+
+>>> simulate_ar({1: 0.5}, 3, 10, seed=1).shape
+(3, 10)
+>>> import numpy as np; to_panel(np.ones((2, 4))).n.tolist()
+[4, 4]
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def simulate_ar(phi: dict[int, float], G: int, T: int, seed: int, burn: int = 200, mean: float = 50.0) -> np.ndarray:
+    """(G, T) Gaussian AR series ``y_t = sum phi[lag] y_(t-lag) + e_t`` with unit innovation variance, plus ``mean``."""
+    rng = np.random.default_rng(seed)
+    e = rng.normal(size=(G, T + burn))
+    y = np.zeros((G, T + burn))
+    for t in range(max(phi), T + burn):
+        y[:, t] = sum(c * y[:, t - lag] for lag, c in phi.items()) + e[:, t]
+    return mean + y[:, burn:]
+
+
+def random_walks(G: int, T: int, seed: int, start: float = 50.0) -> np.ndarray:
+    """(G, T) Gaussian random walks."""
+    return start + np.cumsum(np.random.default_rng(seed).normal(size=(G, T)), axis=1)
+
+
+def mixed_monthly(G: int, T: int, seed: int = 7, level: float = 100.0) -> np.ndarray:
+    """A third each of AR(1) (0.6), seasonal AR (0.2 at lag 1, 0.5 at lag 12) and random walks."""
+    rng = np.random.default_rng(seed)
+    burn = 60
+    e = rng.normal(size=(G, T + burn))
+    kind = rng.integers(0, 3, size=G)
+    a1 = np.where(kind == 0, 0.6, np.where(kind == 1, 0.2, 1.0))
+    a12 = np.where(kind == 1, 0.5, 0.0)
+    y = np.zeros((G, T + burn))
+    for t in range(12, T + burn):
+        y[:, t] = a1 * y[:, t - 1] + a12 * y[:, t - 12] + e[:, t]
+    return level + y[:, burn:]
+
+
+def to_panel(Y: np.ndarray):
+    """The core's panel of a complete (G, T) array (periods 0..T-1)."""
+    from arflow.core.panel import build_panel
+
+    G, T = Y.shape
+    return build_panel(np.repeat(np.arange(G), T), np.tile(np.arange(T), G), Y.ravel(), G)
