@@ -10,8 +10,8 @@ from __future__ import annotations
 import datetime as dt
 import time
 from collections.abc import Callable
-from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass, field, fields
+from concurrent.futures import Future
+from dataclasses import dataclass, field
 from importlib import metadata
 from pathlib import Path
 from typing import Any
@@ -25,6 +25,7 @@ from .settings import coverage_label
 from .warehouse.duckdb_source import DuckDBSource
 from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, run_id_for
 from .warehouse.parquet_store import ParquetStore
+from .warehouse.stage import RunStage
 
 Event = dict[str, Any]
 EventSink = Callable[[Event], None]
@@ -50,6 +51,7 @@ class JobOutcome:
     target: str
     attempt: int | None = None
     notes: tuple[str, ...] = ()
+    phase_seconds: dict[str, float] = field(default_factory=dict)
 
     @property
     def alarm(self) -> bool:
@@ -144,59 +146,67 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
             "source": spec.source.describe(), "target": _target_text(spec), "rows": rows, "series": series,
             "chunks": n_chunks, "workers": spec.run.workers, "notes": notes,
         })
-        if spark:  # the same per-chunk api.forecast, run by Spark tasks on buckets of whole series
-            parts = source.forecast_chunks(as_of_value, n_chunks, series, emit)
-            notes.extend(source.notes)
-        else:
-            parts = _forecast_chunks(spec, source, as_of_value, chunk_series, n_chunks, series, emit)
-    run = api.ForecastRun(
-        models=_concat([p.models for p in parts]),
-        gates=_concat([p.gates for p in parts]),
-        residual_acf=_concat([p.residual_acf for p in parts]),
-        forecasts=_concat([p.forecasts for p in parts]),
-        as_of=as_of_value,
-        settings=settings,
-    )
-    total = run.series_total
-    share = run.series_quarantined / total if total else 0.0
+        stage = RunStage()
+        summary = ChunkSummary()
+        phases: dict[str, float] = {}
+        try:
+            if spark:  # the same per-chunk api.forecast, run by Spark tasks on buckets of whole series
+                parts = source.forecast_chunks(as_of_value, n_chunks, series, emit)
+                notes.extend(source.notes)
+                for i, part in enumerate(parts):
+                    summary = summary + _stage_run(part, stage.dir, i, None)
+            else:
+                summary = _forecast_chunks(spec, source, as_of_value, chunk_series, n_chunks, series, emit, stage)
+        except BaseException:
+            stage.cleanup()
+            raise
+        phases["read_and_compute"] = time.perf_counter() - clock
+    total = summary.series_total
+    share = summary.series_quarantined / total if total else 0.0
     alarm = share > settings.gates.max_quarantine_share
     attempt: int | None = None
-    if dry_run:
-        status_note = check_target(spec.publish.database, layout) if spec.publish.database else "lakehouse only"
-        notes.append(f"dry run: nothing was written; target {status_note}")
-    else:
-        emit({"event": "publish", "run_id": run_id, "target": _target_text(spec)})
-        record = RunRecord(
-            run_id=run_id, job=spec.name, as_of=as_of_value, started_at=started_at, finished_at=_utcnow(),
-            status="alarm" if alarm else "ok", series_total=total, series_published=run.series_published,
-            series_quarantined=run.series_quarantined, quarantine_share=share, on_failure=spec.publish.on_failure,
-            frequency=settings.frequency, horizon=settings.forecast.horizon, coverage=settings.forecast.coverage,
-            source=spec.source.describe(), config_sha256=spec.config_sha256, arflow_version=arflow_version(),
-            reason_counts=run.reason_counts(),
-        )
-        # lakehouse: files first (invisible), then the DuckDB transaction, then the lakehouse commit marker
-        staged = None
-        if spec.publish.lakehouse is not None:
-            frames = {f.name: getattr(run, f.name) for f in fields(run) if isinstance(getattr(run, f.name), pl.DataFrame)}
-            staged = ParquetStore(spec.publish.lakehouse, layout).stage(record, frames)
-        try:
-            if spec.publish.database is not None:
-                attempt = DuckDBStore(spec.publish.database, layout).publish(
-                    record, models=run.models, gates=run.gates, residual_acf=run.residual_acf, forecasts=run.forecasts,
-                    coverage_labels=tuple(coverage_label(c) for c in settings.forecast.coverage),
-                )
-            if staged is not None:
-                lake_attempt = staged.commit()
-                attempt = attempt if attempt is not None else lake_attempt
-        finally:
-            if staged is not None:
-                staged.abort()  # no-op after a commit
+    try:
+        if dry_run:
+            status_note = check_target(spec.publish.database, layout) if spec.publish.database else "lakehouse only"
+            notes.append(f"dry run: nothing was written; target {status_note}")
+        else:
+            t_pub = time.perf_counter()
+            emit({"event": "publish", "run_id": run_id, "target": _target_text(spec)})
+            record = RunRecord(
+                run_id=run_id, job=spec.name, as_of=as_of_value, started_at=started_at, finished_at=_utcnow(),
+                status="alarm" if alarm else "ok", series_total=total, series_published=summary.series_published,
+                series_quarantined=summary.series_quarantined, quarantine_share=share,
+                on_failure=spec.publish.on_failure, frequency=settings.frequency, horizon=settings.forecast.horizon,
+                coverage=settings.forecast.coverage, source=spec.source.describe(),
+                config_sha256=spec.config_sha256, arflow_version=arflow_version(),
+                reason_counts=summary.reason_counts,
+            )
+            # lakehouse: files first (invisible), then the DuckDB transaction, then the lakehouse commit marker
+            staged = None
+            if spec.publish.lakehouse is not None:
+                frames = {t: _read_staged(stage, t) for t in _RUN_FRAMES}
+                staged = ParquetStore(spec.publish.lakehouse, layout).stage(record, frames)
+            try:
+                if spec.publish.database is not None:
+                    attempt = DuckDBStore(spec.publish.database, layout).publish(
+                        record, tables=stage, coverage_labels=tuple(coverage_label(c) for c in settings.forecast.coverage),
+                    )
+                if staged is not None:
+                    lake_attempt = staged.commit()
+                    attempt = attempt if attempt is not None else lake_attempt
+            finally:
+                if staged is not None:
+                    staged.abort()  # no-op after a commit
+            phases["publish"] = time.perf_counter() - t_pub
+    finally:
+        stage.cleanup()
     outcome = JobOutcome(
         job=spec.name, run_id=run_id, as_of=as_of_value, dry_run=dry_run, rows_read=rows, series_total=total,
-        series_published=run.series_published, series_quarantined=run.series_quarantined,
-        reason_counts=run.reason_counts(), quarantine_share=share,
-        max_quarantine_share=settings.gates.max_quarantine_share, chunks=len(parts),
+        series_published=summary.series_published, series_quarantined=summary.series_quarantined,
+        reason_counts=summary.reason_counts, quarantine_share=share,
+        max_quarantine_share=settings.gates.max_quarantine_share, chunks=summary.chunks,
         seconds=time.perf_counter() - clock, target=_target_text(spec), attempt=attempt, notes=tuple(notes),
+        phase_seconds={k: round(v, 3) for k, v in phases.items()},
     )
     emit({"event": "finish", **outcome_dict(outcome)})
     return outcome
@@ -210,49 +220,109 @@ def outcome_dict(outcome: JobOutcome) -> dict[str, Any]:
         "series_published": outcome.series_published, "series_quarantined": outcome.series_quarantined,
         "quarantine_share": round(outcome.quarantine_share, 6), "alarm": outcome.alarm,
         "reason_counts": outcome.reason_counts, "chunks": outcome.chunks, "seconds": round(outcome.seconds, 3),
-        "target": outcome.target, "notes": list(outcome.notes),
+        "target": outcome.target, "notes": list(outcome.notes), "phase_seconds": outcome.phase_seconds,
     }
 
 
+@dataclass(frozen=True)
+class ChunkSummary:
+    """Counts of one or more chunks (what the run log needs; the rows are staged on disk)."""
+
+    series_total: int = 0
+    series_published: int = 0
+    reason_counts: dict[str, int] = field(default_factory=dict)
+    chunks: int = 0
+
+    @property
+    def series_quarantined(self) -> int:
+        return self.series_total - self.series_published
+
+    def __add__(self, other: "ChunkSummary") -> "ChunkSummary":
+        reasons = dict(self.reason_counts)
+        for k, v in other.reason_counts.items():
+            reasons[k] = reasons.get(k, 0) + v
+        reasons = dict(sorted(reasons.items(), key=lambda kv: (-kv[1], kv[0])))
+        return ChunkSummary(self.series_total + other.series_total, self.series_published + other.series_published,
+                            reasons, self.chunks + other.chunks)
+
+
+#: frames of a run that are staged per chunk (``actuals`` feeds the accuracy table)
+_RUN_FRAMES = ("models", "gates", "residual_acf", "forecasts", "backtests")
+
+
+def _actuals(frame: pl.DataFrame, keys: list[str], period: str, value: str, periods: int) -> pl.DataFrame:
+    """The last ``periods`` distinct periods of a chunk, as (keys, period, value) for accuracy tracking."""
+    recent = frame.get_column(period).unique().sort().tail(periods)
+    if recent.len() == 0:
+        return pl.DataFrame()
+    return (
+        frame.filter(pl.col(period) >= recent[0])
+        .select(*keys, pl.col(period).alias("period"), pl.col(value).cast(pl.Float64).alias("value"))
+    )
+
+
+def _stage_run(run: api.ForecastRun, stage_dir: str | Path, chunk_no: int, actuals: pl.DataFrame | None) -> ChunkSummary:
+    frames = {t: getattr(run, t) for t in _RUN_FRAMES}
+    frames["actuals"] = actuals
+    RunStage.write_to(stage_dir, chunk_no, frames)
+    return ChunkSummary(run.series_total, run.series_published, run.reason_counts(), 1)
+
+
+def _stage_chunk(
+    frame: pl.DataFrame, keys: list[str], period: str, value: str, settings: Any, as_of: Any,
+    stage_dir: str, chunk_no: int,
+) -> ChunkSummary:
+    """Forecast one chunk of whole series and stage its rows (runs in a worker process too)."""
+    run = api.forecast(frame, keys=keys, period=period, value=value, settings=settings, as_of=as_of)
+    window = 2 * max(settings.forecast.horizon, settings.backtest.horizon or 0)
+    return _stage_run(run, stage_dir, chunk_no, _actuals(frame, keys, period, value, window))
+
+
 def _forecast_chunks(
-    spec: JobSpec, source: DuckDBSource, as_of: Any, chunk_series: int, n_chunks: int, series: int, emit: EventSink
-) -> list[api.ForecastRun]:
+    spec: JobSpec, source: DuckDBSource, as_of: Any, chunk_series: int, n_chunks: int, series: int, emit: EventSink,
+    stage: RunStage,
+) -> ChunkSummary:
+    """Forecast chunk by chunk, staging each chunk's rows; ``[run] workers`` > 1 uses worker processes.
+
+    Processes, not threads: the statistical core is memory-bound numpy, and
+    threads in one address space were measured slower than one thread on a
+    2-core virtual machine. Workers start fresh (spawn), so they share no
+    thread pools with this process; at most ``2 x workers`` chunks are in flight,
+    which bounds memory by the chunk size.
+    """
     keys = list(spec.source.keys)
+    args = (keys, spec.source.period, spec.source.value, spec.settings, as_of, str(stage.dir))
+    summary = ChunkSummary()
 
-    def fit(frame: pl.DataFrame) -> api.ForecastRun:
-        return api.forecast(frame, keys=keys, period=spec.source.period, value=spec.source.value, settings=spec.settings, as_of=as_of)
-
-    done_series = 0
-    results: list[api.ForecastRun] = []
-
-    def progress(run: api.ForecastRun) -> None:
-        nonlocal done_series
-        results.append(run)
-        done_series += run.series_total
-        emit({"event": "chunk", "chunk": len(results), "chunks": n_chunks, "series_done": done_series, "series_total": series})
+    def progress(part: ChunkSummary) -> None:
+        nonlocal summary
+        summary = summary + part
+        emit({"event": "chunk", "chunk": summary.chunks, "chunks": n_chunks, "series_done": summary.series_total,
+              "series_total": series})
 
     chunks = source.chunks(as_of, chunk_series)
-    if spec.run.workers <= 1:
-        for frame in chunks:
-            progress(fit(frame))
-        return results
-    with ThreadPoolExecutor(max_workers=spec.run.workers) as pool:
-        pending: list[Future[api.ForecastRun]] = []
-        for frame in chunks:
-            pending.append(pool.submit(fit, frame))
-            while len(pending) > spec.run.workers * 2:
+    if spec.run.workers <= 1 or n_chunks <= 1:
+        for i, frame in enumerate(chunks):
+            progress(_stage_chunk(frame, *args, i))
+        return summary
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+
+    ctx = mp.get_context("spawn")
+    with ProcessPoolExecutor(max_workers=min(spec.run.workers, n_chunks), mp_context=ctx) as pool:
+        pending: list[Future[ChunkSummary]] = []
+        for i, frame in enumerate(chunks):
+            pending.append(pool.submit(_stage_chunk, frame, *args, i))
+            while len(pending) >= spec.run.workers * 2:
                 progress(pending.pop(0).result())
         for fut in pending:
             progress(fut.result())
-    return results
+    return summary
 
 
-def _concat(frames: list[pl.DataFrame]) -> pl.DataFrame:
-    frames = [f for f in frames if f.width]
-    if not frames:
-        return pl.DataFrame()
-    non_empty = [f for f in frames if f.height] or frames[:1]
-    return pl.concat(non_empty, how="diagonal_relaxed")
+def _read_staged(stage: RunStage, table: str) -> pl.DataFrame:
+    files = stage.files(table)
+    return pl.concat([pl.read_parquet(f) for f in files], how="diagonal_relaxed") if files else pl.DataFrame()
 
 
 def _utcnow() -> dt.datetime:
