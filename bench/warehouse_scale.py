@@ -9,7 +9,8 @@ seasonal AR and random-walk series, monthly, one VARCHAR key) in a temporary
 folder and times, each in a fresh subprocess (so peak memory is per task):
 
 * ``arflow run``: read, order selection up to 8 with the seasonal candidate,
-  diagnostics, gates, 12-step forecasts at 80% and 95%, publish to DuckDB;
+  diagnostics, gates, 12-step forecasts at 80% and 95%, publish to DuckDB
+  (backtest off; ``--backtest`` also times a run with it on and prints its share);
 * the SQL shortcut: AR(1) per series with ``lag()`` and ``regr_slope`` /
   ``regr_intercept`` plus its one-step forecast, written to a table;
 * a plain grouped scan (the floor: reading the data once);
@@ -91,6 +92,9 @@ coverage = [0.8, 0.95]
 [publish]
 database = "{out}"
 
+[backtest]
+enabled = {backtest}
+
 [run]
 chunk_series = {chunk}
 workers = {workers}
@@ -110,7 +114,7 @@ SELECT site, last_period + INTERVAL 1 MONTH AS period, b0 + b1 * last_value AS f
 """
 
 
-def task(kind: str, db: str, workdir: str, workers: int, chunk: int) -> dict:
+def task(kind: str, db: str, workdir: str, workers: int, chunk: int, backtest: bool = False) -> dict:
     import duckdb
 
     t0 = time.perf_counter()
@@ -119,10 +123,10 @@ def task(kind: str, db: str, workdir: str, workers: int, chunk: int) -> dict:
         from arflow.job import run_job
         from arflow.job_file import load_job
 
-        out = Path(workdir) / f"published_{workers}.duckdb"
+        out = Path(workdir) / f"published_{workers}_{int(backtest)}.duckdb"
         out.unlink(missing_ok=True)
-        job = Path(workdir) / f"job_{workers}.toml"
-        job.write_text(JOB.format(db=db, out=out, chunk=chunk, workers=workers))
+        job = Path(workdir) / f"job_{workers}_{int(backtest)}.toml"
+        job.write_text(JOB.format(db=db, out=out, chunk=chunk, workers=workers, backtest=str(backtest).lower()))
         outcome = run_job(load_job(job))
         extra = {"published": outcome.series_published, "series": outcome.series_total,
                  "phases": dict(getattr(outcome, "phase_seconds", {}) or {})}
@@ -147,9 +151,9 @@ def task(kind: str, db: str, workdir: str, workers: int, chunk: int) -> dict:
     return {"seconds": time.perf_counter() - t0, "rss_mib": peak_mib(), **extra}
 
 
-def run_task(kind: str, db: Path, workdir: Path, workers: int = 1, chunk: int = 50_000) -> dict:
+def run_task(kind: str, db: Path, workdir: Path, workers: int = 1, chunk: int = 50_000, backtest: bool = False) -> dict:
     cmd = [sys.executable, __file__, "--task", kind, "--db", str(db), "--workdir", str(workdir),
-           "--workers", str(workers), "--chunk-series", str(chunk)]
+           "--workers", str(workers), "--chunk-series", str(chunk)] + (["--backtest"] if backtest else [])
     out = subprocess.run(cmd, check=True, capture_output=True, text=True, env=os.environ.copy())
     return json.loads(out.stdout.strip().splitlines()[-1])
 
@@ -160,12 +164,13 @@ def main() -> None:
     ap.add_argument("--periods", type=int, default=120)
     ap.add_argument("--workers", type=int, nargs="+", default=[2])
     ap.add_argument("--chunk-series", type=int, default=50_000)
+    ap.add_argument("--backtest", action="store_true", help="also time a run with the backtest on (its share)")
     ap.add_argument("--task")
     ap.add_argument("--db")
     ap.add_argument("--workdir")
     a = ap.parse_args()
     if a.task:
-        print(json.dumps(task(a.task, a.db, a.workdir, a.workers[0], a.chunk_series), default=str))
+        print(json.dumps(task(a.task, a.db, a.workdir, a.workers[0], a.chunk_series, a.backtest), default=str))
         return
     loop = run_task("loop", Path("-"), Path("-"))
     print(f"statsmodels loop: {loop['per_series'] * 1e3:.2f} ms per series (300-series sample)")
@@ -190,6 +195,11 @@ def main() -> None:
                 if arf.get("phases"):
                     phases = ", ".join(f"{k} {v:.2f}s" for k, v in arf["phases"].items())
                     print(f"{'':>14} phases: {phases}; per series {arf['seconds'] / G * 1e6:.1f} us")
+                if a.backtest:
+                    bt = run_task("arflow", db, tmp, workers, a.chunk_series, backtest=True)
+                    extra = bt["seconds"] - arf["seconds"]
+                    print(f"{'':>14} with the backtest (24 origins): {bt['seconds']:.2f}s, "
+                          f"backtest share {extra / bt['seconds']:.0%} of the run, peak {bt['rss_mib']:,.0f} MiB")
             print(f"{'':>14} (warehouse built in {build_s:.1f}s)")
 
 

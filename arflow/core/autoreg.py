@@ -27,7 +27,7 @@ from __future__ import annotations
 from dataclasses import dataclass, fields, replace
 
 import numpy as np
-from scipy import stats
+from .distributions import f_sf
 
 from . import ols
 
@@ -199,7 +199,7 @@ def fit_ar(
         df_b = g.nobs - rb.n_params
         with np.errstate(divide="ignore", invalid="ignore"):
             fstat = (ra.rss - rb.rss) / (rb.rss / df_b)
-            p_add = stats.f.sf(fstat, 1, df_b)
+            p_add = f_sf(fstat, 1, df_b)
         keep_s = differs & can_select & ((icb < ica) | (p_add < seasonal_alpha))
         chosen = np.where(keep_s[:, None], add, chosen)
     # series too short to select are fitted at the smallest order that fits

@@ -20,7 +20,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from .distributions import chi2_sf, t_sf
 
 from arflow.core import ols
 
@@ -107,7 +107,7 @@ def _shift(z: np.ndarray, k: int) -> np.ndarray:
 
 def _chi2_sf(stat: np.ndarray, df: np.ndarray) -> np.ndarray:
     with np.errstate(invalid="ignore"):
-        p = stats.chi2.sf(stat, df)
+        p = chi2_sf(stat, df)
     return np.where(np.isfinite(stat) & (df > 0), p, np.nan)
 
 
@@ -142,7 +142,7 @@ def residual_acf(resid: np.ndarray, max_lag: int) -> AcfResult:
             acf[:, k - 1] = np.where(ok & (k < n), num / np.where(denom > 0, denom, 1.0), np.nan)
         t_stat = acf * np.sqrt(n)[:, None]
         dft = (n - 2).astype(np.float64)[:, None]
-        pvalue = np.where(dft > 0, 2.0 * stats.t.sf(np.abs(t_stat), np.where(dft > 0, dft, 1.0)), np.nan)
+        pvalue = np.where(dft > 0, 2.0 * t_sf(np.abs(t_stat), np.where(dft > 0, dft, 1.0)), np.nan)
     pvalue = np.where(np.isnan(t_stat), np.nan, pvalue)
     return AcfResult(acf, t_stat, pvalue, n)
 

@@ -18,7 +18,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from .distributions import norm_ppf
 
 
 @dataclass(frozen=True)
@@ -91,7 +91,7 @@ def forecast_ar(
         psi = np.where(diff[:, None], np.cumsum(psi, axis=1), psi)
     sd = sigma[:, None] * np.sqrt(np.cumsum(psi * psi, axis=1))
     cov = tuple(float(c) for c in coverage)
-    z = stats.norm.ppf(0.5 + np.asarray(cov) / 2.0)
+    z = norm_ppf(0.5 + np.asarray(cov) / 2.0)
     lower = mean[None] - z[:, None, None] * sd[None]
     upper = mean[None] + z[:, None, None] * sd[None]
     return Forecasts(mean, sd, cov, lower, upper)

@@ -17,7 +17,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from .distributions import norm_cdf
 
 from arflow.core import ols
 from arflow.core.diagnostics import valid_mask
@@ -89,7 +89,7 @@ def mackinnon_pvalue(stat: np.ndarray, regression: str = "c") -> np.ndarray:
     t = np.asarray(stat, dtype=np.float64)
     small = np.polynomial.polynomial.polyval(t, c["small"])
     large = np.polynomial.polynomial.polyval(t, c["large"])
-    p = stats.norm.cdf(np.where(t <= c["tau_star"], small, large))
+    p = norm_cdf(np.where(t <= c["tau_star"], small, large))
     p = np.where(t > c["tau_max"], 1.0, np.where(t < c["tau_min"], 0.0, p))
     return np.where(np.isnan(t), np.nan, p)
 
