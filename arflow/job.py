@@ -154,7 +154,7 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
                 parts = source.forecast_chunks(as_of_value, n_chunks, series, emit)
                 notes.extend(source.notes)
                 for i, part in enumerate(parts):
-                    summary = summary + _stage_run(part, stage.dir, i, None)
+                    summary = summary + _stage_run(part, stage.dir, i, source.actuals[i])
             else:
                 summary = _forecast_chunks(spec, source, as_of_value, chunk_series, n_chunks, series, emit, stage)
         except BaseException:

@@ -89,6 +89,8 @@ def require_pyspark() -> None:
         raise SettingsError(
             f'engine = "spark" needs pyspark 4.0 or later (found {pyspark.__version__}); upgrade with: pip install -U \'arflow[spark]\''
         )
+    # pyspark warns about pandas versions before Arrow UDFs; arflow never converts to pandas
+    warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
     if importlib.util.find_spec("pandas") is None:
         raise SettingsError(
             'engine = "spark" needs pandas importable (pyspark checks for it before any Arrow UDF, though arflow passes '
@@ -202,6 +204,8 @@ class TaskJob:
     as_of: Any
     labels: tuple[int, ...]
     fail_bucket: int | None = None
+    #: periods of actuals to return per bucket (the job's accuracy tracking), None for none
+    actuals_window: int | None = None
 
 
 def _run_frames(run: api.ForecastRun) -> dict[str, pl.DataFrame]:
@@ -235,15 +239,20 @@ def fit_bucket(job: TaskJob, table: pa.Table) -> pa.Table:
     if job.fail_bucket is not None and job.fail_bucket == bucket:
         raise RuntimeError(f"arflow test fault injected in the Spark task of bucket {bucket}")
     rows: list[tuple] = []
+    data = table.drop_columns([BUCKET])
     try:
         run = api.forecast(
-            table.drop_columns([BUCKET]), keys=list(job.keys), period=job.period, value=job.value,
-            settings=job.settings, as_of=job.as_of,
+            data, keys=list(job.keys), period=job.period, value=job.value, settings=job.settings, as_of=job.as_of,
         )
     except ArflowError as exc:
         rows.append((bucket, task, "__error", 0, 0, 0.0, f"{type(exc).__name__}\n{exc}".encode()))
     else:
-        for name, frame in _run_frames(run).items():
+        frames = _run_frames(run)
+        if job.actuals_window is not None:
+            from .job import _actuals  # the DuckDB path's own rule for the rows kept as actuals
+
+            frames["__actuals"] = _actuals(pl.from_arrow(data), list(job.keys), job.period, job.value, job.actuals_window)
+        for name, frame in frames.items():
             for seq, blob in enumerate(_ipc_pieces(frame.to_arrow())):
                 rows.append((bucket, task, name, seq, 0, 0.0, blob))
         as_of = pl.DataFrame({"as_of": [run.as_of]}).to_arrow()
@@ -281,8 +290,18 @@ class SparkStats:
         )
 
 
-def run_buckets(data: Any, job: TaskJob) -> tuple[list[api.ForecastRun], list[Any], SparkStats]:
-    """Run ``api.forecast`` per bucket inside Spark; returns per-bucket runs, their as-of labels and stats.
+@dataclass(frozen=True)
+class BucketResults:
+    """Per bucket (in bucket order): the run, its as-of label and (job path) its actuals; plus the stats."""
+
+    runs: list[api.ForecastRun]
+    as_ofs: list[Any]
+    actuals: list[pl.DataFrame | None]
+    stats: SparkStats
+
+
+def run_buckets(data: Any, job: TaskJob) -> BucketResults:
+    """Run ``api.forecast`` per bucket inside Spark and bring the results (not the rows) to the driver.
 
     ``data`` is a Spark DataFrame with the key, period and value columns only.
     """
@@ -292,9 +311,7 @@ def run_buckets(data: Any, job: TaskJob) -> tuple[list[api.ForecastRun], list[An
     index = F.pmod(F.xxhash64(*[F.col(k) for k in job.keys]), F.lit(n)).cast("int")
     label = F.element_at(F.array(*[F.lit(v).cast("long") for v in job.labels]), index + 1)
     bucketed = data.withColumn(BUCKET, label).repartition(n, BUCKET)
-    with warnings.catch_warnings():  # pyspark's note on the pandas version: arflow passes Arrow only
-        warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
-        grouped = bucketed.groupBy(BUCKET).applyInArrow(_task_function(job), schema=_OUT_SCHEMA)
+    grouped = bucketed.groupBy(BUCKET).applyInArrow(_task_function(job), schema=_OUT_SCHEMA)
     clock = time.perf_counter()
     try:
         result = grouped.toArrow()
@@ -326,7 +343,7 @@ def run_buckets(data: Any, job: TaskJob) -> tuple[list[api.ForecastRun], list[An
             continue
         table = pa.ipc.open_stream(data_col[i].as_buffer()).read_all()
         pieces.setdefault(b, {}).setdefault(p, []).append((seqs[i], table))
-    runs, as_ofs = [], []
+    runs, as_ofs, actuals = [], [], []
     for b in sorted(pieces):
         frames = {}
         for name, seq_tables in pieces[b].items():
@@ -334,6 +351,7 @@ def run_buckets(data: Any, job: TaskJob) -> tuple[list[api.ForecastRun], list[An
             frame = pl.from_arrow(pa.concat_tables(tables) if len(tables) > 1 else tables[0])
             frames[name] = frame
         as_ofs.append(frames.pop("__as_of")["as_of"][0])
+        actuals.append(frames.pop("__actuals", None))
         kwargs = {f.name: frames.get(f.name) for f in fields(api.ForecastRun) if f.name not in ("as_of", "settings")}
         runs.append(api.ForecastRun(**kwargs, as_of=as_ofs[-1], settings=job.settings))
     stats = SparkStats(
@@ -344,7 +362,7 @@ def run_buckets(data: Any, job: TaskJob) -> tuple[list[api.ForecastRun], list[An
         spark_seconds=spark_seconds,
         decode_seconds=time.perf_counter() - clock,
     )
-    return runs, as_ofs, stats
+    return BucketResults(runs, as_ofs, actuals, stats)
 
 
 def _default_parallelism(spark: Any) -> int:
@@ -418,6 +436,8 @@ class SparkSource:
         self.notes: list[str] = []
         self.timings: dict[str, float] = {}
         self.run_stats: SparkStats | None = None
+        #: per bucket, the rows the job keeps as actuals (for scoring earlier vintages)
+        self.actuals: list[pl.DataFrame | None] = []
         self.spark: Any = None
         self.df: Any = None
         self._owned = False
@@ -572,9 +592,13 @@ class SparkSource:
         data = self._rows_to(as_of).select(
             *[F.col(k) for k in src.keys], self._period().alias(src.period), F.col(src.value).cast("double").alias(src.value)
         )
-        job = TaskJob(tuple(src.keys), src.period, src.value, self.spec.settings, as_of,
-                      tuple(bucket_labels(n_tasks)), _TEST_FAIL_BUCKET)
-        runs, _, stats = run_buckets(data, job)
+        settings = self.spec.settings
+        window = 2 * max(settings.forecast.horizon, settings.backtest.horizon or 0)
+        job = TaskJob(tuple(src.keys), src.period, src.value, settings, as_of,
+                      tuple(bucket_labels(n_tasks)), _TEST_FAIL_BUCKET, window)
+        results = run_buckets(data, job)
+        runs, stats = results.runs, results.stats
+        self.actuals = results.actuals
         self.run_stats = stats
         self.timings["spark_job"] = stats.spark_seconds
         self.timings["decode"] = stats.decode_seconds
@@ -637,7 +661,8 @@ def forecast_spark_frame(
     n = _bucket_count(spark, int(row[1]), 50_000, partitions)
     data = frame.select(*[F.col(k) for k in keys], F.col(period), F.col(value))
     job = TaskJob(tuple(keys), period, value, settings, as_of, tuple(bucket_labels(n)), _TEST_FAIL_BUCKET)
-    runs, as_ofs, _ = run_buckets(data, job)
+    results = run_buckets(data, job)
+    runs, as_ofs = results.runs, results.as_ofs
     frames = {}
     for name in _run_frames(runs[0]):
         parts = [f for f in (_run_frames(r).get(name) for r in runs) if f is not None and f.width]

@@ -147,6 +147,10 @@ class StagedRun:
             return
         for folder in self.written:
             shutil.rmtree(folder, ignore_errors=True)
+            try:
+                folder.parent.rmdir()  # the run's folder, when no other attempt is in it
+            except OSError:
+                pass
         self.done = True
 
 
@@ -354,7 +358,7 @@ def published_forecasts(lakehouse: str | Path, schema: str = "arflow") -> pl.Dat
         con.execute(f'CREATE SCHEMA "{schema}"')
         for table, files in (("series_status", status_files), ("forecasts", forecast_files)):
             listing = ", ".join("'" + f.replace("'", "''") + "'" for f in files)
-            con.execute(f'CREATE VIEW "{schema}"."{table}" AS SELECT * FROM read_parquet([{listing}], union_by_name = true)')
+            con.execute(f'CREATE VIEW "{schema}"."{table}" AS SELECT * FROM read_parquet([{listing}], union_by_name = true, hive_partitioning = false)')
         con.execute(render_sql(VIEW_FILE, layout))
         keys = ", ".join(f'"{k}"' for k in layout.keys)
         return con.sql(f'SELECT * FROM "{schema}".published_forecasts ORDER BY job, {keys}, step').pl()
