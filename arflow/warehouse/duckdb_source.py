@@ -16,12 +16,12 @@ from dataclasses import dataclass
 from typing import Any
 
 import duckdb
+import numpy as np
 import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceError
 from .identifiers import quote, quote_qualified
 
-CHUNK_COLUMN = "__arflow_chunk"
 _INTEGER_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "HUGEINT", "UHUGEINT"}
 _FLOAT_TYPES = {"FLOAT", "DOUBLE", "REAL"}
 _TIMESTAMP_TYPES = {"TIMESTAMP", "TIMESTAMP_S", "TIMESTAMP_MS", "TIMESTAMP_NS", "DATETIME"}
@@ -247,13 +247,17 @@ class DuckDBSource:
         return int(rows), int(series), first
 
     def chunks(self, as_of: Any, chunk_series: int, batch_rows: int = 262_144) -> Iterator[pl.DataFrame]:
-        """Rows at or before ``as_of`` ordered by keys and period, cut into whole-series chunks."""
+        """Rows at or before ``as_of`` ordered by keys and period, cut into chunks of whole series.
+
+        The series number of each row is counted while streaming (a key change
+        starts a new series), so the query needs only the one ORDER BY.
+        """
         spec = self.spec
-        keys = ", ".join(quote(k) for k in spec.keys)
+        key_cols = list(spec.keys)
+        keys = ", ".join(quote(k) for k in key_cols)
         period = self._period_expr()
         sql = (
-            f"SELECT {keys}, {period} AS {quote(spec.period)}, CAST({quote(spec.value)} AS DOUBLE) AS {quote(spec.value)}, "
-            f"(dense_rank() OVER (ORDER BY {keys}) - 1) // {int(chunk_series)} AS {CHUNK_COLUMN} "
+            f"SELECT {keys}, {period} AS {quote(spec.period)}, CAST({quote(spec.value)} AS DOUBLE) AS {quote(spec.value)} "
             f"FROM {self._from()} WHERE {period} <= ? ORDER BY {keys}, {period}"
         )
         try:
@@ -262,18 +266,32 @@ class DuckDBSource:
             to_reader = getattr(relation, "to_arrow_reader", None) or relation.fetch_arrow_reader
             reader = to_reader(batch_rows)
             pending: list[pl.DataFrame] = []
-            current: int | None = None
+            current = 0
+            series_before = 0  # series that started in earlier batches
+            last_key: tuple | None = None
             for batch in reader:
                 frame = pl.from_arrow(batch)
                 assert isinstance(frame, pl.DataFrame)
-                for part in frame.partition_by(CHUNK_COLUMN, maintain_order=True):
-                    chunk_no = int(part[CHUNK_COLUMN][0])
-                    if current is not None and chunk_no != current:
-                        yield pl.concat(pending).drop(CHUNK_COLUMN)
+                if frame.height == 0:
+                    continue
+                changed = frame.select(
+                    pl.any_horizontal([pl.col(k).ne_missing(pl.col(k).shift(1)) for k in key_cols])
+                ).to_series().to_numpy().copy()
+                first_key = tuple(frame.row(0)[: len(key_cols)])
+                changed[0] = first_key != last_key
+                last_key = tuple(frame.row(frame.height - 1)[: len(key_cols)])
+                series_no = series_before + np.cumsum(changed) - 1
+                series_before = int(series_no[-1]) + 1
+                chunk_no = series_no // int(chunk_series)
+                cuts = np.flatnonzero(np.diff(chunk_no)) + 1
+                for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, frame.height]):
+                    no = int(chunk_no[lo])
+                    if no != current and pending:
+                        yield pl.concat(pending)
                         pending = []
-                    current = chunk_no
-                    pending.append(part)
+                    current = no
+                    pending.append(frame.slice(int(lo), int(hi - lo)))
             if pending:
-                yield pl.concat(pending).drop(CHUNK_COLUMN)
+                yield pl.concat(pending)
         except duckdb.Error as exc:
             raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None
