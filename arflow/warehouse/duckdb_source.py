@@ -246,19 +246,24 @@ class DuckDBSource:
         )[0]
         return int(rows), int(series), first
 
-    def chunks(self, as_of: Any, chunk_series: int, batch_rows: int = 262_144) -> Iterator[pl.DataFrame]:
-        """Rows at or before ``as_of`` ordered by keys and period, cut into chunks of whole series.
+    def chunks(self, as_of: Any, chunk_series: int, batch_rows: int = 8_192) -> Iterator[pl.DataFrame]:
+        """Rows at or before ``as_of``, grouped by series, in chunks of about ``chunk_series`` whole series.
 
-        The series number of each row is counted while streaming (a key change
-        starts a new series), so the query needs only the one ORDER BY.
+        DuckDB groups the rows by key with a hash aggregate (``list()`` of
+        periods and values per series) instead of sorting the whole table, and
+        orders only the series (so chunks, and every number, are the same on
+        every run); each chunk is expanded back to long rows, series by series.
+        Rows within a series keep their scan order; the panel builder sorts a
+        series' periods only when they are not already in order.
         """
         spec = self.spec
         key_cols = list(spec.keys)
         keys = ", ".join(quote(k) for k in key_cols)
         period = self._period_expr()
+        pcol, vcol = quote(spec.period), quote(spec.value)
         sql = (
-            f"SELECT {keys}, {period} AS {quote(spec.period)}, CAST({quote(spec.value)} AS DOUBLE) AS {quote(spec.value)} "
-            f"FROM {self._from()} WHERE {period} <= ? ORDER BY {keys}, {period}"
+            f"SELECT {keys}, list({period}) AS {pcol}, list(CAST({vcol} AS DOUBLE)) AS {vcol} "
+            f"FROM {self._from()} WHERE {period} <= ? GROUP BY {keys} ORDER BY {keys}"
         )
         try:
             relation = self.con.sql(sql, params=[as_of])
@@ -266,32 +271,22 @@ class DuckDBSource:
             to_reader = getattr(relation, "to_arrow_reader", None) or relation.fetch_arrow_reader
             reader = to_reader(batch_rows)
             pending: list[pl.DataFrame] = []
-            current = 0
-            series_before = 0  # series that started in earlier batches
-            last_key: tuple | None = None
+            held = 0
             for batch in reader:
                 frame = pl.from_arrow(batch)
                 assert isinstance(frame, pl.DataFrame)
                 if frame.height == 0:
                     continue
-                changed = frame.select(
-                    pl.any_horizontal([pl.col(k).ne_missing(pl.col(k).shift(1)) for k in key_cols])
-                ).to_series().to_numpy().copy()
-                first_key = tuple(frame.row(0)[: len(key_cols)])
-                changed[0] = first_key != last_key
-                last_key = tuple(frame.row(frame.height - 1)[: len(key_cols)])
-                series_no = series_before + np.cumsum(changed) - 1
-                series_before = int(series_no[-1]) + 1
-                chunk_no = series_no // int(chunk_series)
-                cuts = np.flatnonzero(np.diff(chunk_no)) + 1
-                for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, frame.height]):
-                    no = int(chunk_no[lo])
-                    if no != current and pending:
-                        yield pl.concat(pending)
-                        pending = []
-                    current = no
-                    pending.append(frame.slice(int(lo), int(hi - lo)))
+                start = 0
+                while start < frame.height:
+                    take = min(frame.height - start, chunk_series - held)
+                    pending.append(frame.slice(start, take))
+                    held += take
+                    start += take
+                    if held >= chunk_series:
+                        yield pl.concat(pending).explode([spec.period, spec.value])
+                        pending, held = [], 0
             if pending:
-                yield pl.concat(pending)
+                yield pl.concat(pending).explode([spec.period, spec.value])
         except duckdb.Error as exc:
             raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None
