@@ -94,7 +94,7 @@ def require_pyspark() -> None:
     if importlib.util.find_spec("pandas") is None:
         raise SettingsError(
             'engine = "spark" needs pandas importable (pyspark checks for it before any Arrow UDF, though arflow passes '
-            f"Arrow only); install it with: {INSTALL_HINT} pandas"
+            "Arrow only); install it with: pip install 'pyspark[sql]>=4.0'"
         )
 
 
@@ -443,7 +443,7 @@ class SparkSource:
         self._owned = False
         self._tmp: tempfile.TemporaryDirectory | None = None
         self._duck: DuckDBSource | None = None
-        self._checked: tuple[int, Any] | None = None
+        self._checked: tuple[int, Any, int, Any] | None = None  # rows, latest period, series, first period
 
     def __enter__(self) -> "SparkSource":
         clock = time.perf_counter()
@@ -467,8 +467,10 @@ class SparkSource:
             self._tmp.cleanup()
             self._tmp = None
         if self._owned and self.spark is not None:
+            clock = time.perf_counter()
             self.spark.stop()
             self._owned = False
+            self.timings["stop"] = time.perf_counter() - clock
 
     def _read(self) -> Any:
         from pyspark.errors import AnalysisException
@@ -534,6 +536,8 @@ class SparkSource:
             F.sum(F.when(null_key, 1).otherwise(0)),
             F.sum(F.when(F.col(src.period).isNull(), 1).otherwise(0)),
             F.max(period),
+            F.count_distinct(*[F.col(k) for k in src.keys]),
+            F.min(period),
         ).first())
         self.timings["checks"] = self.timings.get("checks", 0.0) + time.perf_counter() - clock
         total, null_keys, null_periods, latest = row[0], row[1] or 0, row[2] or 0, row[3]
@@ -549,7 +553,7 @@ class SparkSource:
                 f"the source has {null_periods} row(s) with a NULL period ({src.period}); "
                 "filter them out with a [source] query"
             )
-        self._checked = (int(total), latest)
+        self._checked = (int(total), latest, int(row[4]), row[5])
         return int(total)
 
     def latest_period(self) -> Any:
@@ -572,6 +576,8 @@ class SparkSource:
         """(rows, series, first period) at or before ``as_of``."""
         from pyspark.sql import functions as F
 
+        if self._checked is not None and as_of == self._checked[1]:  # every row: counted by check_rows already
+            return self._checked[0], self._checked[2], self._checked[3]
         clock = time.perf_counter()
         row = self._run_spark(lambda: self._rows_to(as_of).agg(
             F.count(F.lit(1)), F.count_distinct(*[F.col(k) for k in self.src.keys]), F.min(self._period())
