@@ -29,6 +29,19 @@ _TIMESTAMP_TYPES = {"TIMESTAMP", "TIMESTAMP_S", "TIMESTAMP_MS", "TIMESTAMP_NS", 
 _KEY_TYPES = {"VARCHAR", "BOOLEAN", "DATE", "UUID"} | (_INTEGER_TYPES - {"HUGEINT", "UHUGEINT"})
 
 
+#: DuckDB's working memory per connection. Grouping a large source by series
+#: spills to a temporary folder past this, so a run's peak memory stays bounded
+#: by the chunk size rather than by the warehouse size.
+MEMORY_LIMIT = "1GB"
+
+
+def engine_config() -> dict[str, str]:
+    """DuckDB settings for arflow's connections: bounded memory, spilling to the system temp folder."""
+    import tempfile
+
+    return {"memory_limit": MEMORY_LIMIT, "temp_directory": tempfile.gettempdir() + "/arflow-duckdb-spill"}
+
+
 def lock_message(path: object) -> str:
     """The one message for a database held by another process."""
     return f"database {path} is in use by another process (another arflow run?); retry when it finishes"
@@ -71,7 +84,7 @@ class DuckDBSource:
             if not spec.database.is_file():
                 raise SourceError(f"source database {spec.database} does not exist; check source.database in the job file")
             try:
-                self._con = duckdb.connect(str(spec.database), read_only=True)
+                self._con = duckdb.connect(str(spec.database), read_only=True, config=engine_config())
             except duckdb.Error as exc:
                 if is_lock_error(exc):
                     raise SourceError(lock_message(spec.database)) from None
@@ -79,7 +92,7 @@ class DuckDBSource:
         else:
             if not glob.glob(spec.parquet, recursive=True):
                 raise SourceError(f"no parquet files match {spec.parquet}; check source.parquet in the job file")
-            self._con = duckdb.connect(":memory:")
+            self._con = duckdb.connect(":memory:", config=engine_config())
             literal = "'" + spec.parquet.replace("'", "''") + "'"
             try:
                 self._con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet({literal})")

@@ -27,7 +27,7 @@ import duckdb
 import polars as pl
 
 from ..errors import PublishError
-from .duckdb_source import first_line, is_lock_error, lock_message
+from .duckdb_source import engine_config, first_line, is_lock_error, lock_message
 from .identifiers import quote
 
 #: Tables written per run, in insert order (the fault hook names these).
@@ -126,7 +126,7 @@ def _open(database: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection:
     if not database.parent.is_dir():
         raise PublishError(f"folder {database.parent} of publish.database does not exist; create it or fix the path")
     try:
-        return duckdb.connect(str(database), read_only=read_only)
+        return duckdb.connect(str(database), read_only=read_only, config=engine_config())
     except duckdb.Error as exc:
         if is_lock_error(exc):
             raise PublishError(f"target {lock_message(database)}") from None
