@@ -114,8 +114,8 @@ class SparkOptions:
 
     ``master``: e.g. ``"local[2]"`` or ``"spark://host:7077"`` (None: Spark's
     own setting, else ``local[*]``). ``partitions``: number of tasks the
-    series are hash-bucketed into (None: one per ``run.chunk_series`` series,
-    at least Spark's default parallelism). ``config``: extra Spark settings,
+    series are hash-bucketed into (None: one per 10,000 series, or per
+    ``run.chunk_series`` if smaller, at least Spark's default parallelism). ``config``: extra Spark settings,
     as (key, value) text pairs, used only when arflow starts the session.
     """
 

@@ -105,6 +105,33 @@ def run(job: Path) -> dict:
     return {"wall": wall, **events}
 
 
+def floor(parquet: str, master: str, partitions: int) -> dict:
+    """The Spark plumbing alone: the fitting job's read, bucketing, shuffle and hand-over to Python, no core."""
+    import pyarrow as pa
+    from pyspark.sql import functions as F
+
+    from arflow import spark_engine as se
+    from arflow.job_file import SparkOptions
+
+    t0 = time.perf_counter()
+    spark, _ = se.start_session(SparkOptions(master=master, config=(("spark.driver.memory", "4g"),)))
+    session = time.perf_counter() - t0
+    labels = se.bucket_labels(partitions)
+    index = F.pmod(F.xxhash64(F.col("site")), F.lit(partitions)).cast("int")
+    label = F.element_at(F.array(*[F.lit(v).cast("long") for v in labels]), index + 1)
+    data = (spark.read.parquet(parquet).select("site", "period", F.col("value").cast("double").alias("value"))
+            .withColumn(se.BUCKET, label).repartition(partitions, se.BUCKET))
+
+    def rows(table: pa.Table) -> pa.Table:
+        return pa.table({"n": pa.array([table.num_rows], pa.int64())})
+
+    t1 = time.perf_counter()
+    n = data.groupBy(se.BUCKET).applyInArrow(rows, schema="n long").toArrow().column("n").to_pylist()
+    plumbing = time.perf_counter() - t1
+    spark.stop()
+    return {"session": session, "plumbing": plumbing, "rows": sum(n), "groups": len(n)}
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description="Spark engine overhead against the DuckDB path")
     ap.add_argument("--series", type=int, default=100_000)
@@ -113,7 +140,11 @@ def main() -> None:
     ap.add_argument("--partitions", type=int, default=None, help="[spark] partitions (default: arflow's choice)")
     ap.add_argument("--chunk-series", type=int, default=50_000)
     ap.add_argument("--backtest", action="store_true", help="run the backtest too (both engines)")
+    ap.add_argument("--floor-of", metavar="PARQUET", help=argparse.SUPPRESS)
     a = ap.parse_args()
+    if a.floor_of:
+        print(json.dumps(floor(a.floor_of, a.master, a.partitions or 2)))
+        return
     with tempfile.TemporaryDirectory(prefix="arflow-spark-bench-") as tmp:
         d = Path(tmp)
         t0 = time.perf_counter()
@@ -130,6 +161,11 @@ def main() -> None:
             spark=spark_section, **common))
         duck = run(d / "duck.toml")
         spark = run(d / "spark.toml")
+        tasks = spark.get("spark", {}).get("tasks", 2)
+        out = subprocess.run([sys.executable, __file__, "--floor-of", str(d / "readings.parquet"), "--master", a.master,
+                              "--partitions", str(tasks)], capture_output=True, text=True,
+                             env=dict(os.environ, PYSPARK_PYTHON=sys.executable))
+        plumbing = json.loads(out.stdout.strip().splitlines()[-1]) if out.returncode == 0 else None
 
     info = spark.get("spark", {})
     spt = info.get("series_per_task", [0])
@@ -155,6 +191,10 @@ def main() -> None:
           f"{sum(task_s):.1f} summed over {len(task_s)}), collect + decode on the driver {t.get('decode', 0):.1f}, "
           f"publish {phases.get('publish', 0):.1f}, rest (schema check, staging, session stop) "
           f"{spark['finish']['seconds'] - listed:.1f}, interpreter start/exit {other:.1f}")
+    if plumbing:
+        print(f"the fitting job's plumbing alone (same read, bucketing into {plumbing['groups']} tasks, shuffle and "
+              f"Arrow hand-over to Python, a no-op instead of the core): {plumbing['plumbing']:.1f} s "
+              f"of the fitting job's {t.get('spark_job', 0):.1f} s")
     dp = duck["finish"].get("phase_seconds", {})
     print("DuckDB path (s): " + ", ".join(f"{k} {v:.1f}" for k, v in dp.items())
           + f", interpreter start/exit {duck['wall'] - duck['finish']['seconds']:.1f}")
