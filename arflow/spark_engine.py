@@ -694,7 +694,12 @@ def forecast_spark_frame(
     if as_of is None:
         as_of = row[2]
     n = _bucket_count(spark, int(row[1]), 50_000, partitions)
-    data = frame.select(*[F.col(k) for k in keys], F.col(period), F.col(value))
+    from pyspark.sql.types import TimestampType
+
+    period_col = F.col(period)
+    if isinstance(frame.schema[period].dataType, TimestampType):
+        period_col = period_col.cast("timestamp_ntz").alias(period)  # wall-clock time, as the job path reads it
+    data = frame.select(*[F.col(k) for k in keys], period_col, F.col(value))
     job = TaskJob(tuple(keys), period, value, settings, as_of, tuple(bucket_labels(n)), _TEST_FAIL_BUCKET)
     results = run_buckets(data, job)
     runs, as_ofs = results.runs, results.as_ofs
