@@ -25,7 +25,7 @@ import numpy as np
 
 from arflow.sample.simulate import mixed_monthly, to_panel
 from arflow.core.pipeline import run_core
-from arflow.settings import ForecastSettings, ModelSettings, Settings
+from arflow.settings import BacktestSettings, ForecastSettings, ModelSettings, Settings
 
 
 def peak_rss_mib() -> float:
@@ -71,6 +71,7 @@ def main() -> None:
         frequency="month",
         model=ModelSettings(order="auto", max_order=8, seasonal_lag="auto"),
         forecast=ForecastSettings(horizon=12, coverage=(0.8, 0.95)),
+        backtest=BacktestSettings(enabled=False),  # timed on its own (bench/backtest_speed.py)
     )
     base_rss = peak_rss_mib()
     run_core(panel.take(np.arange(min(G, 4096))), settings)  # warm-up

@@ -63,8 +63,9 @@ blocks of ``block`` (vectorised within a block, as
 :func:`arflow.core.pipeline.run_core` does; each block's design is only as wide
 as its own lag sets). Within a block the expanding window is kept as raw sums
 of the mean-shifted series (as :func:`arflow.core.autoreg.fit_ar` does), which
-each origin extends by its new rows; each origin's fit is finished with
-:func:`arflow.core.ols.fit_with_gram` (exact residuals, one refinement step).
+each origin extends by its new rows; each origin's coefficients and RSS are
+solved from those sums alone (:func:`arflow.core.ols.solve`), so an origin
+costs no pass over the series' rows.
 One origin is held at a time; work is linear in G, T and the number of origins.
 """
 
@@ -367,10 +368,10 @@ def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train) -> d
         if not ok.any():
             continue
         okw = ok.astype(np.float64)
-        w = (t[None, : c + 1] >= start[:, None]) * okw[:, None]
         with np.errstate(all="ignore"):
             g = ols.gram_from_sums(S * okw[:, None, None], ssum * okw[:, None], nobs * okw)
-            res = ols.fit_with_gram(g, X[:, : c + 1, :], ZT[:, K, : c + 1], w, mask)
+            # coefficients and RSS from the running sums alone: no pass over the rows per origin
+            res = ols.solve(g, mask)
             sigma = np.sqrt(res.sigma2)
             # undo the shift y = x + m: b0 = a + m (1 - sum b)
             icpt = res.intercept + shift * (1.0 - res.beta.sum(axis=1))

@@ -45,7 +45,7 @@ def psi_weights(phi: np.ndarray, horizon: int) -> np.ndarray:
 
 
 def chain_forecast(history: np.ndarray, intercept: np.ndarray, phi: np.ndarray, horizon: int) -> np.ndarray:
-    """h = 1..H forecasts (G, H) from the last L values of ``history`` (G, >= L, right-aligned)."""
+    """h = 1..H forecasts (G, H) from the last L values of ``history`` (G, >= L, right-aligned, finite)."""
     G, L = phi.shape
     buf = np.zeros((G, L + horizon))
     if L:
@@ -53,7 +53,7 @@ def chain_forecast(history: np.ndarray, intercept: np.ndarray, phi: np.ndarray, 
     for h in range(horizon):
         # lag j value sits at column L + h - j
         past = buf[:, h : L + h][:, ::-1]  # column 0 is lag 1
-        buf[:, L + h] = intercept + np.einsum("gi,gi->g", phi, np.nan_to_num(past))
+        buf[:, L + h] = intercept + np.einsum("gi,gi->g", phi, past)
     return buf[:, L:]
 
 
@@ -83,7 +83,7 @@ def forecast_ar(
     if diff.any():
         d = np.diff(history, axis=1)
         src = np.where(diff[:, None], np.concatenate([np.full((G, 1), np.nan), d], axis=1), history)
-    mean = chain_forecast(src, intercept, phi, horizon)
+    mean = chain_forecast(np.nan_to_num(src), intercept, phi, horizon)
     psi = psi_weights(phi, horizon)
     if diff.any():
         last = history[:, -1]
