@@ -19,6 +19,7 @@ from typing import Any
 import polars as pl
 
 from . import api
+from .allocator import tune_for_batch
 from .errors import SourceError
 from .job_file import JobSpec, load_job
 from .settings import coverage_label
@@ -121,6 +122,7 @@ def validate_job(spec: JobSpec) -> ValidationReport:
 
 def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: EventSink | None = None) -> JobOutcome:
     """Run a job: read, forecast chunk by chunk, publish everything in one transaction."""
+    tune_for_batch()
     emit: EventSink = on_event or (lambda event: None)
     clock = time.perf_counter()
     started_at = _utcnow()
@@ -309,7 +311,8 @@ def _forecast_chunks(
     from concurrent.futures import ProcessPoolExecutor
 
     ctx = mp.get_context("spawn")
-    with ProcessPoolExecutor(max_workers=min(spec.run.workers, n_chunks), mp_context=ctx) as pool:
+    with ProcessPoolExecutor(max_workers=min(spec.run.workers, n_chunks), mp_context=ctx,
+                             initializer=tune_for_batch) as pool:
         pending: list[Future[ChunkSummary]] = []
         for i, frame in enumerate(chunks):
             pending.append(pool.submit(_stage_chunk, frame, *args, i))

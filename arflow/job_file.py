@@ -104,7 +104,7 @@ class PublishSpec:
 class RunOptions:
     """How the work is cut up: series per chunk and parallel workers."""
 
-    chunk_series: int = 50_000
+    chunk_series: int = 20_000
     workers: int = 1
 
 

@@ -151,7 +151,7 @@ def task(kind: str, db: str, workdir: str, workers: int, chunk: int, backtest: b
     return {"seconds": time.perf_counter() - t0, "rss_mib": peak_mib(), **extra}
 
 
-def run_task(kind: str, db: Path, workdir: Path, workers: int = 1, chunk: int = 50_000, backtest: bool = False) -> dict:
+def run_task(kind: str, db: Path, workdir: Path, workers: int = 1, chunk: int = 20_000, backtest: bool = False) -> dict:
     cmd = [sys.executable, __file__, "--task", kind, "--db", str(db), "--workdir", str(workdir),
            "--workers", str(workers), "--chunk-series", str(chunk)] + (["--backtest"] if backtest else [])
     out = subprocess.run(cmd, check=True, capture_output=True, text=True, env=os.environ.copy())
@@ -163,7 +163,7 @@ def main() -> None:
     ap.add_argument("--series", type=int, nargs="+", default=[10_000, 100_000])
     ap.add_argument("--periods", type=int, default=120)
     ap.add_argument("--workers", type=int, nargs="+", default=[2])
-    ap.add_argument("--chunk-series", type=int, default=50_000)
+    ap.add_argument("--chunk-series", type=int, default=20_000)
     ap.add_argument("--backtest", action="store_true", help="also time a run with the backtest on (its share)")
     ap.add_argument("--task")
     ap.add_argument("--db")

@@ -32,7 +32,7 @@ _KEY_TYPES = {"VARCHAR", "BOOLEAN", "DATE", "UUID"} | (_INTEGER_TYPES - {"HUGEIN
 #: DuckDB's working memory per connection. Grouping a large source by series
 #: spills to a temporary folder past this, so a run's peak memory stays bounded
 #: by the chunk size rather than by the warehouse size.
-MEMORY_LIMIT = "1GB"
+MEMORY_LIMIT = "512MB"
 
 
 def engine_config() -> dict[str, str]:
