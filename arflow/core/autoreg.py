@@ -105,6 +105,28 @@ def lag_design(Y: np.ndarray, lags: np.ndarray, fill: float = np.nan) -> np.ndar
     return Xt.transpose(0, 2, 1)
 
 
+def shifted_lag_stack(Y: np.ndarray, lags: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(G, K+1, T) stack of the K lag rows and the series itself, each series shifted by its mean.
+
+    The shift keeps raw-sum Gram matrices (:func:`arflow.core.ols.gram_from_sums`)
+    accurate and leaves the slope estimates unchanged; missing values become 0
+    (callers weight those rows out). Returns the stack and the shifts (G,).
+    """
+    G, T = Y.shape
+    n = np.isfinite(Y).sum(axis=1)
+    with np.errstate(invalid="ignore"):
+        shift = np.where(n > 0, np.nansum(Y, axis=1) / np.maximum(n, 1), 0.0)
+    Yz = np.nan_to_num(Y - shift[:, None])
+    K = len(lags)
+    ZT = np.empty((G, K + 1, T))
+    for j, lag in enumerate(lags):
+        lag = min(int(lag), T)
+        ZT[:, j, :lag] = 0.0
+        ZT[:, j, lag:] = Yz[:, : T - lag]
+    ZT[:, K, :] = Yz
+    return ZT, shift
+
+
 def information_criteria(rss: np.ndarray, nobs: np.ndarray, n_params: np.ndarray) -> dict[str, np.ndarray]:
     """AIC, BIC and HQIC of Gaussian regressions (``n_params`` counts the intercept; +1 for the variance)."""
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -152,17 +174,7 @@ def fit_ar(
     lags = np.array(sorted(lag_list), dtype=np.int64)
     K = len(lags)
     hold = int(lags.max())
-    # shift every series by its own mean (keeps the raw-sum Gram accurate), then
-    # one (G, K+1, T) array: the K lag rows and the series itself
-    with np.errstate(invalid="ignore"):
-        shift = np.where(n > 0, np.nansum(Y, axis=1) / np.maximum(n, 1), 0.0)
-    Yz = np.nan_to_num(Y - shift[:, None])
-    ZT = np.empty((G, K + 1, T))
-    for j, lag in enumerate(lags):
-        lag = min(int(lag), T)
-        ZT[:, j, :lag] = 0.0
-        ZT[:, j, lag:] = Yz[:, : T - lag]
-    ZT[:, K, :] = Yz
+    ZT, shift = shifted_lag_stack(Y, lags)
     Xz = ZT[:, :K, :].transpose(0, 2, 1)
 
     want = np.ones(G, dtype=bool) if fit_mask is None else np.asarray(fit_mask, dtype=bool)

@@ -76,7 +76,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import ols
-from .autoreg import MIN_RESID_DF, lag_design
+from .autoreg import MIN_RESID_DF, shifted_lag_stack
 from .forecast import forecast_ar
 
 #: series per block: keeps the (series, periods, lags) design in cache
@@ -325,20 +325,8 @@ def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train) -> d
         D = np.full_like(Y, np.nan)
         D[:, 1:] = Y[:, 1:] - Y[:, :-1]
         M = np.where(diff[:, None], D, Y)
-    # shift each modelled series by its mean (the estimates do not depend on the
-    # shift; it keeps the raw-sum Gram matrix accurate, as in autoreg.fit_ar),
-    # then one (B, K+1, T) array: the K lag rows and the series itself
-    nm = np.isfinite(M).sum(axis=1)
-    with np.errstate(invalid="ignore"):
-        shift = np.where(nm > 0, np.nansum(M, axis=1) / np.maximum(nm, 1), 0.0)
-    Mz = np.nan_to_num(M - shift[:, None])
-    ZT = np.empty((B, K + 1, T))
-    for j, lag in enumerate(lags_b):
-        lag = min(int(lag), T)
-        ZT[:, j, :lag] = 0.0
-        ZT[:, j, lag:] = Mz[:, : T - lag]
-    ZT[:, K, :] = Mz
-    X = ZT[:, :K, :].transpose(0, 2, 1)
+    # the K lag rows and the series itself, each series shifted by its mean (as in fit_ar)
+    ZT, shift = shifted_lag_stack(M, lags_b)
     start = first + diff + maxlag  # first target column of each regression
     t = np.arange(T)
     # expanding window: raw sums over the rows start..c, updated origin by origin

@@ -17,10 +17,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from .distributions import norm_cdf
 
 from arflow.core import ols
-from arflow.core.diagnostics import valid_mask
+from arflow.core.distributions import norm_cdf
+from arflow.core.diagnostics import _as_panel, valid_mask
 
 __all__ = ["AdfResult", "KpssResult", "adf", "kpss", "mackinnon_crit", "mackinnon_pvalue"]
 
@@ -124,12 +124,7 @@ class AdfResult:
 
 
 def _panel(y: np.ndarray) -> np.ndarray:
-    y = np.asarray(y, dtype=np.float64)
-    if y.ndim == 1:
-        y = y[None, :]
-    if y.ndim != 2:
-        raise ValueError(f"y must be a (G, T) panel or a 1-D series, got shape {y.shape}")
-    return y
+    return _as_panel(y, "y")
 
 
 def adf(
