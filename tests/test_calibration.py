@@ -85,3 +85,15 @@ def test_backtest_gate_beats_naive_rates():
     ratio_rw = run_core(panel_of(walks), s).outcome.gates["beats_naive"].statistic
     assert np.nanmean(ratio_ar < 1.0) >= 0.90
     assert np.nanmean(ratio_rw < 1.0 - s.backtest.naive_tolerance) <= 0.10
+
+
+def test_worker_processes_give_the_same_numbers():
+    from arflow.core import pipeline
+
+    p = panel_of(simulate({1: 0.5, 12: 0.3}, 2500, 120, 61))  # three blocks of series
+    s = Settings(frequency="month")
+    one, two = run_core(p, s), run_core(p, s, workers=2)
+    assert p.n_series > pipeline.BLOCK_SERIES
+    np.testing.assert_array_equal(one.fit.coef, two.fit.coef)
+    np.testing.assert_array_equal(one.forecasts.upper, two.forecasts.upper)
+    np.testing.assert_array_equal(one.outcome.reasons, two.outcome.reasons)
