@@ -302,25 +302,33 @@ def _forecast_chunks(
         emit({"event": "chunk", "chunk": summary.chunks, "chunks": n_chunks, "series_done": summary.series_total,
               "series_total": series})
 
-    chunks = source.chunks(as_of, chunk_series)
     if spec.run.workers <= 1 or n_chunks <= 1:
-        for i, frame in enumerate(chunks):
+        for i, frame in enumerate(source.chunks(as_of, chunk_series)):
             progress(_stage_chunk(frame, *args, i))
         return summary
     import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor
 
     ctx = mp.get_context("spawn")
-    with ProcessPoolExecutor(max_workers=min(spec.run.workers, n_chunks), mp_context=ctx,
-                             initializer=tune_for_batch) as pool:
+    workers = min(spec.run.workers, n_chunks)
+    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_start_worker) as pool:
+        # start the workers (and their imports) while this process runs the source query
+        for _ in range(workers):
+            pool.submit(_start_worker)
         pending: list[Future[ChunkSummary]] = []
-        for i, frame in enumerate(chunks):
+        for i, frame in enumerate(source.chunks(as_of, chunk_series)):
             pending.append(pool.submit(_stage_chunk, frame, *args, i))
             while len(pending) >= spec.run.workers * 2:
                 progress(pending.pop(0).result())
         for fut in pending:
             progress(fut.result())
     return summary
+
+
+def _start_worker() -> None:
+    """Worker process set-up: allocator tuning and the imports a chunk needs."""
+    tune_for_batch()
+    from .core import pipeline  # noqa: F401  (imports numpy, scipy.special and the core once)
 
 
 def _read_staged(stage: RunStage, table: str) -> pl.DataFrame:
