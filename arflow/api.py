@@ -95,7 +95,7 @@ def forecast(
     series; ``period`` is a Date/Datetime/ISO-text column (or integers with
     ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
     or int) ignores later rows; by default it is the latest period present.
-    ``workers`` > 1 uses that many threads for the statistical core.
+    ``workers`` > 1 runs the statistical core in that many worker processes (blocks of series).
 
     Schema problems raise :class:`arflow.errors.SchemaError`; per-series
     problems become quarantine reasons.
