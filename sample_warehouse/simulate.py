@@ -48,3 +48,17 @@ def to_panel(Y: np.ndarray):
 
     G, T = Y.shape
     return build_panel(np.repeat(np.arange(G), T), np.tile(np.arange(T), G), Y.ravel(), G)
+
+
+def right_align(rows: list[np.ndarray], T: int | None = None) -> np.ndarray:
+    """Series of different lengths as a right-aligned (G, T) panel, NaN before each start.
+
+    >>> right_align([np.array([1.0]), np.array([2.0, 3.0])]).tolist()
+    [[nan, 1.0], [2.0, 3.0]]
+    """
+    T = T or max(len(r) for r in rows)
+    out = np.full((len(rows), T), np.nan)
+    for g, r in enumerate(rows):
+        if len(r):
+            out[g, T - len(r) :] = r
+    return out

@@ -19,6 +19,7 @@ from statsmodels.stats.multitest import multipletests  # noqa: E402
 from statsmodels.tsa.stattools import acf as sm_acf  # noqa: E402
 
 from arflow.core import ols  # noqa: E402
+from arflow.sample.simulate import right_align  # noqa: E402
 from arflow.core.diagnostics import (  # noqa: E402
     AcfResult,
     arch_lm,
@@ -64,15 +65,6 @@ def _sm_ar_fit(y: np.ndarray, p: int):
     return sm.OLS(yy, sm.add_constant(X)).fit(), X
 
 
-def _right_align(rows: list[np.ndarray], T: int | None = None) -> np.ndarray:
-    T = T or max(len(r) for r in rows)
-    out = np.full((len(rows), T), np.nan)
-    for g, r in enumerate(rows):
-        if len(r):
-            out[g, T - len(r) :] = r
-    return out
-
-
 # ----------------------------------------------------------------------------- ACF
 
 
@@ -113,7 +105,7 @@ def test_ljung_box_from_acf_and_array_model_df():
     for p, name in zip([1, 2, 3], ["sunspots", "nile", "ar2"]):
         rows.append(_sm_ar_fit(SERIES[name], p)[0].resid)
         dfs.append(p)
-    E = _right_align(rows)
+    E = right_align(rows)
     a = residual_acf(E, 10)
     assert isinstance(a, AcfResult)
     via_acf = ljung_box(a, 10, np.array(dfs))
@@ -187,7 +179,7 @@ def test_ragged_batch_equals_one_at_a_time():
         rows.append(res.resid)
         Xs.append((X, res))
     T = max(len(r) for r in rows) + 5  # extra all-NaN leading columns
-    E = _right_align(rows, T)
+    E = right_align(rows, T)
     Xp = np.full((len(rows), T, 2), np.nan)
     for g, (X, _) in enumerate(Xs):
         Xp[g, T - len(X) :] = X
@@ -211,7 +203,7 @@ def test_ragged_batch_equals_one_at_a_time():
 
 def test_too_short_series_give_nan():
     rng = np.random.default_rng(3)
-    E = _right_align([rng.standard_normal(n) for n in (0, 1, 2, 4, 6, 50)])
+    E = right_align([rng.standard_normal(n) for n in (0, 1, 2, 4, 6, 50)])
     E[4] = np.nan
     E[4, -6:] = 2.0  # constant residuals
     X = np.where(np.isnan(E), np.nan, 1.0)[:, :, None] * rng.standard_normal(E.shape + (1,))

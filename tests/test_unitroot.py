@@ -23,6 +23,7 @@ from statsmodels.tsa.stattools import kpss as sm_kpss  # noqa: E402
 
 from arflow.core import unitroot  # noqa: E402
 from arflow.core.unitroot import adf, kpss, mackinnon_crit, mackinnon_pvalue  # noqa: E402
+from arflow.sample.simulate import right_align  # noqa: E402
 
 RTOL = 1e-6
 
@@ -46,15 +47,6 @@ def _series() -> dict[str, np.ndarray]:
 
 
 SERIES = _series()
-
-
-def _right_align(rows: list[np.ndarray], T: int | None = None) -> np.ndarray:
-    T = T or max(len(r) for r in rows)
-    out = np.full((len(rows), T), np.nan)
-    for g, r in enumerate(rows):
-        if len(r):
-            out[g, T - len(r) :] = r
-    return out
 
 
 def _sm_kpss(x, **kw):
@@ -118,7 +110,7 @@ def test_adf_ragged_batch_equals_one_at_a_time(monkeypatch):
     rng = np.random.default_rng(5)
     rows = [np.cumsum(rng.standard_normal(n)) + 0.3 * rng.standard_normal(n) for n in (60, 333, 17, 150, 5, 2, 0)]
     rows[3] = rows[3] * 1e4 + 5e6  # large level, checks centring/scaling
-    Y = _right_align(rows, 340)
+    Y = right_align(rows, 340)
     batch = adf(Y)
     # force many small chunks: same numbers
     monkeypatch.setattr(unitroot, "_CHUNK_ELEMS", 500)
@@ -140,7 +132,7 @@ def test_adf_ragged_batch_equals_one_at_a_time(monkeypatch):
 
 
 def test_adf_too_short_gives_nan():
-    Y = _right_align([np.arange(n, dtype=float) ** 1.5 for n in (0, 1, 3, 5, 40)])
+    Y = right_align([np.arange(n, dtype=float) ** 1.5 for n in (0, 1, 3, 5, 40)])
     out = adf(Y)
     assert np.isnan(out.statistic[:3]).all() and np.isnan(out.pvalue[:3]).all() and np.isnan(out.crit_1[:3]).all()
     assert (out.used_lag[:3] == -1).all()
@@ -218,7 +210,7 @@ def test_kpss_pvalue_interpolates_table_1():
 def test_kpss_ragged_batch_equals_one_at_a_time():
     rng = np.random.default_rng(6)
     rows = [np.cumsum(rng.standard_normal(n)) * s + rng.standard_normal(n) for n, s in ((80, 0.1), (500, 1), (33, 0), (210, 0.3))]
-    Y = _right_align(rows, 512)
+    Y = right_align(rows, 512)
     for nl in ("auto", "legacy", 6):
         batch = kpss(Y, nl)
         for g, x in enumerate(rows):
@@ -230,7 +222,7 @@ def test_kpss_ragged_batch_equals_one_at_a_time():
 
 
 def test_kpss_too_short_gives_nan():
-    Y = _right_align([np.arange(n, dtype=float) for n in (0, 1, 2, 10)] + [np.full(10, 3.0)])
+    Y = right_align([np.arange(n, dtype=float) for n in (0, 1, 2, 10)] + [np.full(10, 3.0)])
     out = kpss(Y)
     assert np.isnan(out.statistic[[0, 1, 2, 4]]).all() and np.isnan(out.pvalue[[0, 1, 2, 4]]).all()
     assert np.isfinite(out.statistic[3])

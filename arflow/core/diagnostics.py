@@ -221,7 +221,7 @@ def breusch_godfrey(
         Xo = np.where(valid[:, :, None], Xo, 0.0)
         m = np.ones(Xo.shape[::2], dtype=bool) if mask is None else np.asarray(mask, dtype=bool)
         m = np.broadcast_to(m, (G, Xo.shape[2]))
-        # zero masked-out columns so they cannot make ols.gram flag the regression collinear
+        # zero masked-out columns: their values never enter the fit
         Xo = Xo * m[:, None, :]
     lagcols = np.stack([_shift(z, j) for j in range(1, nlags + 1)], axis=2)
     Xa = np.concatenate([Xo, lagcols], axis=2)

@@ -224,8 +224,8 @@ def _adf_chunk(
     X = np.stack(cols, axis=2)
     k = X.shape[2]
     # zero the lag columns a series never uses: a zero column is "degenerate"
-    # to ols.gram (unit diagonal, no coupling), so unused columns of other
-    # series' width cannot make this regression look collinear
+    # to ols.gram (unit diagonal, no coupling), so the width other series need
+    # never changes this series' numbers
     X[:, :, 1 : kmax + 1] *= np.arange(1, kmax + 1)[None, None, :] <= ml[:, None, None]
     tcol = np.arange(T)[None, :]
     first_dy = (T - n + 1)[:, None]  # first column holding a valid dy_t
