@@ -34,9 +34,9 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
 
-from arflow.sample.simulate import mixed_monthly
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from warehouse_scale import build_warehouse  # noqa: E402  (same seeded warehouse as the scale benchmark)
 
 JOB = """\
 [job]
@@ -70,21 +70,12 @@ chunk_series = {chunk}
 """
 
 
-def build(db: Path, parquet: Path, G: int, T: int, block: int = 100_000) -> None:
-    """The seeded warehouse table ``readings`` and its Parquet export."""
+def build(db: Path, parquet: Path, G: int, T: int) -> None:
+    """The seeded warehouse table ``readings`` (the scale benchmark's) and its Parquet export."""
     import duckdb
-    import pyarrow as pa
 
-    months = (np.datetime64("2015-01", "M") + np.arange(T)).astype("datetime64[D]")
+    build_warehouse(db, G, T)
     con = duckdb.connect(str(db))
-    con.execute("CREATE TABLE readings (site VARCHAR, period DATE, value DOUBLE)")
-    for b0 in range(0, G, block):
-        g = min(block, G - b0)
-        Y = mixed_monthly(g, T, seed=1000 + b0 // block, level=500.0)
-        ids = np.char.add("site-", np.char.zfill(np.arange(b0, b0 + g).astype(str), 7))
-        con.register("chunk", pa.table({"site": np.repeat(ids, T), "period": np.tile(months, g), "value": Y.ravel()}))
-        con.execute("INSERT INTO readings SELECT * FROM chunk")
-        con.unregister("chunk")
     con.execute(f"COPY readings TO '{parquet}' (FORMAT parquet)")
     con.close()
 
