@@ -96,14 +96,23 @@ class ModelSettings:
 class ForecastSettings:
     """Forecast horizon and prediction-interval coverage levels.
 
+    ``parameter_uncertainty``: ``True`` (default) widens the intervals by the
+    estimation uncertainty of the coefficients (delta method, Fuller & Hasza
+    1981) and uses Student-t quantiles with the residual degrees of freedom;
+    ``False`` gives the classic plug-in psi-weight intervals (the coefficients
+    treated as known, Gaussian quantiles; what statsmodels' ``AutoReg`` reports).
+
     >>> ForecastSettings(horizon=6, coverage=(0.8,)).horizon
     6
     """
 
     horizon: int = 12
     coverage: tuple[float, ...] = (0.8, 0.95)
+    parameter_uncertainty: bool = True
 
     def __post_init__(self) -> None:
+        if not isinstance(self.parameter_uncertainty, bool):
+            _fail("forecast.parameter_uncertainty", self.parameter_uncertainty, "true or false")
         if not (_is_int(self.horizon) and 1 <= self.horizon <= 1000):
             _fail("forecast.horizon", self.horizon, "an integer from 1 to 1000")
         cov = tuple(self.coverage) if isinstance(self.coverage, (list, tuple)) else None

@@ -77,7 +77,7 @@ import numpy as np
 
 from . import ols
 from .autoreg import MIN_RESID_DF, shifted_lag_stack
-from .forecast import forecast_ar
+from .forecast import cov_from_gram, forecast_ar
 
 #: series per block: keeps the (series, periods, lags) design in cache
 BLOCK_SERIES = 1024
@@ -217,6 +217,7 @@ def rolling_origin(
     season: int | None = None,
     min_train: int = 0,
     block: int = BLOCK_SERIES,
+    parameter_uncertainty: bool = False,
 ) -> BacktestResult:
     """Backtest each series' AR specification at the last ``origins`` origins (see the module notes).
 
@@ -225,6 +226,8 @@ def rolling_origin(
     a series with no lags is not backtested); ``differenced`` (G,) bool: model
     first differences. ``season``: seasonal naive benchmark and seasonal MASE
     scale. ``min_train``: least number of level observations up to an origin.
+    ``parameter_uncertainty``: intervals include the estimation term and
+    Student-t quantiles, as the published ones do (:mod:`arflow.core.forecast`).
 
     >>> y = np.tile([0.0, 2.0], 7)[None, :13]; y[0, 11:] = [3.0, 1.0]
     >>> r = rolling_origin(y, np.array([[True]]), np.array([1]), origins=2, horizon=2)
@@ -267,7 +270,8 @@ def rolling_origin(
     step = max(int(block), 1)
     for b0 in range(0, G, step):
         idx = perm[b0 : b0 + step]
-        out = _block(Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train))
+        out = _block(Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train),
+                     bool(parameter_uncertainty))
         for k, v in out.items():
             parts[k].append(v)
     if G == 0:
@@ -296,7 +300,7 @@ def rolling_origin(
     )
 
 
-def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train) -> dict:
+def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, param_unc=False) -> dict:
     B, T = Y.shape
     C = len(cov)
     sums = {k: _Sums(B, H) for k in ("model", "naive", "snaive")}
@@ -374,8 +378,16 @@ def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train) -> d
         if lo < 0:
             hist = np.concatenate([np.full((B, -lo), np.nan), hist], axis=1)
         hist = np.where(okf, np.nan_to_num(hist), 0.0)
+        extra = {}
+        if param_unc:
+            with np.errstate(all="ignore"):
+                V = cov_from_gram(g, mask, lags_b, sig, shift)
+            Vd = np.zeros((B, L + 1, L + 1))
+            Vd[:, : V.shape[1], : V.shape[2]] = V
+            extra = dict(coef_cov=np.where(okf[:, :, None], np.nan_to_num(Vd), 0.0),
+                         df_resid=np.where(ok, res.df_resid, np.nan))
         with np.errstate(all="ignore"):
-            fc = forecast_ar(hist, icpt, phi, sig, H, cov, diff)
+            fc = forecast_ar(hist, icpt, phi, sig, H, cov, diff, **extra)
         ok = ok & np.isfinite(sigma) & np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
         okf = ok[:, None]
         actual = Y[:, c + 1 : c + 1 + H]

@@ -41,3 +41,19 @@ def norm_cdf(x):
 def norm_ppf(p):
     """Standard normal quantile."""
     return special.ndtri(np.asarray(p, dtype=np.float64))
+
+
+def t_ppf(p, df):
+    """Student's t quantile with ``df`` degrees of freedom (normal where ``df`` is infinite)."""
+    p = np.asarray(p, dtype=np.float64)
+    df = np.asarray(df, dtype=np.float64)
+    return np.where(np.isinf(df), special.ndtri(p), special.stdtrit(np.where(np.isinf(df), 1.0, df), p))
+
+
+def binom_cdf(k, n, p):
+    """P(X <= k) for X binomial(``n``, ``p``); 0 below k = 0, 1 at k >= n."""
+    k = np.asarray(k, dtype=np.float64)
+    n = np.asarray(n, dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        inner = special.bdtr(np.clip(k, 0, np.maximum(n - 1, 0)), n, p)
+    return np.where(k < 0, 0.0, np.where(k >= n, 1.0, inner))

@@ -12,7 +12,7 @@ import numpy as np
 
 from ..settings import Settings
 from . import autoreg, backtest, diagnostics, gates, unitroot
-from .forecast import Forecasts, forecast_ar
+from .forecast import Forecasts, coef_covariance, forecast_ar
 from .panel import CONSTANT, NO_DATA, Panel
 
 
@@ -85,6 +85,23 @@ def adf_from_fit(fit: autoreg.ARFit) -> unitroot.AdfResult:
     return unitroot.AdfResult(stat, pval, used, np.where(fit.fitted, fit.n_obs, -1), crit[:, 0], crit[:, 1], crit[:, 2])
 
 
+def _interval_terms(fit: autoreg.ARFit, modelled: np.ndarray, fs, exclude: np.ndarray | None = None) -> dict:
+    """Keyword arguments of :func:`forecast_ar` for parameter-uncertainty intervals (empty when off).
+
+    ``exclude`` (G, T) bool: rows of the fitted sample taken out by intervention terms.
+    """
+    if not fs.parameter_uncertainty:
+        return {}
+    w = np.isfinite(fit.resid)
+    if exclude is not None:
+        w = w & ~exclude[:, -w.shape[1]:]
+    M = modelled[:, -w.shape[1]:]
+    X = autoreg.lag_design(M, fit.lags)
+    cov = coef_covariance(X, w.astype(np.float64), fit.lag_mask, fit.lags, np.nan_to_num(fit.sigma))
+    df = np.where(fit.fitted, fit.n_obs - fit.n_lags - 1, np.nan).astype(np.float64)
+    return dict(coef_cov=np.where(fit.fitted[:, None, None], np.nan_to_num(cov), 0.0), df_resid=df)
+
+
 def _run_block(panel: Panel, settings: Settings) -> dict:
     ms, gs, fs = settings.model, settings.gates, settings.forecast
     Y = panel.values
@@ -134,6 +151,7 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         fs.horizon,
         fs.coverage,
         differenced,
+        **_interval_terms(fit, modelled, fs),
     )
     bt = None
     bs = settings.backtest
@@ -148,6 +166,7 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
             coverage=fs.coverage,
             season=seasonal,
             min_train=gs.min_observations,
+            parameter_uncertainty=fs.parameter_uncertainty,
         )
     return dict(fit=fit, differenced=differenced, unit_root=unit_root, adf=adf, kpss=kp, acf=acf,
                 residual_test=rtest, arch=arch, forecasts=fc, backtest=bt)
