@@ -151,6 +151,43 @@ class BacktestResult:
             return np.where((nm > 0) & (nn > 0), np.sqrt((sm / nm) / (sn / nn)), np.nan)
 
 
+    def coverage_test(self, steps: int = 1) -> tuple[np.ndarray, np.ndarray]:
+        """Is the intervals' backtest coverage significantly below nominal? ``(statistic, pvalue)`` (G,).
+
+        For each coverage level c, the hits X among the N scored forecasts at
+        steps 1..``steps`` (pooled over origins) are compared with Binomial(N, c):
+        one-sided p-value ``P(Bin(N, c) <= X)`` (exact binomial test; Clopper &
+        Pearson 1934 give the matching interval). Levels are combined by
+        Bonferroni (smallest p times the number of levels, capped at 1).
+        ``statistic`` is the observed coverage of the level with the smallest p.
+        One-step errors at different origins are (for a correct model) separate
+        innovations, so step 1 alone keeps the binomial's independence; longer
+        steps overlap across origins and make the test oversized. The test is
+        discrete, hence conservative: its size is at most the level (measured
+        in ``bench/calibration.py``).
+        """
+        from .distributions import binom_cdf
+
+        k = max(1, min(int(steps), self.horizon))
+        n = self.model.count[:, :k].astype(np.float64)  # (G, k)
+        C = len(self.coverage)
+        G = n.shape[0]
+        if C == 0 or G == 0:
+            return np.full(G, np.nan), np.full(G, np.nan)
+        rate = np.nan_to_num(self.coverage_rate[:, :, :k])
+        hits = np.rint((rate * n[None]).sum(axis=2))  # (C, G)
+        N = n.sum(axis=1)  # (G,)
+        levels = np.asarray(self.coverage, dtype=np.float64)[:, None]
+        p = binom_cdf(hits, N[None, :], levels)
+        j = np.argmin(p, axis=0)
+        cols = np.arange(G)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            obs = hits[j, cols] / N
+        pmin = np.minimum(1.0, C * p[j, cols])
+        none = N <= 0
+        return np.where(none, np.nan, obs), np.where(none, np.nan, pmin)
+
+
 class _Sums:
     """Running sums of one method's errors over origins, for a block of series."""
 

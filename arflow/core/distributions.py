@@ -54,6 +54,10 @@ def binom_cdf(k, n, p):
     """P(X <= k) for X binomial(``n``, ``p``); 0 below k = 0, 1 at k >= n."""
     k = np.asarray(k, dtype=np.float64)
     n = np.asarray(n, dtype=np.float64)
+    k, n = np.broadcast_arrays(k, n)
+    nn = np.where(np.isfinite(n), n, 0).astype(np.int64)
+    kk = np.clip(np.where(np.isfinite(k), k, 0), 0, np.maximum(nn - 1, 0)).astype(np.int64)
     with np.errstate(invalid="ignore"):
-        inner = special.bdtr(np.clip(k, 0, np.maximum(n - 1, 0)), n, p)
-    return np.where(k < 0, 0.0, np.where(k >= n, 1.0, inner))
+        inner = special.bdtr(kk, nn, p)
+    out = np.where(k < 0, 0.0, np.where(k >= n, 1.0, inner))
+    return np.where(np.isnan(k) | np.isnan(n), np.nan, out)
