@@ -193,3 +193,9 @@ def print_coverage_gate(G: int = 2000) -> None:
     for label, gen in COVERAGE_CASES:
         Y = gen(G, 120, 900)
         print(f"{label:<16} corrected {coverage_gate_rate(Y):>6.1%}   plug-in {coverage_gate_rate(Y, parameter_uncertainty=False):>6.1%}")
+
+
+if __name__ == "__main__":
+    print_coverage()
+    print_outliers()
+    print_coverage_gate()
