@@ -45,9 +45,25 @@ def norm_ppf(p):
 
 def t_ppf(p, df):
     """Student's t quantile with ``df`` degrees of freedom (normal where ``df`` is infinite)."""
-    p = np.asarray(p, dtype=np.float64)
-    df = np.asarray(df, dtype=np.float64)
-    return np.where(np.isinf(df), special.ndtri(p), special.stdtrit(np.where(np.isinf(df), 1.0, df), p))
+    p, df = np.broadcast_arrays(np.asarray(p, dtype=np.float64), np.asarray(df, dtype=np.float64))
+    pf, dff = p.ravel(), df.ravel()
+
+    def q(pp, dd):
+        with np.errstate(invalid="ignore"):
+            v = np.where(np.isinf(dd), special.ndtri(pp), special.stdtrit(np.where(np.isfinite(dd), dd, 1.0), pp))
+        return np.where(np.isnan(dd) | np.isnan(pp), np.nan, v)
+
+    levels = np.unique(pf)
+    if len(levels) > 16:
+        return q(pf, dff).reshape(p.shape)
+    # stdtrit is slow: evaluate each distinct df once per level (degrees of freedom repeat a lot)
+    out = np.empty(pf.shape)
+    for lv in levels:
+        sel = pf == lv
+        du, inv = np.unique(dff[sel], return_inverse=True)
+        out[sel] = q(np.full(len(du), lv), du)[inv.ravel()]
+    out[np.isnan(pf)] = np.nan
+    return out.reshape(p.shape)
 
 
 def binom_cdf(k, n, p):

@@ -143,24 +143,40 @@ def parameter_variance(
     kept, so memory is (G, L, L+1) whatever the horizon.
     """
     G, L = phi.shape
-    P = L + 1
+    out = np.zeros((G, horizon))
+    V = np.nan_to_num(np.asarray(coef_cov, dtype=np.float64))
+    # only the lags some series uses (phi or V nonzero): a compact parameter vector
+    diagv = np.diagonal(V, axis1=1, axis2=2)[:, 1:]
+    used = np.flatnonzero(np.any(diagv != 0, axis=0) | np.any(phi != 0, axis=0)) + 1
+    K = len(used)
+    P = K + 1
+    sel = np.concatenate([[0], used])
+    Vc = V[:, sel][:, :, sel]
+    phic = phi[:, used - 1]
     buf = np.zeros((G, L + horizon))
     if L:
         buf[:, :L] = src[:, src.shape[1] - L :]
-    win = np.zeros((G, L, P))  # derivatives of the last L values, column 0 = lag 1
+    R = max(L, 1)
+    ring = np.zeros((R, G, P))  # derivatives of positions p - R .. p - 1, at index p % R
     cum = np.zeros((G, P))
-    out = np.zeros((G, horizon))
-    V = np.nan_to_num(np.asarray(coef_cov, dtype=np.float64))
+    CH = 64  # steps per batched quadratic form (bounds memory at long horizons)
+    grads = np.zeros((G, min(horizon, CH), P))
     for h in range(horizon):
-        past = buf[:, h : L + h][:, ::-1]  # lag 1 first
-        buf[:, L + h] = intercept + np.einsum("gi,gi->g", phi, past)
-        g = np.einsum("gj,gjp->gp", phi, win)
-        g[:, 0] += 1.0
-        g[:, 1:] += past
-        if L:
-            win = np.concatenate([g[:, None, :], win[:, :-1, :]], axis=1)
+        p = L + h
+        past = buf[:, p - used] if K else np.zeros((G, 0))  # y at lags used
+        buf[:, p] = intercept + (phic * past).sum(axis=1)
+        g = np.zeros((G, P))
+        g[:, 0] = 1.0
+        g[:, 1:] = past
+        for k in range(K):
+            g += phic[:, k : k + 1] * ring[(p - used[k]) % R]
+        ring[p % R] = g
         cum = np.where(diff[:, None], cum + g, g)
-        out[:, h] = np.einsum("gp,gpq,gq->g", cum, V, cum)
+        grads[:, h % CH] = cum
+        if h % CH == CH - 1 or h == horizon - 1:
+            h0 = h - h % CH
+            gm = grads[:, : h - h0 + 1]
+            out[:, h0 : h + 1] = (np.matmul(gm, Vc) * gm).sum(axis=2)
     return np.maximum(out, 0.0)
 
 

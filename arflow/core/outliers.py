@@ -94,13 +94,24 @@ def robust_scale(resid: np.ndarray) -> np.ndarray:
     1.4826
     """
     r = np.asarray(resid, dtype=np.float64)
-    ok = np.isfinite(r).any(axis=1)
-    out = np.full(r.shape[0], np.nan)
-    if ok.any():
-        rr = r[ok]
-        med = np.nanmedian(rr, axis=1)
-        out[ok] = MAD_FACTOR * np.nanmedian(np.abs(rr - med[:, None]), axis=1)
-    return out
+    med = row_median(r)
+    return MAD_FACTOR * row_median(np.abs(r - med[:, None]))
+
+
+def row_median(a: np.ndarray) -> np.ndarray:
+    """Median of the finite values of each row (NaN for a row without any), by one batched sort.
+
+    (``np.nanmedian`` falls back to a Python loop over rows on large arrays.)
+    """
+    a = np.where(np.isfinite(a), a, np.nan)
+    G = a.shape[0]
+    n = np.isfinite(a).sum(axis=1)
+    if a.shape[1] == 0:
+        return np.full(G, np.nan)
+    srt = np.sort(a, axis=1)  # NaN last
+    lo = np.take_along_axis(srt, np.maximum((n - 1) // 2, 0)[:, None], axis=1)[:, 0]
+    hi = np.take_along_axis(srt, np.minimum(n // 2, a.shape[1] - 1)[:, None], axis=1)[:, 0]
+    return np.where(n > 0, 0.5 * (lo + hi), np.nan)
 
 
 def threshold(n: np.ndarray, alpha: float = ALPHA) -> np.ndarray:
@@ -142,10 +153,7 @@ def detect(resid: np.ndarray, fit: ARFit, alpha: float = ALPHA, max_outliers: in
     sigma = robust_scale(np.where(valid, e, np.nan))
     # robust centring: OLS residuals sum to zero *including* the outliers, so a large one
     # shifts all the others; the median is not moved by it
-    med = np.zeros(G)
-    has = valid.any(axis=1)
-    if has.any():
-        med[has] = np.nanmedian(np.where(valid[has], e[has], np.nan), axis=1)
+    med = np.nan_to_num(row_median(np.where(valid, e, np.nan)))
     e = e - med[:, None]
     crit = threshold(n, alpha)
     # pi weights of the used lags: pi_0 = 1, pi_l = -phi_l
@@ -155,29 +163,31 @@ def detect(resid: np.ndarray, fit: ARFit, alpha: float = ALPHA, max_outliers: in
     active = fit.fitted & np.isfinite(sigma) & (sigma > 0)
     first = np.full(G, np.nan)
     too_many = np.zeros(G, dtype=bool)
-    rows = np.arange(G)
+    idx = np.flatnonzero(active)  # rows still searched (after round 0: those with a hit)
     for r in range(max_outliers + 1):
-        if not active.any():
+        if not len(idx) or T == 0:
             break
-        lam, w = _statistics(e, valid, pis, sigma)
-        a = np.where(valid & ~flagged & active[:, None], np.abs(np.nan_to_num(lam)), -1.0)
+        ei, vi = e[idx], valid[idx]
+        lam, w = _statistics(ei, vi, [(j, pj[idx]) for j, pj in pis], sigma[idx])
+        a = np.where(vi & ~flagged[idx], np.abs(np.nan_to_num(lam)), -1.0)
         t = np.argmax(a, axis=1)
-        best = a[rows, t]
+        loc = np.arange(len(idx))
+        best = a[loc, t]
         if r == 0:
-            first = np.where(fit.fitted & np.isfinite(sigma), np.where(best >= 0, best, np.nan), np.nan)
-        hit = active & (best > crit)
+            first[idx] = np.where(best >= 0, best, np.nan)
+        hit = best > crit[idx]
         if r == max_outliers:
-            too_many = hit
+            too_many[idx[hit]] = True
             break
-        flagged[rows[hit], t[hit]] = True
-        wt = np.where(hit, w[rows, t], 0.0)
-        size[rows[hit], t[hit]] = wt[hit]
+        gi, ti = idx[hit], t[hit]
+        flagged[gi, ti] = True
+        wt = w[loc, t][hit]
+        size[gi, ti] = wt
         for j, pj in pis:
-            c = t + j
-            ok = hit & (c < T)
-            cc = np.minimum(c, T - 1)
-            e[rows[ok], cc[ok]] -= (wt * pj)[ok]
-        active = hit
+            c = ti + j
+            ok = c < T
+            e[gi[ok], c[ok]] -= (wt * pj[gi])[ok]
+        idx = gi
     return OutlierResult(first, crit, flagged, flagged.sum(axis=1), too_many, sigma, size)
 
 
