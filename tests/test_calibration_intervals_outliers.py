@@ -283,7 +283,7 @@ def _rates(Y: np.ndarray, frequency: str, seed: int) -> tuple[float, float]:
 def test_outlier_detection_and_false_flag_rates():
     # acceptance: an additive outlier of 8 innovation SDs is caught in >= 95% of clean AR series of
     # 120 points; clean Gaussian series are flagged in at most 2% (the detector's level is 1% per
-    # series; measured 0.4-0.9%, bench/calibration.py). Lower bounds guard against a dead detector.
+    # series; measured 0.2-0.9%, bench/calibration.py). Lower bounds guard against a dead detector.
     false, caught = _rates(simulate_ar({1: 0.5}, 1500, 120, 71), "month", 72)
     assert 0.001 <= false <= 0.02 and caught >= 0.95
     false, caught = _rates(simulate_ar({1: 0.0}, 1500, 120, 73), "month", 74)

@@ -19,6 +19,9 @@ scale it is measured against. Round by round each series' largest
 ``|lambda_t|`` is compared with the threshold; a flagged period's effect is
 removed from the residuals (``e(t+j) -= w_t pi_j``) and the statistics are
 recomputed, so one large outlier does not mask, or spill onto, its neighbours.
+Series with outliers are then refitted and searched once more from scratch
+with the refitted coefficients (:func:`detect_and_treat`), as Chen & Liu
+iterate detection and estimation.
 
 Threshold: the largest of n statistics is judged, so the per-series level is
 split over the n candidate periods (Bonferroni): ``c(n) = t_nu^-1(1 - alpha / (2 n))``
@@ -200,7 +203,9 @@ class Treated:
     (too few rows left); ``excluded`` (G, T): regression rows carried by
     indicators; ``effect`` (G, T): the estimated outlier effect at flagged
     periods (NaN elsewhere); ``cleaned`` (G, T): the modelled series with each
-    outlier replaced by its fitted value.
+    outlier replaced by its fitted value; ``full_resid`` (G, T): residuals of
+    the refitted model on the whole fitted sample, indicator rows included
+    (NaN for series not refitted).
     """
 
     fit: ARFit
@@ -209,6 +214,7 @@ class Treated:
     excluded: np.ndarray
     effect: np.ndarray
     cleaned: np.ndarray
+    full_resid: np.ndarray
 
 
 def treat(M: np.ndarray, fit: ARFit, found: OutlierResult) -> Treated:
@@ -234,6 +240,7 @@ def treat(M: np.ndarray, fit: ARFit, found: OutlierResult) -> Treated:
     ok = want & (w.sum(axis=1) - k - 1 >= MIN_RESID_DF)
     idx = np.flatnonzero(ok)
     effect = np.full((G, T), np.nan)
+    full_resid = np.full((G, T), np.nan)
     cleaned = M.copy()
     out = fit
     if len(idx):
@@ -250,10 +257,37 @@ def treat(M: np.ndarray, fit: ARFit, found: OutlierResult) -> Treated:
         fl = found.flagged[idx]
         eff = np.where(fl, M[idx] - pred, np.nan)
         effect[idx] = eff
+        full_resid[idx] = np.where(sample[idx], M[idx] - pred, np.nan)
         cleaned[idx] = np.where(fl, pred, M[idx])
         out = _splice_rows(fit, sub, idx)
     failed = found.any & fit.fitted & ~ok
-    return Treated(out, ok, failed, excluded & ok[:, None], effect, cleaned)
+    return Treated(out, ok, failed, excluded & ok[:, None], effect, cleaned, full_resid)
+
+
+def detect_and_treat(M: np.ndarray, fit: ARFit, alpha: float = ALPHA) -> tuple[OutlierResult, Treated | None]:
+    """Two passes (Chen & Liu 1993 iterate detection and estimation): detect with the
+    original fit; refit the series with outliers; detect again from scratch with the
+    refitted coefficients on the refit's residuals over the whole sample (the outliers'
+    own rows included), whose coefficients are no longer pulled by the outliers; treat
+    the final flags starting from the original fit. Returns the final detection and
+    its treatment (None when nothing was flagged)."""
+    found = detect(fit.resid, fit, alpha)
+    if not found.any.any():
+        return found, None
+    first = treat(M, fit, found)
+    if first.treated.any():
+        again = detect(first.full_resid, first.fit, alpha)
+        t = first.treated
+        found = OutlierResult(
+            statistic=np.where(t, again.statistic, found.statistic),
+            threshold=found.threshold,
+            flagged=np.where(t[:, None], again.flagged, found.flagged),
+            count=np.where(t, again.count, found.count),
+            too_many=np.where(t, again.too_many, found.too_many),
+            scale=np.where(t, again.scale, found.scale),
+            size=np.where(t[:, None], again.size, found.size),
+        )
+    return found, treat(M, fit, found)
 
 
 def _pad(a: np.ndarray, T: int) -> np.ndarray:

@@ -152,11 +152,10 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
     # ---- additive outliers (arflow.core.outliers) ----------------------------------------
     Yf, excluded, orep = Y, None, None
     if ms.outliers != "off":
-        found = outliers.detect(fit.resid, fit)
+        found, tr = outliers.detect_and_treat(modelled, fit)
         effect = np.where(found.flagged, found.size, np.nan)
         passed = ~found.any & ~found.too_many
-        if ms.outliers == "treat" and found.any.any():
-            tr = outliers.treat(modelled, fit, found)
+        if ms.outliers == "treat" and tr is not None:
             fit, excluded = tr.fit, tr.excluded
             effect = np.where(tr.treated[:, None], tr.effect, effect)
             passed = ~found.too_many & ~tr.failed
