@@ -220,6 +220,11 @@ class BacktestSettings:
     naive in 96%; random walks show a ratio below 0.95 in 3.7%
     (``bench/calibration.py``).
 
+    ``coverage_gate`` (``interval_calibration``): off / warn / enforce like
+    ``naive_gate``, reason ``interval_undercoverage``. Measured size with the
+    defaults (5%, step 1, 24 origins) on 2,000 series of 120 whose model is
+    right: 1.5-1.8% (the exact binomial test is discrete, hence conservative).
+
     >>> BacktestSettings(origins=24).naive_steps
     1
     """

@@ -340,3 +340,49 @@ def test_new_settings_are_validated():
     with pytest.raises(SettingsError, match="backtest.coverage_alpha"):
         BacktestSettings(coverage_alpha=1.5)
     assert ForecastSettings().parameter_uncertainty is True and ModelSettings().outliers == "treat"
+
+
+def test_job_file_keys_reach_the_settings(tmp_path):
+    from arflow.job_file import load_job
+    from arflow.sample.panels import default_job, job_toml
+
+    job = default_job()
+    job["model"]["outliers"] = "quarantine"
+    job["forecast"]["parameter_uncertainty"] = False
+    job["backtest"] = {"coverage_gate": "enforce", "coverage_alpha": 0.01}
+    path = tmp_path / "job.toml"
+    path.write_text(job_toml(job), encoding="utf-8")
+    spec = load_job(path)
+    assert spec.settings.model.outliers == "quarantine"
+    assert spec.settings.forecast.parameter_uncertainty is False
+    assert spec.settings.backtest.coverage_gate == "enforce" and spec.settings.backtest.coverage_alpha == 0.01
+
+
+def test_cleaned_levels_keep_the_last_level_of_a_differenced_series():
+    # a level spike on a random walk shows in the differences as +w at t and -w at t+1; removing both
+    # effects restores the original path before the spike and keeps every level from t+1 on
+    y = np.array([[1.0, 2.0, 3.0, 13.0, 4.0, 5.0]])
+    eff = np.full((1, 6), np.nan)
+    eff[0, 3], eff[0, 4] = 9.0, -9.0
+    assert outliers.cleaned_levels(y, eff, np.array([True])).tolist() == [[1.0, 2.0, 3.0, 4.0, 4.0, 5.0]]
+    assert outliers.cleaned_levels(y, eff, np.array([False])).tolist() == [[1.0, 2.0, 3.0, 4.0, 13.0, 5.0]]
+
+
+def test_backtest_intervals_are_the_published_kind():
+    # the backtest's latest origin refits on the data up to it: its step-1 interval must be the one
+    # forecast_ar gives with the same fit and the parameter-uncertainty term
+    Y = simulate_ar({1: 0.5}, 2, 80, 12)
+    H = 3
+    bt = rolling_origin(Y, np.array([[True], [True]]), np.array([1]), origins=1, horizon=H, coverage=(0.95,),
+                        parameter_uncertainty=True)
+    bt0 = rolling_origin(Y, np.array([[True], [True]]), np.array([1]), origins=1, horizon=H, coverage=(0.95,))
+    c = int(bt.origin_columns[-1])
+    fit = autoreg.fit_ar(Y[:, : c + 1], order=1)
+    X = autoreg.lag_design(Y[:, : c + 1], fit.lags)
+    V = F.coef_covariance(X, np.isfinite(fit.resid).astype(float), fit.lag_mask, fit.lags, fit.sigma)
+    fc = F.forecast_ar(Y[:, : c + 1], fit.intercept, fit.phi(), fit.sigma, H, (0.95,), coef_cov=V,
+                       df_resid=(fit.n_obs - 2).astype(float))
+    a = Y[:, c + 1 : c + 1 + H]
+    inside = (a >= fc.lower[0]) & (a <= fc.upper[0])
+    assert np.array_equal(bt.coverage_rate[0], inside.astype(float))
+    assert np.all(bt.model.rmse == bt0.model.rmse)  # point forecasts unchanged
