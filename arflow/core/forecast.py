@@ -18,7 +18,7 @@ derivatives of the chain forecast with respect to the intercept and the AR
 coefficients, by forward recursion) and ``V`` the OLS covariance of
 ``theta_hat``: the delta-method estimator of the prediction-error variance
 with estimated parameters of Fuller & Hasza (1981, JASA 76, 155-161; Fuller
-1996, Introduction to Statistical Time Series, 2nd ed., section 8.5). The
+1996, Introduction to Statistical Time Series, 2nd ed., section 8.5 -- section number from memory). The
 ``1/n`` term is the same order as Yamamoto's (1976) asymptotic correction.
 With ``df_resid`` given the quantiles are Student t with the residual degrees
 of freedom instead of Gaussian. For differenced models the level derivatives
