@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from scipy import stats
 from statsmodels.tsa.ar_model import AutoReg
 from statsmodels.tsa.stattools import adfuller
 
@@ -48,6 +49,27 @@ def test_stationary_forecasts_converge_to_mean_reverting_level():
     assert abs(fc.mean[0, -1] - f.mean_level[0]) < 1e-6 * abs(f.mean_level[0])
     # and the interval width converges to that of the unconditional variance
     assert np.all(np.diff(fc.sd[0]) >= -1e-12)
+    # common practice (Box & Jenkins): the h-step error variance sigma^2 sum_{j<h} psi_j^2 tends to
+    # the unconditional variance gamma_0 of the AR(2) process; for AR(2) (Box, Jenkins & Reinsel,
+    # chapter 3, from memory): gamma_0 = (1 - phi2) sigma^2 / ((1 + phi2) ((1 - phi2)^2 - phi1^2))
+    p1, p2 = f.coef[0, 0], f.coef[0, 1]
+    gamma0 = (1 - p2) * f.sigma[0] ** 2 / ((1 + p2) * ((1 - p2) ** 2 - p1**2))
+    np.testing.assert_allclose(fc.sd[0, -1] ** 2, gamma0, rtol=1e-10)
+    z95 = stats.norm.ppf(0.975)  # scipy reference for the standard normal quantile
+    np.testing.assert_allclose(fc.upper[0, 0, -1] - fc.mean[0, -1], z95 * np.sqrt(gamma0), rtol=1e-9)
+
+
+@pytest.mark.parametrize("phi", [0.9, 0.5, -0.6])
+def test_ar1_interval_variance_converges_to_the_unconditional_variance(phi):
+    # common practice (Box & Jenkins): AR(1) h-step error variance sigma^2 (1 - phi^2h) / (1 - phi^2),
+    # tending to the unconditional variance sigma^2 / (1 - phi^2)
+    sigma, H = 1.7, 300
+    fc = forecast_ar(np.array([[3.0]]), np.array([0.4]), np.array([[phi]]), np.array([sigma]), H, (0.95,))
+    h = np.arange(1, H + 1)
+    np.testing.assert_allclose(fc.sd[0] ** 2, sigma**2 * (1 - phi ** (2 * h)) / (1 - phi**2), rtol=1e-12)
+    np.testing.assert_allclose(fc.sd[0, -1] ** 2, sigma**2 / (1 - phi**2), rtol=1e-12)
+    # the point forecast tends to the mean b0 / (1 - phi)
+    np.testing.assert_allclose(fc.mean[0, -1], 0.4 / (1 - phi), rtol=1e-12)
 
 
 def test_psi_weights_of_ar1_are_powers():

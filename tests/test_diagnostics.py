@@ -13,14 +13,14 @@ import numpy as np
 import pytest
 from scipy import stats
 
-sm = pytest.importorskip("statsmodels.api")
-from statsmodels.stats.diagnostic import acorr_breusch_godfrey, acorr_ljungbox, het_arch  # noqa: E402
-from statsmodels.stats.multitest import multipletests  # noqa: E402
-from statsmodels.tsa.stattools import acf as sm_acf  # noqa: E402
+import statsmodels.api as sm
+from statsmodels.stats.diagnostic import acorr_breusch_godfrey, acorr_ljungbox, het_arch
+from statsmodels.stats.multitest import multipletests
+from statsmodels.tsa.stattools import acf as sm_acf
 
-from arflow.core import ols  # noqa: E402
-from arflow.sample.simulate import right_align  # noqa: E402
-from arflow.core.diagnostics import (  # noqa: E402
+from arflow.core import ols
+from arflow.sample.simulate import right_align
+from arflow.core.diagnostics import (
     AcfResult,
     arch_lm,
     benjamini_hochberg,
@@ -302,3 +302,36 @@ def test_breusch_godfrey_size_on_ar1_residuals():
     res = ols.fit(X, y, np.ones_like(y))
     rate = np.mean(breusch_godfrey(res.resid, X, None, 4).pvalue < 0.05)
     assert 0.035 <= rate <= 0.065, rate
+
+
+# ----------------------------------------------------------------------------- the pipeline's residual test
+
+
+@pytest.mark.parametrize("lags", [6, 12])
+def test_pipeline_ljung_box_df_is_lags_minus_p_for_contiguous_ar(lags):
+    # Contiguous AR(p) models (lags 1..p, no seasonal lag): the pipeline refers Ljung-Box Q at
+    # `residual_lags` K to chi-square with K - p degrees of freedom (Ljung & Box 1978; statsmodels
+    # acorr_ljungbox(resid, lags=[K], model_df=p)), and the gates table carries that p-value.
+    from statsmodels.tsa.ar_model import AutoReg
+
+    from arflow.core.pipeline import run_core
+    from arflow.sample.simulate import simulate_ar, to_panel
+    from arflow.settings import BacktestSettings, GateSettings, ModelSettings, Settings
+
+    Y = simulate_ar({1: 0.5, 2: 0.2}, 4, 120, 404)
+    for p in (1, 2, 3):
+        s = Settings(
+            frequency="step",
+            model=ModelSettings(order=p, seasonal_lag="off", unit_root="ignore"),
+            gates=GateSettings(residual_lags=lags),
+            backtest=BacktestSettings(enabled=False),
+        )
+        core = run_core(to_panel(Y), s)
+        assert core.fit.lag_mask.sum(axis=1).tolist() == [p] * 4
+        assert core.residual_test.df.tolist() == [float(lags - p)] * 4
+        row = core.outcome.gates["residual_autocorrelation"]
+        for g in range(4):
+            resid = AutoReg(Y[g], p, trend="c").fit().resid
+            ref = acorr_ljungbox(resid, lags=[lags], model_df=p)  # statsmodels reference
+            np.testing.assert_allclose(row.statistic[g], ref["lb_stat"].iloc[0], rtol=1e-9)
+            np.testing.assert_allclose(row.pvalue[g], ref["lb_pvalue"].iloc[0], rtol=1e-9)
