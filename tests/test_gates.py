@@ -95,6 +95,7 @@ def test_stale_periods_boundary(limit):
     dq = out.gates["data_quality"]
     assert dq.statistic.tolist() == [0.0, 1.0, 0.0]
     assert dq.passed.tolist() == [True, False, True]
+    assert dq.threshold.tolist() == [0.0, 0.0, 0.0] and np.isnan(dq.pvalue).all()
 
 
 def test_stale_is_not_reported_for_a_series_without_data():
@@ -230,9 +231,12 @@ def test_naive_statistic_equal_to_threshold_passes():
 
 
 def test_naive_gate_warn_records_but_never_quarantines():
-    x = inputs(2, naive_statistic=[3.0, np.nan], naive_threshold=1.05)
+    x = inputs(2, naive_statistic=[3.0, 0.9], naive_threshold=1.05)
     out = decide(x, GateSettings(), "difference", naive_mode="warn")
     assert out.published.tolist() == [True, True]
     row = out.gates["beats_naive"]
-    assert row.passed.tolist() == [False, True] and row.applies.tolist() == [True, False]
+    assert row.passed.tolist() == [False, True] and row.applies.tolist() == [True, True]
+    assert row.statistic.tolist() == [3.0, 0.9]
     assert "beats_naive" not in decide(x, GateSettings(), "difference", naive_mode="off").gates
+    # the default mode is "off"
+    assert "beats_naive" not in decide(x, GateSettings(), "difference").gates
