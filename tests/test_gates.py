@@ -240,3 +240,60 @@ def test_naive_gate_warn_records_but_never_quarantines():
     assert "beats_naive" not in decide(x, GateSettings(), "difference", naive_mode="off").gates
     # the default mode is "off"
     assert "beats_naive" not in decide(x, GateSettings(), "difference").gates
+
+
+# ----------------------------------------------------------------------------- what the gates table publishes
+
+
+def test_published_gate_rows_carry_their_inputs():
+    # every gate row reports the statistic, p-value and threshold it was judged on (float64 columns)
+    x = inputs(
+        2,
+        adf_statistic=[-4.0, -1.5], adf_pvalue=[0.002, 0.5], max_root_modulus=[0.3, 0.7],
+        residual_statistic=[5.0, 6.0], residual_pvalue=[0.7, 0.4],
+        arch_statistic=[1.0, 2.0], arch_pvalue=[0.8, 0.6],
+        forecast_min=[95.0, 96.0], forecast_max=[105.0, 104.0],
+        naive_statistic=[0.8, 0.9], naive_threshold=1.05,
+    )
+    g = GateSettings(arch_test=True, alpha=0.05, lower_bound=0.0, upper_bound=500.0, min_observations=30)
+    out = decide(x, g, "quarantine", naive_mode="enforce")
+    expected = {
+        "data_quality": ([0.0, 0.0], None, 0.0),
+        "min_observations": ([100.0, 100.0], None, 30.0),
+        "unit_root": ([-4.0, -1.5], [0.002, 0.5], None),
+        "stationarity": ([0.3, 0.7], None, 1.0),
+        "residual_autocorrelation": ([5.0, 6.0], [0.7, 0.4], 0.05),
+        "residual_arch": ([1.0, 2.0], [0.8, 0.6], 0.05),
+        "forecast_lower_bound": ([95.0, 96.0], None, 0.0),
+        "forecast_upper_bound": ([105.0, 104.0], None, 500.0),
+        "beats_naive": ([0.8, 0.9], None, 1.05),
+    }
+    assert set(out.gates) == set(expected)
+    for name, (stat, pval, thr) in expected.items():
+        row = out.gates[name]
+        for a in (row.statistic, row.pvalue, row.threshold):
+            assert a.dtype == np.float64, name
+        assert row.passed.dtype == bool and row.applies.dtype == bool
+        assert row.statistic.tolist() == stat, name
+        assert (np.isnan(row.pvalue).all() if pval is None else row.pvalue.tolist() == pval), name
+        assert (np.isnan(row.threshold).all() if thr is None else np.all(row.threshold == thr)), name
+        assert row.passed.all() and row.applies.all(), name
+    assert out.reasons.dtype == bool and out.published.all()
+    assert out.reason_lists() == [[], []]
+
+
+def test_no_fit_no_model_gates():
+    # a series without a fit gets no ARCH, bound or backtest verdict (the gates table has no row)
+    x = inputs(2, fitted=[False, True], arch_statistic=[30.0, 1.0], arch_pvalue=[0.0, 0.9],
+               forecast_min=[-5.0, 1.0], forecast_max=[900.0, 2.0], naive_statistic=[3.0, 0.8], naive_threshold=1.05)
+    g = GateSettings(arch_test=True, lower_bound=0.0, upper_bound=500.0)
+    for mode in ("warn", "enforce"):
+        out = decide(x, g, "difference", naive_mode=mode)
+        for name in ("residual_arch", "forecast_lower_bound", "forecast_upper_bound", "beats_naive"):
+            assert out.gates[name].applies.tolist() == [False, True], (mode, name)
+        assert reasons(out, 0) == ["fit_failed"] and reasons(out, 1) == []
+
+
+def test_constant_series_counts_one_data_quality_problem():
+    out = decide(inputs(2, flags=[CONSTANT, CONSTANT | INTERNAL_GAPS], fitted=[False, False]), GateSettings(), "difference")
+    assert out.gates["data_quality"].statistic.tolist() == [1.0, 2.0]
