@@ -108,3 +108,23 @@ def test_adf_read_off_the_level_fit_matches_adfuller(name, p):
     assert a.nobs[0] == ref[3]
     for key, col in (("1%", a.crit_1), ("5%", a.crit_5), ("10%", a.crit_10)):
         assert abs(col[0] - ref[4][key]) < 1e-8
+
+
+def test_batch_of_level_and_differenced_models_equals_each_alone():
+    # a batch mixing level and differenced models gives every series the numbers it gets alone
+    # (the difference models' forecasts are cumulated per series, never across series)
+    rng = np.random.default_rng(8)
+    Y = np.vstack([np.cumsum(rng.normal(size=80)) + 10, rng.normal(size=80), np.cumsum(rng.normal(size=80)) - 5])
+    intercept = np.array([0.1, 0.3, -0.2])
+    phi = np.array([[0.4, 0.1], [0.5, 0.0], [-0.3, 0.2]])
+    sigma = np.array([1.0, 2.0, 0.5])
+    diff = np.array([True, False, True])
+    batch = forecast_ar(Y, intercept, phi, sigma, 6, (0.8, 0.95), diff)
+    for g in range(3):
+        one = forecast_ar(Y[g : g + 1], intercept[g : g + 1], phi[g : g + 1], sigma[g : g + 1], 6, (0.8, 0.95), diff[g : g + 1])
+        np.testing.assert_allclose(batch.mean[g], one.mean[0], rtol=1e-13)
+        np.testing.assert_allclose(batch.sd[g], one.sd[0], rtol=1e-13)
+        np.testing.assert_allclose(batch.lower[:, g], one.lower[:, 0], rtol=1e-13)
+    # the differenced series' first step: last level + the difference model's one-step forecast
+    d = np.diff(Y[0])
+    np.testing.assert_allclose(batch.mean[0, 0], Y[0, -1] + 0.1 + 0.4 * d[-1] + 0.1 * d[-2], rtol=1e-13)

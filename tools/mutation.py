@@ -76,6 +76,9 @@ def work_folder(target: str) -> Path:
         f"only_mutate = {_toml_list(modules)}\n"
         'also_copy = ["arflow/sql/", "arflow/sample/"]\n'
         'pytest_add_cli_args = ["-m", "not spark and not slow", "-p", "no:cacheprovider"]\n'
+        # a survivor runs every test that reaches it; on a busy shared machine the default wall-clock
+        # limit (15x the tests' measured time) reported equivalent mutants as timeouts
+        "timeout_multiplier = 60.0\n"
         f"pytest_add_cli_args_test_selection = {_toml_list(tests)}\n"
     )
     config = work / "pyproject.toml"
