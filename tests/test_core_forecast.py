@@ -93,6 +93,14 @@ def test_differenced_model_forecasts_levels():
     assert np.all(np.diff(fc.sd[0]) > 0)
     # h=1 level error variance equals the difference model's sigma^2
     assert abs(fc.sd[0, 0] - sig[0]) < 1e-12
+    # common practice: the level forecast error after h steps sums the differences' errors, so its
+    # psi-weights are the running sums of the difference model's psi-weights (from statsmodels' fit)
+    p1, p2 = ref.params[1], ref.params[2]
+    psi = [1.0, p1]
+    for _ in range(6):
+        psi.append(p1 * psi[-1] + p2 * psi[-2])
+    level_psi = np.cumsum(psi)
+    np.testing.assert_allclose(fc.sd[0], sig[0] * np.sqrt(np.cumsum(level_psi**2)), rtol=1e-10)
 
 
 @pytest.mark.parametrize("name", ["sunspots", "inflation", "nile"])
