@@ -79,6 +79,9 @@ def work_folder(target: str) -> Path:
         # a survivor runs every test that reaches it; on a busy shared machine the default wall-clock
         # limit (15x the tests' measured time) reported equivalent mutants as timeouts
         "timeout_multiplier = 60.0\n"
+        # workers forked from a process whose tests already ran polars/DuckDB (thread pools) can
+        # hang; a fork server that has only imported the tests is safe
+        'process_isolation = "forkserver"\n'
         f"pytest_add_cli_args_test_selection = {_toml_list(tests)}\n"
     )
     config = work / "pyproject.toml"
@@ -94,7 +97,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--workers", type=int, default=2, help="mutants tested at once (default 2)")
     ap.add_argument("--survivors", action="store_true", help="list the survivors of the last run")
     ap.add_argument("--show", metavar="MUTANT", help="print the diff of one mutant")
-    args = ap.parse_args(argv)
+    args = ap.parse_intermixed_args(argv)
     try:
         import mutmut  # noqa: F401
     except ImportError:
