@@ -27,6 +27,7 @@ import duckdb
 import polars as pl
 
 from ..errors import PublishError
+from ..runtime import hold_signals, release_signals
 from .duckdb_source import engine_config, first_line, is_lock_error, lock_message
 from .identifiers import quote
 
@@ -239,9 +240,12 @@ class DuckDBStore:
             _fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
             con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
+            hold_signals()  # from here a stop signal waits: a committed run exits with its real status
             con.execute("COMMIT")
+            _fault_point("commit")
             return attempt
         except BaseException as exc:
+            release_signals()
             try:
                 con.execute("ROLLBACK")
             except duckdb.Error:

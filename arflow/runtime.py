@@ -1,0 +1,159 @@
+"""Process life of a run: stop signals, and worker processes that die with their parent.
+
+Signals. The command line installs :func:`install_signal_handlers`: SIGTERM
+and SIGINT (Ctrl-C) raise ``KeyboardInterrupt`` in the main thread and are
+remembered (:func:`stop_signal`), so an interruption that surfaces as some
+other error (DuckDB turns it into ``RuntimeError('Query interrupted')``) is
+still reported as an interruption (exit 130). From just before the publishing
+``COMMIT`` (:func:`hold_signals`) a stop signal is only recorded: a run whose
+results committed finishes and exits with its real status.
+
+Workers. :func:`bind_to_parent` runs first in every worker process: the
+worker ignores Ctrl-C (the parent stops it), points its standard streams at
+the null device (a scheduler reading the job's output to its end is not held
+open by workers), asks Linux to kill it when the parent dies
+(``prctl(PR_SET_PDEATHSIG)``) and, on every platform, watches its parent id
+from a daemon thread and exits when it changes. :func:`stop_pool` ends a
+pool's workers at once when the run is interrupted or fails.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import sys
+import threading
+from collections.abc import Callable
+from typing import Any
+
+_STOP_SIGNALS = ("SIGTERM", "SIGINT")
+
+
+class _SignalState:
+    installed = False
+    signum: int | None = None
+    holding = False
+
+
+_state = _SignalState()
+
+
+def _on_stop(signum: int, frame: Any) -> None:
+    _state.signum = signum
+    if _state.holding:
+        return  # the run committed (or is committing): finish and exit with its status
+    raise KeyboardInterrupt
+
+
+def install_signal_handlers() -> Callable[[], None]:
+    """Route SIGTERM and SIGINT through the run's handler; returns a function restoring the previous ones.
+
+    Does nothing (and restores nothing) outside the main thread.
+    """
+    previous: dict[int, Any] = {}
+    _state.signum, _state.holding = None, False
+    for name in _STOP_SIGNALS:
+        signum = getattr(signal, name, None)
+        if signum is None:
+            continue
+        try:
+            previous[signum] = signal.signal(signum, _on_stop)
+        except ValueError:  # not the main thread
+            break
+    _state.installed = bool(previous)
+
+    def restore() -> None:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+        _state.installed, _state.holding, _state.signum = False, False, None
+
+    return restore
+
+
+def stop_signal() -> int | None:
+    """The stop signal received since the handlers were installed (None if none)."""
+    return _state.signum
+
+
+def signals_held() -> bool:
+    """True from :func:`hold_signals` on (the publish is committing or committed)."""
+    return _state.holding
+
+
+def hold_signals() -> None:
+    """From now on a stop signal is recorded, not raised (call just before ``COMMIT``)."""
+    if _state.installed:
+        _state.holding = True
+
+
+def release_signals() -> None:
+    """Undo :func:`hold_signals` after a failed ``COMMIT``; a signal that arrived meanwhile stays recorded."""
+    _state.holding = False
+
+
+# -- worker processes -------------------------------------------------------
+
+_PR_SET_PDEATHSIG = 1
+_WATCH_SECONDS = 0.25
+
+
+def _set_parent_death_signal() -> bool:
+    """Linux: the kernel sends SIGKILL to this process when its parent dies."""
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        import ctypes
+        import ctypes.util
+
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
+        return libc.prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0) == 0
+    except (OSError, AttributeError):
+        return False
+
+
+def _watch_parent(parent: int) -> None:
+    event = threading.Event()
+    while not event.wait(_WATCH_SECONDS):
+        if os.getppid() != parent:
+            os._exit(70)
+
+
+def bind_to_parent(parent: int) -> None:
+    """Set up a worker process so that it never outlives ``parent`` (its pid) nor holds its output open."""
+    try:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
+    except ValueError:
+        pass
+    try:
+        null = os.open(os.devnull, os.O_RDWR)
+        for fd in (0, 1, 2):
+            os.dup2(null, fd)
+        os.close(null)
+    except OSError:
+        pass
+    _set_parent_death_signal()
+    if os.getppid() != parent:  # the parent died before the death signal was armed
+        os._exit(70)
+    threading.Thread(target=_watch_parent, args=(parent,), name="arflow-parent-watch", daemon=True).start()
+
+
+def stop_pool(pool: Any, timeout: float = 5.0) -> None:
+    """End a ``ProcessPoolExecutor`` now: cancel queued chunks, terminate and reap its workers."""
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    try:
+        pool.shutdown(wait=False, cancel_futures=True)
+    except Exception:  # noqa: BLE001 - best effort on the way out
+        pass
+    for proc in processes:
+        try:
+            proc.terminate()
+        except Exception:  # noqa: BLE001
+            pass
+    for proc in processes:
+        try:
+            proc.join(timeout)
+            if proc.is_alive():
+                proc.kill()
+                proc.join(timeout)
+        except Exception:  # noqa: BLE001
+            pass
