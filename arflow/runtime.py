@@ -157,3 +157,26 @@ def stop_pool(pool: Any, timeout: float = 5.0) -> None:
                 proc.join(timeout)
         except Exception:  # noqa: BLE001
             pass
+
+
+# -- test hooks ---------------------------------------------------------------
+
+def fault_point(name: str) -> None:
+    """Test-only hook at a named point of a run (same switches as the publisher's hooks).
+
+    ``ARFLOW_TEST_FAIL_AFTER=name`` raises; ``ARFLOW_TEST_PAUSE_AFTER=name``
+    prints a marker line on stderr and waits (at most 60 s) until the file
+    named by ``ARFLOW_TEST_RESUME_FILE`` exists.
+    """
+    if os.environ.get("ARFLOW_TEST_FAIL_AFTER") == name:
+        raise RuntimeError(f"test fault injected after {name}")
+    if os.environ.get("ARFLOW_TEST_PAUSE_AFTER") == name:
+        import time
+        from pathlib import Path
+
+        sys.stderr.write(f"arflow-test: paused after {name}\n")
+        sys.stderr.flush()
+        resume = os.environ.get("ARFLOW_TEST_RESUME_FILE")
+        deadline = time.monotonic() + 60.0
+        while time.monotonic() < deadline and not (resume and Path(resume).exists()):
+            time.sleep(0.02)

@@ -28,6 +28,7 @@ import numpy as np
 import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
+from ..runtime import fault_point
 from .identifiers import quote, quote_qualified
 
 _INTEGER_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "HUGEINT", "UHUGEINT"}
@@ -143,6 +144,7 @@ class DuckDBSource:
                 self._con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet([{listed}])")
             except duckdb.Error as exc:
                 raise SourceError(f"cannot read parquet {spec.parquet} ({first_line(exc)}); check the files") from None
+        fault_point("source-open")
         return self
 
     def _lock_down(self, files: tuple[str, ...]) -> None:
