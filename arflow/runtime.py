@@ -4,7 +4,11 @@ Signals. The command line installs :func:`install_signal_handlers`: SIGTERM
 and SIGINT (Ctrl-C) raise ``KeyboardInterrupt`` in the main thread and are
 remembered (:func:`stop_signal`), so an interruption that surfaces as some
 other error (DuckDB turns it into ``RuntimeError('Query interrupted')``) is
-still reported as an interruption (exit 130). From just before the publishing
+still reported as an interruption (exit 130). A statement that DuckDB runs
+without returning to Python (a long scalar subquery, say) would only see the
+signal when it ends, so a watcher thread woken by the signal itself
+(``signal.set_wakeup_fd``) interrupts the connections a run registered with
+:func:`watch_connection`. From just before the publishing
 ``COMMIT`` (:func:`hold_signals`) a stop signal is only recorded: a run whose
 results committed finishes and exits with its real status.
 
@@ -27,6 +31,7 @@ from collections.abc import Callable
 from typing import Any
 
 _STOP_SIGNALS = ("SIGTERM", "SIGINT")
+_STOP_NUMBERS = frozenset(int(getattr(signal, n)) for n in _STOP_SIGNALS if hasattr(signal, n))
 
 
 class _SignalState:
@@ -36,6 +41,71 @@ class _SignalState:
 
 
 _state = _SignalState()
+_watched: dict[int, Any] = {}
+_watched_lock = threading.Lock()
+
+
+def watch_connection(con: Any) -> None:
+    """Interrupt ``con`` (anything with ``interrupt()``, e.g. a DuckDB connection) when a stop signal arrives."""
+    with _watched_lock:
+        _watched[id(con)] = con
+
+
+def unwatch_connection(con: Any) -> None:
+    """Stop watching ``con`` (call before closing it)."""
+    with _watched_lock:
+        _watched.pop(id(con), None)
+
+
+def _interrupt_watched() -> None:
+    if _state.holding:
+        return
+    with _watched_lock:
+        connections = list(_watched.values())
+    for con in connections:
+        try:
+            con.interrupt()
+        except Exception:  # noqa: BLE001 - a closed connection has nothing to interrupt
+            pass
+
+
+def _start_wakeup_watcher() -> Callable[[], None]:
+    """A daemon thread that interrupts watched connections as soon as a signal arrives; returns its stopper."""
+    import socket
+
+    try:
+        reader, writer = socket.socketpair()
+        writer.setblocking(False)
+        previous_fd = signal.set_wakeup_fd(writer.fileno(), warn_on_full_buffer=False)
+    except (OSError, ValueError):
+        return lambda: None
+
+    def watch() -> None:
+        while True:
+            try:
+                data = reader.recv(64)
+            except OSError:
+                return
+            if not data:
+                return
+            if any(b in _STOP_NUMBERS for b in data):
+                _interrupt_watched()
+
+    threading.Thread(target=watch, name="arflow-signal-watch", daemon=True).start()
+
+    def stop() -> None:
+        try:
+            signal.set_wakeup_fd(previous_fd)
+        except (OSError, ValueError):
+            pass
+        for sock in (writer, reader):
+            try:
+                sock.shutdown(socket.SHUT_RDWR)
+            except OSError:
+                pass
+            sock.close()
+
+    return stop
 
 
 def _on_stop(signum: int, frame: Any) -> None:
@@ -61,8 +131,10 @@ def install_signal_handlers() -> Callable[[], None]:
         except ValueError:  # not the main thread
             break
     _state.installed = bool(previous)
+    stop_watcher = _start_wakeup_watcher() if previous else (lambda: None)
 
     def restore() -> None:
+        stop_watcher()
         for signum, handler in previous.items():
             signal.signal(signum, handler)
         _state.installed, _state.holding, _state.signum = False, False, None

@@ -28,7 +28,7 @@ import numpy as np
 import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
-from ..runtime import fault_point
+from ..runtime import fault_point, unwatch_connection, watch_connection
 from .identifiers import quote, quote_qualified
 
 _INTEGER_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "HUGEINT", "UHUGEINT"}
@@ -144,6 +144,7 @@ class DuckDBSource:
                 self._con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet([{listed}])")
             except duckdb.Error as exc:
                 raise SourceError(f"cannot read parquet {spec.parquet} ({first_line(exc)}); check the files") from None
+        watch_connection(self.con)  # a stop signal interrupts the statement running on it
         fault_point("source-open")
         return self
 
@@ -159,6 +160,7 @@ class DuckDBSource:
 
     def close(self) -> None:
         if self._con is not None:
+            unwatch_connection(self._con)
             self._con.close()
             self._con = None
 
