@@ -178,11 +178,13 @@ def test_sweep_keeps_live_and_unknown_owners_and_removes_dead_ones(tmp_path: Pat
         other = tmp_path / "someone-elses-folder"
         other.mkdir()
         (other / "owner").write_text(f"{gone.pid} 1\n")
+        foreign = _folder(tmp_path, "foreign", f"{gone.pid} 123 pid:[1]\n")  # another container's run
         reused = None
         if sys.platform.startswith("linux"):  # same pid, another process (start time differs): the owner is gone
             reused = _folder(tmp_path, "reused", f"{sleeper.pid} 1\n")
         removed = sweep_stale(tmp_path)
         assert live.is_dir() and mine.is_dir() and unknown.is_dir() and garbled.is_dir() and other.is_dir()
+        assert foreign.is_dir() or stage_module._pid_namespace() == "pid:[1]"
         assert not dead.exists()
         assert set(removed) == {dead} | ({reused} if reused else set())
     finally:

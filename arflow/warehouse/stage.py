@@ -8,8 +8,8 @@ files into the warehouse inside the single publishing transaction
 removed afterwards whatever happens (normal end, error, SIGTERM, Ctrl-C; and at
 interpreter exit as a last resort); nothing there is ever visible to readers.
 
-A kill -9 cannot clean up, so every folder records its owner (process id and
-the process's start time) in a file ``owner``; a run that starts removes the
+A kill -9 cannot clean up, so every folder records its owner (process id, the
+process's start time and its pid namespace) in a file ``owner``; a run that starts removes the
 folders of owners that are gone (:func:`sweep_stale`). A folder whose owner is
 alive, whose owner file is missing or unreadable, is never touched.
 """
@@ -65,18 +65,28 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
+def _pid_namespace() -> str:
+    """This process's pid namespace (Linux; '-' elsewhere): pids of another namespace mean nothing here."""
+    try:
+        return os.readlink("/proc/self/ns/pid").replace(" ", "")
+    except (OSError, AttributeError):
+        return "-"
+
+
 def _owner_record() -> str:
     pid = os.getpid()
-    return f"{pid} {_start_time(pid) or '-'}\n"
+    return f"{pid} {_start_time(pid) or '-'} {_pid_namespace()}\n"
 
 
 def _owner_gone(record: str) -> bool:
     """True only when the recorded owner process certainly no longer exists."""
     parts = record.split()
-    if len(parts) != 2 or not parts[0].isdigit():
+    if len(parts) not in (2, 3) or not parts[0].isdigit():
         return False
     pid, started = int(parts[0]), parts[1]
     if pid == os.getpid():
+        return False
+    if len(parts) == 3 and parts[2] != _pid_namespace():  # written from another container: cannot tell
         return False
     if not _pid_alive(pid):
         return True
