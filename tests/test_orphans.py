@@ -95,6 +95,11 @@ def test_kill_9_of_the_parent_leaves_no_process_and_no_stage_after_the_next_run(
     children = psutil.Process(proc.pid).children(recursive=True)
     assert len(children) >= 2  # two workers (and multiprocessing's resource tracker)
     assert len(list(tmp.glob(STAGE_PREFIX + "*"))) == 1
+    if sys.platform.startswith("linux"):  # workers write nothing to the job's output streams
+        workers = [c for c in children if "spawn_main" in " ".join(c.cmdline())]
+        assert len(workers) == 2
+        for worker in workers:
+            assert [os.readlink(f"/proc/{worker.pid}/fd/{fd}") for fd in (1, 2)] == [os.devnull] * 2
 
     proc.send_signal(signal.SIGKILL)
     proc.wait(timeout=10)
