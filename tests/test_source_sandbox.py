@@ -70,7 +70,7 @@ def test_query_reading_outside_the_source_is_refused(job: Path, capsys, make) ->
     code = main(["run", str(_with_query(job, make(job.parent)))])
     err = capsys.readouterr().err
     assert code == 3, err
-    assert err.startswith("arflow: error: the source query tried to reach something outside the job's source")
+    assert err.startswith("arflow: error: the source tried to reach something outside the job's source")
     assert err.count("\n") == 1 and SECRET not in err
     assert warehouse_state(job.parent / "warehouse.duckdb") == before
 
@@ -178,3 +178,16 @@ def test_source_connection_still_spills_to_disk(job: Path, monkeypatch) -> None:
     spec = load_job(job)
     with DuckDBSource(spec.source, "month") as source:  # ... but spills from the locked source connection
         assert source.con.execute(query).fetchone()[0] == 2_000_000
+
+
+def test_view_in_the_source_database_that_reads_a_file_is_refused(tmp_path: Path, capsys) -> None:
+    mixed_panel().write_parquet(tmp_path / "outside.parquet")
+    con = duckdb.connect(str(tmp_path / "warehouse.duckdb"))
+    con.execute(f"CREATE VIEW readings AS SELECT * FROM read_parquet('{tmp_path / 'outside.parquet'}')")
+    con.close()
+    path = tmp_path / "job.toml"
+    path.write_text(job_toml(default_job()), encoding="utf-8")
+    code = main(["run", str(path)])
+    err = capsys.readouterr().err
+    assert code == 3 and "outside the job's source" in err and err.count("\n") == 1, err
+    assert warehouse_state(tmp_path / "warehouse.duckdb") == {}

@@ -77,9 +77,9 @@ def lock_down(con: duckdb.DuckDBPyConnection, allowed_files: tuple[str, ...] = (
 
 
 def access_message(exc: BaseException) -> str:
-    """The one message for a source query that reached outside the job's source."""
+    """The one message for a source (its query, or a view in it) that reached outside the job's source."""
     return (
-        f"the source query tried to reach something outside the job's source ({first_line(exc)}); "
+        f"the source tried to reach something outside the job's source ({first_line(exc)}); "
         "a source may read only its source.database or the source.parquet files, with no other files, "
         "folder listings, network or extensions"
     )
