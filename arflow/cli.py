@@ -278,7 +278,9 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
         message = f"internal error ({type(exc).__name__}: {_one_line(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
         return _fail(reporter, EXIT_INTERNAL, type(exc).__name__, message)
     finally:
-        restore()
+        # as the program itself (no argv given) the status is decided now: a late stop signal must not
+        # turn it into death by signal (-15) while the interpreter shuts down, so it is ignored
+        restore(ignore=argv is None)
 
 
 def _signal_name(signum: int | None) -> str:

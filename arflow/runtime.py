@@ -115,7 +115,7 @@ def _on_stop(signum: int, frame: Any) -> None:
     raise KeyboardInterrupt
 
 
-def install_signal_handlers() -> Callable[[], None]:
+def install_signal_handlers() -> Callable[..., None]:
     """Route SIGTERM and SIGINT through the run's handler; returns a function restoring the previous ones.
 
     Does nothing (and restores nothing) outside the main thread.
@@ -133,10 +133,11 @@ def install_signal_handlers() -> Callable[[], None]:
     _state.installed = bool(previous)
     stop_watcher = _start_wakeup_watcher() if previous else (lambda: None)
 
-    def restore() -> None:
-        stop_watcher()
+    def restore(ignore: bool = False) -> None:
+        """Put the previous handlers back (``ignore=True``: ignore stop signals from now on instead)."""
         for signum, handler in previous.items():
-            signal.signal(signum, handler)
+            signal.signal(signum, signal.SIG_IGN if ignore else handler)
+        stop_watcher()
         _state.installed, _state.holding, _state.signum = False, False, None
 
     return restore
