@@ -89,6 +89,7 @@ def _read_to_end(stream, timeout: float) -> bool:
     return done.wait(timeout)
 
 
+@pytest.mark.slow
 def test_kill_9_of_the_parent_leaves_no_process_and_no_stage_after_the_next_run(big_job: Path, tmp_path: Path) -> None:
     tmp = tmp_path / "tmp"
     proc = _start_until_chunks(big_job, tmp)
@@ -120,6 +121,7 @@ def test_kill_9_of_the_parent_leaves_no_process_and_no_stage_after_the_next_run(
     assert list(tmp.glob(STAGE_PREFIX + "*")) == []
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("how", ["SIGTERM", "Ctrl-C"])
 def test_stopped_run_exits_130_and_leaves_nothing(big_job: Path, tmp_path: Path, how: str) -> None:
     tmp = tmp_path / "tmp"
