@@ -73,3 +73,15 @@ def test_usage_error_is_escaped(capsys) -> None:
     code = main(["run", "job.toml", "--no-such-\x1b[2J-option"])
     err = capsys.readouterr().err
     assert code == 2 and "\x1b" not in err and err.count("\n") == 1
+
+
+def test_control_characters_in_source_column_names_are_escaped(tmp_path: Path, capsys) -> None:
+    """The 'columns available' list comes from the source itself, not the job file."""
+    frame = mixed_panel().rename({"site": "si\x1b[2Jte"})
+    write_table(tmp_path / "warehouse.duckdb", frame)
+    path = tmp_path / "job.toml"
+    path.write_text(job_toml(default_job()), encoding="utf-8")
+    code = main(["run", str(path)])
+    err = capsys.readouterr().err
+    assert code == 3 and err.count("\n") == 1
+    assert "\x1b" not in err and "si\\x1b[2Jte" in err
