@@ -164,14 +164,14 @@ def candidate_limits(
     auto = order == "auto"
     P = int(max_order if auto else order)
     if auto:
-        p_cap = np.clip((n - 1 - MIN_RESID_DF) // 2, -1, P)
+        p_cap = np.clip(np.minimum((n - 1 - MIN_RESID_DF) // 2, n // 8), -1, P)
         unsupported = np.zeros(len(n), dtype=bool)
     else:
         unsupported = n - P < P + 1 + MIN_RESID_DF
         p_cap = np.where(unsupported, -1, P)
     s = int(seasonal_lag) if seasonal_lag else 0
     if s > P:
-        seasonal_ok = (p_cap >= 0) & (n - s >= p_cap + 2 + MIN_RESID_DF)
+        seasonal_ok = (p_cap >= 0) & (n - s >= np.maximum(p_cap + 2 + MIN_RESID_DF, 2 * s))
     elif s > 0:
         seasonal_ok = p_cap >= s
     else:
@@ -188,10 +188,11 @@ def fit_ar(
     seasonal_lag: int | None = None,
     seasonal_alpha: float = 0.05,
     fit_mask: np.ndarray | None = None,
+    min_order: int = 0,
 ) -> ARFit:
     """Fit AR models with intercept to every row of a right-aligned panel ``Y`` (G, T).
 
-    ``order="auto"`` selects p in 0..max_order (0: the constant mean, white
+    ``order="auto"`` selects p in ``min_order``..max_order (0: the constant mean, white
     noise) by ``criterion`` on a common sample; a series too short for every
     candidate selects among the orders its sample can carry (and the seasonal
     candidate only where it fits), and is marked in ``selection_cut``. An
@@ -243,9 +244,11 @@ def fit_ar(
         rss = np.concatenate([g.yty[:, None], ols.nested_rss(g, np.flatnonzero(base_cols))], axis=1)
         orders = np.arange(0, P + 1)
         ic = information_criteria(rss, g.nobs[:, None], (orders + 1)[None, :])[criterion]
-        ic = np.where(orders[None, :] <= p_cap[:, None], ic, np.inf)
+        ic = np.where((orders[None, :] <= p_cap[:, None]) & (orders[None, :] >= min_order), ic, np.inf)
         ic = np.where(np.isnan(ic), np.inf, ic)
         best_p = np.argmin(ic, axis=1)  # ties go to the smaller order
+        best_p = np.where(p_cap >= min_order, best_p, 0)
+        can_fit = can_fit & (p_cap >= min_order)
         chosen = lags[None, :] <= best_p[:, None]
     else:
         chosen = np.broadcast_to(base_cols, (G, K)).copy()

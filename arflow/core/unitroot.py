@@ -22,7 +22,7 @@ from arflow.core import ols
 from arflow.core.distributions import norm_cdf
 from arflow.core.diagnostics import _as_panel, valid_mask
 
-__all__ = ["AdfResult", "KpssResult", "adf", "kpss", "mackinnon_crit", "mackinnon_pvalue"]
+__all__ = ["AdfResult", "KpssResult", "adf", "kpss", "mackinnon_crit", "mackinnon_pvalue", "mackinnon_quantile"]
 
 # ----------------------------------------------------------------------------- tables
 
@@ -92,6 +92,22 @@ def mackinnon_pvalue(stat: np.ndarray, regression: str = "c") -> np.ndarray:
     p = norm_cdf(np.where(t <= c["tau_star"], small, large))
     p = np.where(t > c["tau_max"], 1.0, np.where(t < c["tau_min"], 0.0, p))
     return np.where(np.isnan(t), np.nan, p)
+
+
+def mackinnon_quantile(alpha: float, regression: str = "c") -> float:
+    """The Dickey-Fuller tau with MacKinnon (1994) p-value ``alpha``: the inverse of :func:`mackinnon_pvalue`.
+
+    Found by bisection on the (increasing) approximation; asymptotic like the
+    p-values (e.g. -2.86 at 5 % with a constant, Fuller 1996 / MacKinnon 2010 b_inf).
+    """
+    lo, hi = -18.0, 2.7
+    for _ in range(80):
+        mid = 0.5 * (lo + hi)
+        if float(mackinnon_pvalue(np.array(mid), regression)) < alpha:
+            lo = mid
+        else:
+            hi = mid
+    return 0.5 * (lo + hi)
 
 
 def mackinnon_crit(nobs: np.ndarray | float, regression: str = "c") -> np.ndarray:
