@@ -284,7 +284,11 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
 
     # ---- forecasts -------------------------------------------------------------------------------
     width = max(int(fit.lags.max()), 1) + 1
-    hist = np.nan_to_num(Y[:, -width:]) if Y.shape[1] else np.zeros((G, 1))
+    # left-padded to the model's width: a block whose series are all shorter than the
+    # largest candidate lag must not break the forecast's broadcasting (those series are unfitted)
+    hist = np.zeros((G, width))
+    if Y.shape[1]:
+        hist[:, width - min(width, Y.shape[1]) :] = np.nan_to_num(Y[:, -width:])
     fc = forecast_ar(
         hist,
         np.nan_to_num(fit.intercept),
@@ -307,6 +311,7 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
             coverage=fs.coverage,
             season=seasonal,
             min_train=gs.min_observations,
+            fitted=fit.fitted,
         )
     return dict(fit=fit, differenced=differenced, unit_root=unit_root, adf=adf, kpss=kp, acf=acf,
                 residual_test=rtest, arch=arch, forecasts=fc, backtest=bt)
@@ -395,6 +400,10 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         arch_pvalue=None if arch is None else arch.pvalue,
         naive_statistic=None if bt is None else bt.relative_rmse_over(settings.backtest.naive_steps),
         naive_threshold=1.0 + settings.backtest.naive_tolerance,
+        order_unsupported=fit.order_unsupported,
+        selection_cut=fit.selection_cut,
+        order_cap=autoreg.candidate_limits(panel.n, ms.order, ms.max_order, None)[0].astype(np.float64),
+        max_order=ms.max_order if ms.order == "auto" else int(ms.order),
     )
     outcome = gates.decide(inputs, gs, ms.unit_root, settings.backtest.naive_gate if bt is not None else "off")
     return CoreResult(panel, fit, parts["differenced"], parts["unit_root"], parts["adf"], parts["kpss"],
