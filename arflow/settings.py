@@ -57,8 +57,9 @@ class ModelSettings:
     observations (likelihood ratio at most the squared Dickey-Fuller critical
     value at ``unit_root_alpha``). 20 is about the 1% point of the
     Dickey-Fuller normalised-bias distribution with a constant (from memory:
-    Fuller 1996, about -19.8 at n = 100); the floor keeps short series with
-    low persistence on levels. Details and measured rates:
+    Fuller 1996, about -19.8 at n = 100); the floor 0.67 is that bound's value
+    at 60 observations (1 - 20/60), so the guard does not vanish for shorter
+    series: a 24-point series with persistence 0.4 stays on levels. Details and measured rates:
     :func:`arflow.core.pipeline.unit_root_decision` and the README.
 
     >>> ModelSettings(order=2).order
@@ -73,7 +74,7 @@ class ModelSettings:
     unit_root: str = "difference"
     unit_root_alpha: float = 0.05
     unit_root_bias: float = 20.0
-    unit_root_min_persistence: float = 0.7
+    unit_root_min_persistence: float = 0.67
 
     def min_observations_for_order(self) -> int:
         """Observations a series needs to carry a fixed ``order`` (0 for ``"auto"``).

@@ -10,7 +10,7 @@ from dataclasses import dataclass, fields
 
 import numpy as np
 
-from ..settings import Settings
+from ..settings import SEASONAL_PERIOD, Settings
 from . import autoreg, backtest, diagnostics, gates, unitroot
 from .forecast import Forecasts, forecast_ar
 from .panel import CONSTANT, NO_DATA, Panel
@@ -42,9 +42,15 @@ def _diff_right_aligned(Y: np.ndarray) -> np.ndarray:
 
 
 def residual_test_lags(settings: Settings) -> np.ndarray:
-    """The lags the residual gate tests: 1..``residual_lags``, plus the seasonal lag when it lies beyond."""
+    """The lags the residual gate tests: 1..``residual_lags``, plus the seasonal lag when it lies beyond.
+
+    The seasonal lag is the model's (``seasonal_lag``), or the frequency's own
+    (52 weekly, 12 monthly, ...) when the model does not try one, so that an
+    omitted seasonal dependence is still looked for.
+    """
     K = settings.gates.residual_lags
-    s = settings.model.seasonal_for(settings.frequency)
+    # the frequency's seasonal lag is tested even when the model does not try it
+    s = settings.model.seasonal_for(settings.frequency) or SEASONAL_PERIOD.get(settings.frequency)
     lags = list(range(1, K + 1))
     if s is not None and s > K:
         lags.append(int(s))
@@ -172,7 +178,10 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
     """Does each series carry a unit root? Three conditions, all required.
 
     1. **ADF does not reject** at ``ms.unit_root_alpha`` (Dickey & Fuller 1979;
-       Said & Dickey 1984 augmentation; MacKinnon 1994 p-values). The test is
+       Said & Dickey 1984 augmentation), judged against the finite-sample
+       critical value at the test's own rows (MacKinnon 2010 response surface,
+       :func:`arflow.core.unitroot.finite_sample_crit`; the reported p-value is
+       MacKinnon's 1994 asymptotic one). The test is
        read off the level model when its lags are contiguous (1..p, p >= 1);
        otherwise (a seasonal lag beyond p, or order 0) off an AR(p) refit
        without the seasonal lag and with p >= 1 chosen by the same criterion,
@@ -218,7 +227,8 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
     persistence = np.where(fit.fitted, np.nansum(fit.coef, axis=1), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
         threshold = np.maximum(1.0 - ms.unit_root_bias / np.maximum(fit.n_obs, 1), ms.unit_root_min_persistence)
-        candidates = fit.fitted & (adf.pvalue > alpha) & (persistence >= threshold)
+        crit = unitroot.finite_sample_crit(alpha, np.where(adf.nobs > 0, adf.nobs, np.nan), "c")
+        candidates = fit.fitted & (adf.statistic > crit) & (persistence >= threshold)
     # ---- 3. level model vs difference candidate on a common sample
     tau = unitroot.mackinnon_quantile(alpha, "c")
     lr = np.full(G, np.nan)
