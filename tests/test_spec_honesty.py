@@ -262,3 +262,29 @@ def test_pipeline_uses_the_subset_df_for_a_weekly_seasonal_model():
     np.testing.assert_allclose(r.residual_test.df, tr * tr / tr2, rtol=1e-12)
     # between the naive counts: 13 - 2 (both lags counted) and 13 - 1 (lag 52 not counted)
     assert np.all((r.residual_test.df > 11) & (r.residual_test.df < 12.5))
+
+
+def test_finite_sample_critical_values_match_statsmodels():
+    # statsmodels adfuller at T = 100 rows, constant only: -3.49750, -2.89091, -2.58243 (MacKinnon 2010
+    # response surface); our asymptotic part comes from inverting the 1994 p-value, so about 1e-3 apart
+    from statsmodels.tsa.adfvalues import mackinnoncrit
+
+    for level, ref in zip((0.01, 0.05, 0.10), mackinnoncrit(N=1, regression="c", nobs=100)):
+        assert abs(unitroot.finite_sample_crit(level, 100.0) - ref) < 2e-3
+    assert abs(unitroot.finite_sample_crit(0.05, 100.0) - (-2.89091)) < 2e-3
+
+
+@pytest.mark.parametrize("policy", ["difference", "quarantine", "ignore"])
+def test_unit_root_policies_still_work(policy):
+    rng = np.random.default_rng(9)
+    walks = 50 + np.cumsum(rng.normal(size=(200, 120)), axis=1)
+    r = run_core(to_panel(walks), Settings(frequency="month", model=ModelSettings(unit_root=policy)))
+    flagged = r.unit_root.mean()
+    assert flagged > 0.85  # the decision itself does not depend on the policy
+    held = r.outcome.reasons[:, REASONS.index("unit_root")].mean()
+    if policy == "difference":
+        assert np.array_equal(r.differenced, r.unit_root) and held == 0
+    elif policy == "quarantine":
+        assert not r.differenced.any() and held == pytest.approx(flagged)
+    else:
+        assert not r.differenced.any() and held == 0
