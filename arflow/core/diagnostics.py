@@ -355,8 +355,8 @@ def ar_autocovariance(phi: np.ndarray) -> np.ndarray:
     h = np.arange(L + 1)
     B = np.broadcast_to(np.eye(L + 1), (G, L + 1, L + 1)).copy()
     for i in range(1, L + 1):
-        col = np.abs(h - i)
-        np.add.at(B, (slice(None), h, col), -phi[:, i - 1 : i])
+        col = np.abs(h - i)  # one entry per row h: no repeated positions within a lag
+        B[:, h, col] -= phi[:, i - 1 : i]
     rhs = np.zeros((G, L + 1))
     rhs[:, 0] = 1.0
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
