@@ -127,7 +127,7 @@ def adf_from_fit(fit: autoreg.ARFit) -> unitroot.AdfResult:
       lagged-difference terms are stationary, so the Dickey-Fuller limit is
       the same (Said & Dickey 1984 for the augmentation), but the lag choice
       was pre-tested on levels. The unit-root decision
-      (:func:`unit_root_decision`) therefore uses the contiguous form.
+      (:func:`unit_root_decision`) therefore also uses the contiguous form.
     * No lags (order 0): NaN.
 
     P-values: MacKinnon (1994); critical values: MacKinnon (2010) at T = n_obs.
@@ -182,12 +182,14 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
        critical value at the test's own rows (MacKinnon 2010 response surface,
        :func:`arflow.core.unitroot.finite_sample_crit`; the reported p-value is
        MacKinnon's 1994 asymptotic one). The test is
-       read off the level model when its lags are contiguous (1..p, p >= 1);
-       otherwise (a seasonal lag beyond p, or order 0) off an AR(p) refit
-       without the seasonal lag and with p >= 1 chosen by the same criterion,
-       so that the augmentation is the ordinary, unrestricted one. (Measured:
-       when a seasonal lag selected on the levels of a random walk was kept in
-       the test regression, ADF rejected about 30% of random walks.)
+       read off the level model when its lags are contiguous (1..p, p >= 1).
+       For a model with a gap (a seasonal lag beyond p) it is computed in two
+       valid forms, the model's own restricted augmentation (which carries the
+       seasonal dynamics) and an AR(p >= 1) refit without the seasonal lag
+       (free of the seasonal pre-test: when a seasonal lag selected on the
+       levels of a random walk was kept in the regression, ADF rejected about
+       30% of random walks), and a unit root is rejected only when both
+       reject; the larger statistic is reported. Order 0: the refit.
     2. **Persistence guard**: the level model's persistence (sum of its AR
        coefficients) is at least ``max(1 - unit_root_bias / n_obs,
        unit_root_min_persistence)``. The first term is the Dickey-Fuller
@@ -211,6 +213,9 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
        ``LR`` and stays on levels; this is the seasonal-lag-aware part of the
        decision (in the spirit of Hylleberg, Engle, Granger & Yoo 1990, who
        test the zero-frequency root without ignoring the seasonal dynamics).
+       Exception: a level model with a root on or outside the unit circle
+       cannot be published, so when 1 and 2 hold the difference candidate is
+       taken whatever the comparison says.
     """
     G = Y.shape[0]
     alpha = ms.unit_root_alpha
@@ -221,8 +226,16 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
     if aux.any():
         idx = np.flatnonzero(aux)
         kw = dict(fit_kw, seasonal_lag=None)
-        sub = autoreg.fit_ar(Y[idx], min_order=1, **kw)
-        adf = _splice_adf(adf, adf_from_fit(sub), idx)
+        sub = adf_from_fit(autoreg.fit_ar(Y[idx], min_order=1, **kw))
+        # a model with a gap: both forms are valid augmentations under a unit root (the
+        # restricted one carries the seasonal dynamics, the contiguous one is free of the
+        # seasonal pre-test); a unit root is rejected only when both reject, and the less
+        # rejecting statistic is the one reported
+        own = adf.statistic[idx]
+        use = ~(own > sub.statistic)  # NaN own (order 0) -> the refit
+        keep = np.flatnonzero(use)
+        adf = _splice_adf(adf, unitroot.AdfResult(*(getattr(sub, f.name)[keep] for f in fields(unitroot.AdfResult))),
+                          idx[keep])
     # ---- 2. persistence guard
     persistence = np.where(fit.fitted, np.nansum(fit.coef, axis=1), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -253,7 +266,9 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
         ok = dfit.fitted & np.isfinite(stat)
         lr[idx] = np.where(ok, stat, np.nan)
         # a difference candidate that cannot be fitted is no evidence against the unit root
-        unit_root[idx] = ~ok | (stat <= tau * tau)
+        # a level model with a root on or outside the unit circle cannot be used: when ADF
+        # does not reject, the difference candidate is the specification that remains
+        unit_root[idx] = ~ok | (stat <= tau * tau) | ~fit.stationary[idx]
     return UnitRootDecision(unit_root, adf, persistence, threshold, lr, tau * tau, candidates, dfit)
 
 
