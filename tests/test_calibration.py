@@ -135,13 +135,11 @@ def test_persistent_stationary_series_stay_on_levels(frequency, phi, T, seed):
 
 
 def test_short_monthly_seasonal_series_stay_on_levels():
-    # monthly 0.3 y(t-1) + 0.5 y(t-12) at 60 points: differenced <= 8% (+2 pp sampling margin).
-    # Quarantine is about 8.5% here (2,000 series in bench/calibration.py): 2.5% from the
-    # stationarity gate (point estimates of a root of modulus 0.974 land above 1 at 48 rows) and
-    # series whose seasonal lag was not selected; asserted at its measured level + 2.5 pp.
+    # monthly 0.3 y(t-1) + 0.5 y(t-12) at 60 points (measured on 2,000 series: differenced 2.9%,
+    # quarantined 6.9%): acceptance 8% / 7%, each widened by ~2 s.e. at n = 500
     diff, quar = _decide(simulate({1: 0.3, 12: 0.5}, N_CAL, 60, 505), "month")
-    assert diff <= 0.10
-    assert 0.03 <= quar <= 0.11
+    assert diff <= 0.08 + 0.02
+    assert 0.02 <= quar <= 0.07 + 0.025
 
 
 @pytest.mark.parametrize("frequency, T, seed", [("month", 60, 511), ("month", 120, 512), ("week", 156, 513),
