@@ -288,3 +288,16 @@ def test_unit_root_policies_still_work(policy):
         assert not r.differenced.any() and held == pytest.approx(flagged)
     else:
         assert not r.differenced.any() and held == 0
+
+
+def test_short_weekly_series_are_tested_without_the_seasonal_lag_not_failed():
+    # lag 52 needs at least 104 residuals; shorter weekly series are tested on lags 1..12 (df then
+    # counts 12 lags), never left without a p-value (which a fail-closed gate would quarantine)
+    for test in ("ljung-box", "breusch-godfrey", "lag-t"):
+        for T in (40, 80, 200):
+            r = run_core(to_panel(simulate_ar({1: 0.5}, 50, T, 2)),
+                         Settings(frequency="week", gates=GateSettings(residual_test=test)))
+            p = r.residual_test.pvalue[r.fit.fitted]
+            assert np.isfinite(p).all(), (test, T)
+            if test == "breusch-godfrey":
+                assert np.all(r.residual_test.df[r.fit.fitted] == (13 if T >= 110 else 12))

@@ -186,7 +186,12 @@ def ljung_box(resid_or_acf: np.ndarray | AcfResult, lags: int, model_df: int | n
 
 
 def breusch_godfrey(
-    resid: np.ndarray, X: np.ndarray | None, mask: np.ndarray | None, nlags: int, lag_set: np.ndarray | None = None
+    resid: np.ndarray,
+    X: np.ndarray | None,
+    mask: np.ndarray | None,
+    nlags: int,
+    lag_set: np.ndarray | None = None,
+    lag_use: np.ndarray | None = None,
 ) -> TestResult:
     """Breusch-Godfrey LM test for residual autocorrelation up to lag ``nlags``, batched.
 
@@ -206,6 +211,8 @@ def breusch_godfrey(
     lagged residuals; the statistic is then chi-square with ``len(lag_set)``
     degrees of freedom (the model's own regressors are in the auxiliary
     regression, so no degrees of freedom are subtracted for them).
+    ``lag_use`` (G, len(lag_set)) bool drops lagged residuals per series (the
+    degrees of freedom count the ones used).
     """
     nlags = int(nlags)
     if nlags < 1:
@@ -231,15 +238,18 @@ def breusch_godfrey(
         # zero masked-out columns: their values never enter the fit
         Xo = Xo * m[:, None, :]
     lagcols = np.stack([_shift(z, int(j)) for j in use], axis=2)
+    lu = np.ones((G, nlags), dtype=bool) if lag_use is None else np.asarray(lag_use, dtype=bool)
+    lagcols = lagcols * lu[:, None, :]
     Xa = np.concatenate([Xo, lagcols], axis=2)
-    ma = np.concatenate([m, np.ones((G, nlags), dtype=bool)], axis=1)
+    ma = np.concatenate([m, lu], axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         res = ols.fit(Xa, z, valid.astype(np.float64), ma)
         r2 = res.r_squared
         lm = n * r2
     k_used = m.sum(axis=1)
-    lm = np.where(n > 1 + k_used + nlags, lm, np.nan)
-    df = np.full(G, float(nlags))
+    n_lag = lu.sum(axis=1)
+    lm = np.where((n > 1 + k_used + n_lag) & (n_lag > 0), lm, np.nan)
+    df = n_lag.astype(np.float64)
     return TestResult(lm, _chi2_sf(lm, df), df)
 
 
@@ -428,7 +438,12 @@ def ar_residual_acf_cov(
 
 
 def ljung_box_subset(
-    r: np.ndarray, lags: np.ndarray, nobs: np.ndarray, cov: np.ndarray | None = None, model_df: np.ndarray | int = 0
+    r: np.ndarray,
+    lags: np.ndarray,
+    nobs: np.ndarray,
+    cov: np.ndarray | None = None,
+    model_df: np.ndarray | int = 0,
+    use: np.ndarray | None = None,
 ) -> TestResult:
     """Ljung-Box statistic over any set of lags, for residuals of (subset) AR models.
 
@@ -443,14 +458,22 @@ def ljung_box_subset(
     the usual ``h - p``; a model lag whose constraint falls on untested lags
     (lag 52 when lags 1..12 are tested) removes nothing. ``df`` reports ``b``.
     Series where ``cov`` is NaN fall back to ``m - model_df`` (floored at 1).
+    ``use`` (G, m) bool drops lags per series (e.g. a seasonal lag a short
+    series cannot estimate): their terms and their rows and columns of ``A``
+    are left out, and ``m`` counts the lags used.
     """
     lags = np.asarray(lags, dtype=np.float64)
     n = np.asarray(nobs)
     nf = n.astype(np.float64)
-    m = len(lags)
+    u = np.ones(r.shape, dtype=bool) if use is None else np.asarray(use, dtype=bool)
+    m = u.sum(axis=1).astype(np.float64)
+    r = np.where(u, r, 0.0)
+    if cov is not None:
+        cov = cov * (u[:, :, None] & u[:, None, :])
+    lag_max = np.max(np.where(u, lags[None, :], 0.0), axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        q = nf * (nf + 2.0) * np.sum(r * r / (nf[:, None] - lags[None, :]), axis=1)
-        q = np.where((n > lags.max()) & np.all(np.isfinite(r), axis=1), q, np.nan)
+        q = nf * (nf + 2.0) * np.sum(np.where(u, r * r / (nf[:, None] - lags[None, :]), 0.0), axis=1)
+        q = np.where((n > lag_max) & np.all(np.isfinite(r), axis=1) & (m > 0), q, np.nan)
         md = np.broadcast_to(np.asarray(model_df, dtype=np.float64), n.shape)
         a = np.ones(len(n))
         b = np.maximum(m - md, 1.0)

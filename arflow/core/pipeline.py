@@ -61,7 +61,8 @@ def residual_test(fit: autoreg.ARFit, modelled: np.ndarray, acf: diagnostics.Acf
     """The configured residual autocorrelation test, one p-value per series.
 
     The tested lags are 1..``residual_lags`` and the seasonal lag when it lies
-    beyond (52 for weekly data), for every test alike. Ljung-Box: the
+    beyond (52 for weekly data), for every test alike; the seasonal lag only
+    where the series has at least twice that many residuals. Ljung-Box: the
     statistic over those lags, referred to the Box & Pierce (1970) / McLeod
     (1978) asymptotic distribution of residual autocorrelations of the fitted
     (subset) AR model (:func:`arflow.core.diagnostics.ar_residual_acf_cov`):
@@ -77,16 +78,22 @@ def residual_test(fit: autoreg.ARFit, modelled: np.ndarray, acf: diagnostics.Acf
     extra = tested[tested > acf.acf.shape[1]]
     r = acf.acf[:, : len(tested) - len(extra)]
     n = acf.nobs
+    # a lag beyond residual_lags is tested where at least two of its spans were observed
+    # (n >= 2 s residuals); a shorter series is tested on 1..residual_lags only
+    use = np.ones((len(n), len(tested)), dtype=bool)
     if len(extra):
         r_extra, _ = diagnostics.acf_at(fit.resid, extra)
         r = np.concatenate([r, r_extra], axis=1)
+        use[:, len(tested) - len(extra) :] = n[:, None] >= 2 * extra[None, :]
     if g.residual_test == "ljung-box":
         cov = diagnostics.ar_residual_acf_cov(fit.coef, fit.lag_mask & fit.fitted[:, None], fit.lags, tested)
-        count = (fit.lag_mask & np.isin(fit.lags, tested)[None, :]).sum(axis=1)
-        return diagnostics.ljung_box_subset(r, tested, n, cov, model_df=count)
+        count = (fit.lag_mask & (np.isin(fit.lags, tested)[None, :])).sum(axis=1)
+        count = count - (fit.lag_mask & np.isin(fit.lags, extra)[None, :] & ~use[:, -1:]).sum(axis=1) if len(extra) else count
+        return diagnostics.ljung_box_subset(r, tested, n, cov, model_df=count, use=use)
     if g.residual_test == "breusch-godfrey":
         X = np.nan_to_num(autoreg.lag_design(modelled, fit.lags))
-        return diagnostics.breusch_godfrey(fit.resid, X, fit.lag_mask, len(tested), lag_set=tested)
+        return diagnostics.breusch_godfrey(fit.resid, X, fit.lag_mask, len(tested), lag_set=tested, lag_use=use)
+    r = np.where(use, r, np.nan)
     # per-lag t tests, Holm step-down across lags unless switched off
     with np.errstate(invalid="ignore"):
         t_stat = r * np.sqrt(n)[:, None]
@@ -101,7 +108,7 @@ def residual_test(fit: autoreg.ARFit, modelled: np.ndarray, acf: diagnostics.Acf
         pmin = np.where(np.all(np.isnan(p), axis=1), np.nan, np.nanmin(np.where(np.isnan(p), np.inf, p), axis=1))
         tmax = np.nanmax(np.where(np.isnan(t_stat), -np.inf, np.abs(t_stat)), axis=1)
     tmax = np.where(np.isfinite(tmax), tmax, np.nan)
-    return diagnostics.TestResult(tmax, pmin, np.full(len(pmin), float(len(tested))))
+    return diagnostics.TestResult(tmax, pmin, use.sum(axis=1).astype(np.float64))
 
 
 #: Series per block inside the core: small blocks keep the (series, lags,
