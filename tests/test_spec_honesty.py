@@ -301,3 +301,16 @@ def test_short_weekly_series_are_tested_without_the_seasonal_lag_not_failed():
             assert np.isfinite(p).all(), (test, T)
             if test == "breusch-godfrey":
                 assert np.all(r.residual_test.df[r.fit.fitted] == (13 if T >= 110 else 12))
+
+
+def test_job_file_refuses_an_order_min_observations_cannot_carry(tmp_path):
+    from arflow.job_file import load_job
+    from arflow.sample.panels import default_job, job_toml
+
+    job = default_job()
+    job["model"] = {"order": 20}
+    path = tmp_path / "job.toml"
+    path.write_text(job_toml(job), encoding="utf-8")
+    with pytest.raises(SettingsError, match="model.order = 20 needs at least 46 observations") as e:
+        load_job(path)
+    assert e.value.exit_code == 2 and "\n" not in str(e.value)
