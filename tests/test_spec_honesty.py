@@ -314,3 +314,17 @@ def test_job_file_refuses_an_order_min_observations_cannot_carry(tmp_path):
     with pytest.raises(SettingsError, match="model.order = 20 needs at least 46 observations") as e:
         load_job(path)
     assert e.value.exit_code == 2 and "\n" not in str(e.value)
+
+
+def test_ar_autocovariance_matches_statsmodels_arma_acovf():
+    # statsmodels arma_acovf (unit innovation variance) is the reference for the Yule-Walker solve
+    from statsmodels.tsa.arima_process import arma_acovf
+
+    for phi in ({1: 0.5}, {1: 0.3, 12: 0.5}, {1: 0.6, 2: -0.3, 4: 0.2}):
+        L = max(phi)
+        dense = np.zeros(L)
+        for lag, c in phi.items():
+            dense[lag - 1] = c
+        got = diagnostics.ar_autocovariance(dense[None])[0]
+        ref = arma_acovf(np.r_[1.0, -dense], np.array([1.0]), nobs=L + 1, sigma2=1.0)
+        np.testing.assert_allclose(got, ref, rtol=1e-8)
