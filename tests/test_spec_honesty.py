@@ -33,6 +33,7 @@ def reasons_of(result, g: int) -> list[str]:
 # ---------------------------------------------------------------------------------------------
 
 
+@pytest.mark.slow
 @hsettings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     lengths=st.lists(st.integers(0, LARGEST_LAG + 6), min_size=1, max_size=4),
@@ -58,6 +59,7 @@ def test_core_never_raises_and_short_series_carry_a_reason(lengths, frequency, o
             assert reasons_of(r, g), f"unfitted series of length {n} has no reason"
 
 
+@pytest.mark.slow
 @hsettings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(n=st.integers(0, LARGEST_LAG + 6), frequency=st.sampled_from(["day", "week", "month", "quarter", "year"]),
        order=st.sampled_from(["auto", 2]))
