@@ -12,6 +12,7 @@ import numpy as np
 
 from ..settings import SEASONAL_PERIOD, Settings
 from . import autoreg, backtest, diagnostics, gates, unitroot
+from .distributions import t_sf
 from .forecast import Forecasts, forecast_ar
 from .panel import CONSTANT, NO_DATA, Panel
 
@@ -98,8 +99,6 @@ def residual_test(fit: autoreg.ARFit, modelled: np.ndarray, acf: diagnostics.Acf
     with np.errstate(invalid="ignore"):
         t_stat = r * np.sqrt(n)[:, None]
         dft = (n - 2).astype(np.float64)[:, None]
-        from .distributions import t_sf
-
         p = np.where(dft > 0, 2.0 * t_sf(np.abs(t_stat), np.where(dft > 0, dft, 1.0)), np.nan)
     p = np.where(np.isnan(t_stat), np.nan, p)
     if g.lag_correction == "holm":
