@@ -330,3 +330,17 @@ def test_ar_autocovariance_matches_statsmodels_arma_acovf():
         got = diagnostics.ar_autocovariance(dense[None])[0]
         ref = arma_acovf(np.r_[1.0, -dense], np.array([1.0]), nobs=L + 1, sigma2=1.0)
         np.testing.assert_allclose(got, ref, rtol=1e-8)
+
+
+@pytest.mark.parametrize("interval, start, expected", [
+    ("1d", dt.date(2020, 1, 1), "day"), ("1w", dt.date(2020, 1, 6), "week"), ("1mo", dt.date(2020, 1, 1), "month"),
+    ("3mo", dt.date(2015, 1, 1), "quarter"), ("1y", dt.date(2000, 1, 1), "year"),
+])
+def test_infer_frequency_from_dates_text_and_timestamps(interval, start, expected):
+    from arflow.api import infer_frequency
+
+    periods = pl.date_range(start, start + dt.timedelta(days=365 * 20), interval, eager=True)[:40]
+    for col in (periods, periods.cast(pl.String), periods.cast(pl.Datetime)):
+        assert infer_frequency(pl.DataFrame({"p": col}), "p") == expected
+    if expected == "month":  # month-end labels too
+        assert infer_frequency(pl.DataFrame({"p": periods.dt.month_end()}), "p") == "month"
