@@ -163,6 +163,7 @@ def _residual_rate(phi, T, seed, frequency, model, gates, G=N_CAL):
         ("week", {1: 0.3, 52: 0.5}, 1040, GateSettings(residual_test="breusch-godfrey")),
         ("month", {1: 0.3, 12: 0.5}, 240, GateSettings(residual_lags=6)),
         ("month", {1: 0.3, 12: 0.5}, 240, GateSettings(residual_lags=6, residual_test="breusch-godfrey")),
+        ("month", {1: 0.3, 12: 0.5}, 240, GateSettings(residual_lags=6, residual_test="lag-t")),
     ],
 )
 def test_residual_test_size_with_the_seasonal_lag_beyond_residual_lags(frequency, phi, T, gates):
