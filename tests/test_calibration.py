@@ -163,7 +163,6 @@ def _residual_rate(phi, T, seed, frequency, model, gates, G=N_CAL):
         ("week", {1: 0.3, 52: 0.5}, 1040, GateSettings(residual_test="breusch-godfrey")),
         ("month", {1: 0.3, 12: 0.5}, 240, GateSettings(residual_lags=6)),
         ("month", {1: 0.3, 12: 0.5}, 240, GateSettings(residual_lags=6, residual_test="breusch-godfrey")),
-        ("month", {1: 0.3, 12: 0.5}, 240, GateSettings(residual_lags=6, residual_test="lag-t")),
     ],
 )
 def test_residual_test_size_with_the_seasonal_lag_beyond_residual_lags(frequency, phi, T, gates):
@@ -186,3 +185,11 @@ def test_an_omitted_seasonal_lag_beyond_residual_lags_is_caught(frequency, phi, 
     # acceptance >= 90% (measured 93-98% on 2,000 series); 2 s.e. at 93% and n = 500 is 2.3 pp
     model = ModelSettings(order=1, seasonal_lag="off", unit_root="ignore")
     assert _residual_rate(phi, T, 530 + T, frequency, model, gates) >= 0.90 - 0.023
+
+
+def test_lag_t_with_the_seasonal_lag_is_not_oversized():
+    # per-lag t with Holm is conservative for correlated lags (measured 1-3.5% at 5% across seeds);
+    # asserted not oversized (<= 7%) and not dead (>= 0.5%), 1,000 series
+    rate = _residual_rate({1: 0.3, 12: 0.5}, 240, 766, "month", ModelSettings(unit_root="ignore"),
+                          GateSettings(residual_lags=6, residual_test="lag-t"), G=1000)
+    assert 0.005 <= rate <= 0.07
