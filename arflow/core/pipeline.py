@@ -6,14 +6,14 @@ columns. Everything is batched over series.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
 from ..settings import SEASONAL_PERIOD, Settings
-from . import autoreg, backtest, diagnostics, gates, unitroot
+from . import autoreg, backtest, diagnostics, gates, outliers, unitroot
 from .distributions import t_sf
-from .forecast import Forecasts, forecast_ar
+from .forecast import Forecasts, coef_covariance, forecast_ar
 from .panel import CONSTANT, NO_DATA, Panel
 
 
@@ -33,6 +33,20 @@ class CoreResult:
     forecasts: Forecasts
     outcome: gates.GateOutcome
     backtest: backtest.BacktestResult | None = None
+    outliers: "OutlierReport | None" = None
+
+
+@dataclass(frozen=True)
+class OutlierReport:
+    """Additive outliers per series: ``statistic``/``threshold`` (G,) of the detector,
+    ``count`` (G,), ``passed`` (G,) for the gate, ``effect`` (G, T) the estimated effect
+    at each flagged period (panel column), NaN elsewhere."""
+
+    statistic: np.ndarray
+    threshold: np.ndarray
+    count: np.ndarray
+    passed: np.ndarray
+    effect: np.ndarray
 
 
 def _diff_right_aligned(Y: np.ndarray) -> np.ndarray:
@@ -290,6 +304,23 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
     return UnitRootDecision(unit_root, adf, persistence, threshold, lr, tau * tau, candidates, dfit)
 
 
+def _interval_terms(fit: autoreg.ARFit, modelled: np.ndarray, fs, exclude: np.ndarray | None = None) -> dict:
+    """Keyword arguments of :func:`forecast_ar` for parameter-uncertainty intervals (empty when off).
+
+    ``exclude`` (G, T) bool: rows of the fitted sample taken out by intervention terms.
+    """
+    if not fs.parameter_uncertainty:
+        return {}
+    w = np.isfinite(fit.resid)
+    if exclude is not None:
+        w = w & ~exclude[:, -w.shape[1]:]
+    M = modelled[:, -w.shape[1]:]
+    X = autoreg.lag_design(M, fit.lags)
+    cov = coef_covariance(X, w.astype(np.float64), fit.lag_mask, fit.lags, np.nan_to_num(fit.sigma))
+    df = np.where(fit.fitted, fit.n_obs - fit.n_lags - 1, np.nan).astype(np.float64)
+    return dict(coef_cov=np.where(fit.fitted[:, None, None], np.nan_to_num(cov), 0.0), df_resid=df)
+
+
 def _run_block(panel: Panel, settings: Settings) -> dict:
     ms, gs, fs = settings.model, settings.gates, settings.forecast
     Y = panel.values
@@ -320,6 +351,32 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         modelled = Y.copy()
         modelled[idx] = _diff_right_aligned(Y[idx])
 
+    # ---- additive outliers (arflow.core.outliers) ----------------------------------------
+    Yf, excluded, orep = Y, None, None
+    if ms.outliers != "off":
+        found, tr = outliers.detect_and_treat(modelled, fit)
+        effect = np.where(found.flagged, found.size, np.nan)
+        passed = ~found.any & ~found.too_many
+        if ms.outliers == "treat" and tr is not None:
+            # the refit keeps the specification: its candidate-set records carry over
+            fit, excluded = replace(tr.fit, selection_cut=fit.selection_cut, order_unsupported=fit.order_unsupported), tr.excluded
+            effect = np.where(tr.treated[:, None], tr.effect, effect)
+            passed = ~found.too_many & ~tr.failed
+            Yf = outliers.cleaned_levels(Y, tr.effect, differenced)
+            # the order was selected with the outliers in the data (a spike can make the
+            # constant mean win): re-select on the cleaned series, and where that picks other
+            # lags, use the fit on the cleaned series (the additive-outlier model fitted to
+            # the series with the estimated effects removed)
+            tidx = np.flatnonzero(tr.treated & fit.fitted)
+            if tidx.size:
+                Mc = np.where(differenced[tidx, None], _diff_right_aligned(Yf[tidx]), Yf[tidx])
+                re = autoreg.fit_ar(Mc, **fit_kw)
+                other = re.fitted & np.any(re.lag_mask != fit.lag_mask[tidx], axis=1)
+                if other.any():
+                    keep = np.flatnonzero(other)
+                    fit = autoreg.splice(fit, autoreg.take(re, keep), tidx[keep])
+        orep = OutlierReport(found.statistic, found.threshold, found.count, passed, effect)
+
     # ---- residual diagnostics -------------------------------------------------------------
     acf = diagnostics.residual_acf(fit.resid, gs.residual_lags)
     rtest = residual_test(fit, modelled, acf, settings)
@@ -331,7 +388,7 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
     # largest candidate lag must not break the forecast's broadcasting (those series are unfitted)
     hist = np.zeros((G, width))
     if Y.shape[1]:
-        hist[:, width - min(width, Y.shape[1]) :] = np.nan_to_num(Y[:, -width:])
+        hist[:, width - min(width, Y.shape[1]) :] = np.nan_to_num(Yf[:, -width:])
     fc = forecast_ar(
         hist,
         np.nan_to_num(fit.intercept),
@@ -340,12 +397,13 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         fs.horizon,
         fs.coverage,
         differenced,
+        **_interval_terms(fit, modelled, fs, excluded),
     )
     bt = None
     bs = settings.backtest
     if bs.enabled:
         bt = backtest.rolling_origin(
-            Y,
+            Yf,
             fit.lag_mask,
             fit.lags,
             differenced,
@@ -355,9 +413,10 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
             season=seasonal,
             min_train=gs.min_observations,
             fitted=fit.fitted,
+            parameter_uncertainty=fs.parameter_uncertainty,
         )
     return dict(fit=fit, differenced=differenced, unit_root=unit_root, adf=adf, kpss=kp, acf=acf,
-                residual_test=rtest, arch=arch, forecasts=fc, backtest=bt)
+                residual_test=rtest, arch=arch, forecasts=fc, backtest=bt, outliers=orep)
 
 
 def _concat(objs: list, axis: int = 0):
@@ -448,6 +507,15 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         order_cap=autoreg.candidate_limits(panel.n, ms.order, ms.max_order, None)[0].astype(np.float64),
         max_order=ms.max_order if ms.order == "auto" else int(ms.order),
     )
-    outcome = gates.decide(inputs, gs, ms.unit_root, settings.backtest.naive_gate if bt is not None else "off")
+    orep = parts["outliers"]
+    if orep is not None:
+        inputs = replace(inputs, outlier_statistic=orep.statistic, outlier_threshold=orep.threshold,
+                         outlier_passed=orep.passed)
+    bs = settings.backtest
+    cov_mode = bs.coverage_gate if bt is not None else "off"
+    if cov_mode != "off":
+        cstat, cp = bt.coverage_test(bs.coverage_steps)
+        inputs = replace(inputs, coverage_statistic=cstat, coverage_pvalue=cp, coverage_alpha=bs.coverage_alpha)
+    outcome = gates.decide(inputs, gs, ms.unit_root, settings.backtest.naive_gate if bt is not None else "off", cov_mode)
     return CoreResult(panel, fit, parts["differenced"], parts["unit_root"], parts["adf"], parts["kpss"],
-                      parts["acf"], rtest, arch, fc, outcome, bt)
+                      parts["acf"], rtest, arch, fc, outcome, bt, orep)
