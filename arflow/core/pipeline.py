@@ -111,6 +111,12 @@ def residual_test(fit: autoreg.ARFit, modelled: np.ndarray, acf: diagnostics.Acf
         cov = diagnostics.ar_residual_acf_cov(fit.coef, fit.lag_mask & fit.fitted[:, None], fit.lags, tested)
         count = (fit.lag_mask & (np.isin(fit.lags, tested)[None, :])).sum(axis=1)
         count = count - (fit.lag_mask & np.isin(fit.lags, extra)[None, :] & ~use[:, -1:]).sum(axis=1) if len(extra) else count
+        # every model lag among the tested lags 1..K (a contiguous AR with no lag beyond K): the
+        # classic K - p (Ljung & Box 1978; statsmodels acorr_ljungbox model_df=p), which the
+        # subset-model distribution approaches as the psi-weights die out within K
+        inside = ~np.any(fit.lag_mask & (fit.lags[None, :] > g.residual_lags), axis=1)
+        classic = inside & ~use[:, len(tested) - len(extra) :].any(axis=1) if len(extra) else inside
+        cov = np.where(classic[:, None, None], np.nan, cov)
         return diagnostics.ljung_box_subset(r, tested, n, cov, model_df=count, use=use)
     if g.residual_test == "breusch-godfrey":
         X = np.nan_to_num(autoreg.lag_design(modelled, fit.lags))
