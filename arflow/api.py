@@ -82,6 +82,7 @@ def forecast(
     keys: list[str] | str,
     period: str,
     value: str,
+    frequency: str | None = None,
     settings: Settings | None = None,
     as_of: Any = None,
     workers: int = 1,
@@ -96,6 +97,14 @@ def forecast(
     ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
     or int) ignores later rows; by default it is the latest period present.
     ``workers`` > 1 runs the statistical core in that many worker processes (blocks of series).
+
+    ``frequency`` ("day", "week", "month", "quarter", "year", "step") overrides
+    ``settings.frequency``. Without it, the frequency is ``settings.frequency``
+    when settings are given, else inferred from the period column
+    (:func:`infer_frequency`); either way, when the period column clearly
+    holds another frequency than the one in force, or no frequency can be
+    inferred, :class:`arflow.errors.SchemaError` names the problem in one line
+    (nothing is assumed silently).
 
     Schema problems raise :class:`arflow.errors.SchemaError`; per-series
     problems become quarantine reasons.
@@ -113,8 +122,15 @@ def forecast(
     from .core.pipeline import run_core
     from .frames import encode_as_of, result_frames, to_panel_inputs
 
-    settings = settings or Settings()
     key_list = [keys] if isinstance(keys, str) else list(keys)
+    if not _is_spark_frame(frame):
+        settings = _settings_with_frequency(frame, key_list, period, value, frequency, settings)
+    else:
+        settings = settings or Settings()
+        if frequency is not None:
+            from dataclasses import replace
+
+            settings = replace(settings, frequency=frequency)
     if _is_spark_frame(frame):  # computed by Spark tasks, each calling this function on whole series
         from .spark_engine import forecast_spark_frame
 
@@ -146,3 +162,72 @@ def forecast(
 def _is_spark_frame(frame: Any) -> bool:
     """A Spark DataFrame, recognised without importing pyspark."""
     return type(frame).__module__.startswith("pyspark.") and hasattr(frame, "sparkSession") and hasattr(frame, "groupBy")
+
+
+#: Typical spacing in days between consecutive periods of each calendar frequency.
+_SPACING_DAYS = {"day": (1, 1), "week": (7, 7), "month": (28, 31), "quarter": (89, 92), "year": (365, 366)}
+
+
+def infer_frequency(frame: Any, period: str) -> str | None:
+    """The frequency a period column holds, or None when it cannot be told.
+
+    Integer periods are ``"step"``. Dates (DATE, TIMESTAMP or ISO text): the
+    most common spacing between consecutive distinct periods, in days: 1 day,
+    7 week, 28-31 month, 89-92 quarter, 365-366 year; anything else (or fewer
+    than three distinct periods) is None.
+    """
+    from .frames import _as_polars
+
+    if _is_spark_frame(frame):
+        return None
+    df = _as_polars(frame)
+    if period not in df.columns:
+        return None  # the frame adapter reports the missing column
+    s = df.get_column(period)
+    if s.dtype.is_integer():
+        return "step"
+    if isinstance(s.dtype, pl.Datetime):
+        s = s.dt.date()
+    elif s.dtype == pl.String:
+        s = s.str.to_date(strict=False)
+    if s.dtype != pl.Date:
+        return None
+    days = np.unique(s.drop_nulls().cast(pl.Int32).to_numpy())
+    if len(days) < 3:
+        return None
+    gaps, counts = np.unique(np.diff(days), return_counts=True)
+    mode = int(gaps[np.argmax(counts)])
+    for name, (lo, hi) in _SPACING_DAYS.items():
+        if lo <= mode <= hi:
+            return name
+    return None
+
+
+def _settings_with_frequency(
+    frame: Any, keys: list[str], period: str, value: str, frequency: str | None, settings: Settings | None
+) -> Settings:
+    """The settings to run with: an explicit ``frequency`` wins; the period column must not contradict it."""
+    from dataclasses import replace
+
+    from .errors import SchemaError
+    from .settings import FREQUENCIES
+
+    if frequency is not None and frequency not in FREQUENCIES:
+        raise SchemaError(f"frequency = {frequency!r} is not allowed; use " + " / ".join(f'"{f}"' for f in FREQUENCIES))
+    seen = infer_frequency(frame, period)
+    chosen = frequency or (settings.frequency if settings is not None else seen)
+    if chosen is None:
+        from .frames import to_panel_inputs
+
+        to_panel_inputs(frame, keys, period, value, "day")  # a schema problem is the clearer error
+        raise SchemaError(
+            f"cannot tell the frequency of period column {period!r} (fewer than three distinct periods or "
+            "irregular spacing); pass frequency=\"day\" / \"week\" / \"month\" / \"quarter\" / \"year\" / \"step\""
+        )
+    if seen is not None and seen != chosen and not (seen == "step" or chosen == "step"):
+        raise SchemaError(
+            f"period column {period!r} holds {seen}ly periods but the frequency is {chosen!r}; "
+            f"pass frequency={seen!r} (or set Settings(frequency=...))".replace("dayly", "daily")
+        )
+    base = settings or Settings()
+    return base if base.frequency == chosen else replace(base, frequency=chosen)

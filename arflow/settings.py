@@ -39,19 +39,29 @@ def _is_num(v: object) -> bool:
 class ModelSettings:
     """How each series is modelled.
 
-    ``order``: ``"auto"`` (select 1..``max_order`` by ``criterion``) or a fixed int.
+    ``order``: ``"auto"`` (select 0..``max_order`` by ``criterion``; 0 is the
+    constant mean, i.e. white noise) or a fixed int. A series too short for
+    every candidate order selects among those its sample can carry (recorded
+    by the ``order_candidates`` gate row, which never quarantines); a fixed
+    order longer than a series can carry is never silently lowered: the series
+    is quarantined with reason ``order_not_supported``.
     ``seasonal_lag``: ``"auto"`` (4 quarterly, 12 monthly, 7 daily, 52 weekly),
     an int, or ``"off"``; the seasonal lag is added when it improves the
     criterion or its coefficient is significant at ``seasonal_alpha``.
     ``unit_root``: ``"difference"`` (model first differences of series that
     carry a unit root), ``"quarantine"`` (hold them back) or ``"ignore"``.
-    A series is judged to carry a unit root when the ADF test does not reject
-    at ``unit_root_alpha`` **and** its level model's persistence (sum of AR
-    coefficients) is at least ``1 - unit_root_bias / n``: the second condition
-    keeps persistent but stationary series (whose ADF test has little power
-    at ~100 observations) on levels. 20 is about the 1% point of the
+    A series is judged to carry a unit root when (1) the ADF test does not
+    reject at ``unit_root_alpha``, (2) its level model's persistence (sum of
+    AR coefficients) is at least ``max(1 - unit_root_bias / n,
+    unit_root_min_persistence)`` and (3) the model fitted to its first
+    differences is not clearly worse than the level model on the same
+    observations (likelihood ratio at most the squared Dickey-Fuller critical
+    value at ``unit_root_alpha``). 20 is about the 1% point of the
     Dickey-Fuller normalised-bias distribution with a constant (from memory:
-    Fuller 1996, about -19.8 at n = 100).
+    Fuller 1996, about -19.8 at n = 100); the floor 0.67 is that bound's value
+    at 60 observations (1 - 20/60), so the guard does not vanish for shorter
+    series: a 24-point series with persistence 0.4 stays on levels. Details and measured rates:
+    :func:`arflow.core.pipeline.unit_root_decision` and the README.
 
     >>> ModelSettings(order=2).order
     2
@@ -65,15 +75,26 @@ class ModelSettings:
     unit_root: str = "difference"
     unit_root_alpha: float = 0.05
     unit_root_bias: float = 20.0
+    unit_root_min_persistence: float = 0.67
     #: additive outliers (:mod:`arflow.core.outliers`): "treat" (intervention terms, refit,
     #: report), "quarantine" (hold the series back with reason ``outlier``) or "off"
     outliers: str = "treat"
+
+    def min_observations_for_order(self) -> int:
+        """Observations a series needs to carry a fixed ``order`` (0 for ``"auto"``).
+
+        ``n - p >= p + 1 + 5``: p coefficients, the intercept and five residual
+        degrees of freedom on the ``n - p`` rows an AR(p) is fitted on.
+        """
+        return 0 if self.order == "auto" else 2 * int(self.order) + 6
 
     def __post_init__(self) -> None:
         if self.outliers not in OUTLIER_POLICIES:
             _fail("model.outliers", self.outliers, " / ".join(f'"{c}"' for c in OUTLIER_POLICIES))
         if not (_is_num(self.unit_root_bias) and 0 < self.unit_root_bias <= 1000):
             _fail("model.unit_root_bias", self.unit_root_bias, "a positive number (default 20)")
+        if not (_is_num(self.unit_root_min_persistence) and 0 <= self.unit_root_min_persistence < 1):
+            _fail("model.unit_root_min_persistence", self.unit_root_min_persistence, "a number from 0 up to (not including) 1")
         if not (self.order == "auto" or (_is_int(self.order) and 1 <= self.order <= 60)):
             _fail("model.order", self.order, '"auto" or an integer from 1 to 60')
         if not (_is_int(self.max_order) and 1 <= self.max_order <= 60):
@@ -276,3 +297,10 @@ class Settings:
     def __post_init__(self) -> None:
         if self.frequency not in FREQUENCIES:
             _fail("source.frequency", self.frequency, " / ".join(f'"{c}"' for c in FREQUENCIES))
+        need = self.model.min_observations_for_order()
+        if need > self.gates.min_observations:
+            raise SettingsError(
+                f"model.order = {self.model.order} needs at least {need} observations per series but "
+                f"gates.min_observations = {self.gates.min_observations}; raise gates.min_observations "
+                f"to {need} or lower model.order"
+            )

@@ -186,7 +186,8 @@ def test_errors_match_statsmodels_autoreg_refits_at_each_origin():
 
 def _pipeline_backtest(Y, origins=40, horizon=4):
     core = run_core(panel_of(Y), Settings(frequency="step"))
-    return core, rolling_origin(Y, core.fit.lag_mask, core.fit.lags, core.differenced, origins=origins, horizon=horizon)
+    return core, rolling_origin(Y, core.fit.lag_mask, core.fit.lags, core.differenced, origins=origins, horizon=horizon,
+                                fitted=core.fit.fitted)  # order-0 (constant mean) models are backtested too
 
 
 def test_stationary_ar1_beats_naive():

@@ -71,6 +71,11 @@ class ARFit:
     persistence_se: np.ndarray
     resid: np.ndarray
     fitted: np.ndarray
+    #: fitted, but the sample could not carry every candidate (orders above
+    #: ``candidate_limits``' cap or the seasonal lag were not tried)
+    selection_cut: np.ndarray | None = None
+    #: a fixed order longer than the series can carry (not fitted, flagged)
+    order_unsupported: np.ndarray | None = None
 
     @property
     def n_lags(self) -> np.ndarray:
@@ -142,6 +147,38 @@ def _sample_weights(n: np.ndarray, T: int, hold_back: np.ndarray) -> np.ndarray:
     return (t >= start).astype(np.float64)
 
 
+def candidate_limits(
+    n: np.ndarray, order: int | str, max_order: int, seasonal_lag: int | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """What each series' sample can carry: ``(p_cap, seasonal_ok, order_unsupported)``, all (G,).
+
+    A candidate with highest lag ``L`` and ``k`` lag coefficients is fitted on
+    ``n - L`` rows and needs ``n - L >= k + 1 + MIN_RESID_DF``. With
+    ``order="auto"``, ``p_cap`` is the largest order in 0..``max_order`` that
+    fits (-1: not even the mean fits) and the seasonal candidate is tried only
+    where it fits on top of ``p_cap`` lags. With a fixed order, ``p_cap`` is
+    that order and ``order_unsupported`` marks series too short to carry it
+    (they are not fitted and are flagged, never refitted at another order).
+    """
+    n = np.asarray(n, dtype=np.int64)
+    auto = order == "auto"
+    P = int(max_order if auto else order)
+    if auto:
+        p_cap = np.clip(np.minimum((n - 1 - MIN_RESID_DF) // 2, n // 8), -1, P)
+        unsupported = np.zeros(len(n), dtype=bool)
+    else:
+        unsupported = n - P < P + 1 + MIN_RESID_DF
+        p_cap = np.where(unsupported, -1, P)
+    s = int(seasonal_lag) if seasonal_lag else 0
+    if s > P:
+        seasonal_ok = (p_cap >= 0) & (n - s >= np.maximum(p_cap + 2 + MIN_RESID_DF, 2 * s))
+    elif s > 0:
+        seasonal_ok = p_cap >= s
+    else:
+        seasonal_ok = np.zeros(len(n), dtype=bool)
+    return p_cap, seasonal_ok, unsupported
+
+
 def fit_ar(
     Y: np.ndarray,
     *,
@@ -151,12 +188,18 @@ def fit_ar(
     seasonal_lag: int | None = None,
     seasonal_alpha: float = 0.05,
     fit_mask: np.ndarray | None = None,
+    min_order: int = 0,
 ) -> ARFit:
     """Fit AR models with intercept to every row of a right-aligned panel ``Y`` (G, T).
 
-    ``order="auto"`` selects p in 1..max_order by ``criterion`` on a common
-    sample; an integer fixes p. ``seasonal_lag`` adds the seasonal candidate.
-    ``fit_mask`` (G,) bool skips series (they come back unfitted).
+    ``order="auto"`` selects p in ``min_order``..max_order (0: the constant mean, white
+    noise) by ``criterion`` on a common sample; a series too short for every
+    candidate selects among the orders its sample can carry (and the seasonal
+    candidate only where it fits), and is marked in ``selection_cut``. An
+    integer fixes p; a series too short for it is not fitted and is marked in
+    ``order_unsupported`` (never refitted at another order).
+    ``seasonal_lag`` adds the seasonal candidate. ``fit_mask`` (G,) bool skips
+    series (they come back unfitted).
 
     >>> rng = np.random.default_rng(0); e = rng.normal(size=(2, 400)); y = np.zeros((2, 400))
     >>> for t in range(1, 400): y[:, t] = 1.0 + 0.6 * y[:, t - 1] + e[:, t]
@@ -166,24 +209,29 @@ def fit_ar(
     Y = np.asarray(Y, dtype=np.float64)
     G, T = Y.shape
     n = (~np.isnan(Y)).sum(axis=1)
-    P = int(max_order if order == "auto" else order)
+    auto = order == "auto"
+    P = int(max_order if auto else order)
     lag_list = list(range(1, P + 1))
     s = int(seasonal_lag) if seasonal_lag else None
     if s is not None and s not in lag_list:
         lag_list.append(s)
     lags = np.array(sorted(lag_list), dtype=np.int64)
     K = len(lags)
-    hold = int(lags.max())
     ZT, shift = shifted_lag_stack(Y, lags)
     Xz = ZT[:, :K, :].transpose(0, 2, 1)
 
     want = np.ones(G, dtype=bool) if fit_mask is None else np.asarray(fit_mask, dtype=bool)
-    # selection needs room for the largest candidate
-    can_select = want & (n - hold >= K + 1 + MIN_RESID_DF)
+    p_cap, s_ok, unsupported = candidate_limits(n, order, max_order, s)
+    unsupported = unsupported & want
+    has_s = s is not None and s > P
+    s_ok = s_ok & want
+    can_fit = want & (p_cap >= 0)
+    # the common sample holds back each series' largest candidate lag
+    hold_g = np.where(can_fit, np.maximum(np.maximum(p_cap, 0), np.where(s_ok & has_s, s, 0)), 0)
     base_cols = lags <= P
     seasonal_col = (lags == s) if s is not None else np.zeros(K, dtype=bool)
     # raw sums over the common sample (every candidate lag available): one pass
-    w_common = _sample_weights(n, T, np.full(G, hold)) * want[:, None]
+    w_common = _sample_weights(n, T, hold_g) * can_fit[:, None]
     ZTw = ZT * w_common[:, None, :]
     S = np.matmul(ZTw, np.swapaxes(ZT, 1, 2))
     ssum = ZTw.sum(axis=2)
@@ -191,39 +239,45 @@ def fit_ar(
     del ZTw
     g = ols.gram_from_sums(S, ssum, ncommon)
     # ---- candidate lag sets -------------------------------------------------------
-    if order == "auto":
-        # every order 1..P from one sweep of the common-sample Gram matrix
-        rss = ols.nested_rss(g, np.flatnonzero(base_cols))
-        orders = np.arange(1, P + 1)
+    if auto:
+        # every order 0..P from one sweep of the common-sample Gram matrix
+        rss = np.concatenate([g.yty[:, None], ols.nested_rss(g, np.flatnonzero(base_cols))], axis=1)
+        orders = np.arange(0, P + 1)
         ic = information_criteria(rss, g.nobs[:, None], (orders + 1)[None, :])[criterion]
-        best_p = np.argmin(ic, axis=1) + 1  # ties go to the smaller order
+        ic = np.where((orders[None, :] <= p_cap[:, None]) & (orders[None, :] >= min_order), ic, np.inf)
+        ic = np.where(np.isnan(ic), np.inf, ic)
+        best_p = np.argmin(ic, axis=1)  # ties go to the smaller order
+        best_p = np.where(p_cap >= min_order, best_p, 0)
+        can_fit = can_fit & (p_cap >= min_order)
         chosen = lags[None, :] <= best_p[:, None]
     else:
         chosen = np.broadcast_to(base_cols, (G, K)).copy()
-    chosen = chosen & base_cols[None, :]
+    chosen = chosen & base_cols[None, :] & can_fit[:, None]
     if s is not None and s > 0:
         add = chosen | seasonal_col[None, :]
         differs = ~np.all(add == chosen, axis=1)
-        ra = ols.solve(g, chosen)
-        rb = ols.solve(g, add)
-        ica = information_criteria(ra.rss, g.nobs, ra.n_params)[criterion]
-        icb = information_criteria(rb.rss, g.nobs, rb.n_params)[criterion]
-        df_b = g.nobs - rb.n_params
         with np.errstate(divide="ignore", invalid="ignore"):
+            ra = ols.solve(g, chosen)
+            rb = ols.solve(g, add)
+            ica = information_criteria(ra.rss, g.nobs, ra.n_params)[criterion]
+            icb = information_criteria(rb.rss, g.nobs, rb.n_params)[criterion]
+            df_b = g.nobs - rb.n_params
             fstat = (ra.rss - rb.rss) / (rb.rss / df_b)
             p_add = f_sf(fstat, 1, df_b)
-        keep_s = differs & can_select & ((icb < ica) | (p_add < seasonal_alpha))
+        keep_s = differs & s_ok & can_fit & ((icb < ica) | (p_add < seasonal_alpha))
         chosen = np.where(keep_s[:, None], add, chosen)
-    # series too short to select are fitted at the smallest order that fits
-    chosen = np.where(can_select[:, None], chosen, lags[None, :] <= 1)
-    maxlag = np.where(chosen.any(axis=1), np.max(np.where(chosen, lags[None, :], 0), axis=1), 1)
-    fittable = want & (n - maxlag >= chosen.sum(axis=1) + 1 + MIN_RESID_DF)
+    maxlag = np.max(np.where(chosen, lags[None, :], 0), axis=1)
+    fittable = can_fit & (n - maxlag >= chosen.sum(axis=1) + 1 + MIN_RESID_DF)
+    # fitted on fewer candidates than configured: orders above the cap, or no seasonal lag
+    cut = fittable & (((p_cap < P) & auto) | (has_s & ~s_ok))
     # the chosen lags are refitted on their own longer sample: add the rows
     # between each series' own hold-back and the common one to the sums
-    if hold > 1:
-        r = np.arange(hold)[None, :]
+    H = int(hold_g.max(initial=0))
+    if H > 0:
+        r = np.arange(H)[None, :]
         rows = (T - n)[:, None] + r
-        wx = ((r >= maxlag[:, None]) & (rows <= T - 1) & (rows >= 0) & fittable[:, None]).astype(np.float64)
+        wx = ((r >= maxlag[:, None]) & (r < hold_g[:, None]) & (rows <= T - 1) & (rows >= 0) & fittable[:, None])
+        wx = wx.astype(np.float64)
         Zx = np.take_along_axis(ZT, np.clip(rows, 0, T - 1)[:, None, :], axis=2)
         Zxw = Zx * wx[:, None, :]
         S = S + np.matmul(Zxw, np.swapaxes(Zx, 1, 2))
@@ -232,8 +286,10 @@ def fit_ar(
     keepf = fittable.astype(np.float64)
     gfit = ols.gram_from_sums(S * keepf[:, None, None], ssum * keepf[:, None], ncommon * keepf)
     w_fit = _sample_weights(n, T, maxlag) * fittable[:, None]
-    res = ols.fit_with_gram(gfit, Xz, ZT[:, K, :], w_fit, chosen)
-    return _finish(lags, chosen, res, w_fit, Y, fittable, shift, gfit.xmean)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        res = ols.fit_with_gram(gfit, Xz, ZT[:, K, :], w_fit, chosen)
+    out = _finish(lags, chosen, res, w_fit, Y, fittable, shift, gfit.xmean)
+    return replace(out, selection_cut=cut, order_unsupported=unsupported)
 
 
 def max_root_modulus(phi: np.ndarray, maxlag: np.ndarray) -> np.ndarray:
@@ -302,6 +358,8 @@ def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable, shift, xmean) -> ARF
         persistence_se=np.sqrt(np.maximum(res.cov_beta.sum(axis=(1, 2)), 0.0)) * nan,
         resid=resid,
         fitted=fittable,
+        selection_cut=np.zeros(G, dtype=bool),
+        order_unsupported=np.zeros(G, dtype=bool),
     )
 
 

@@ -254,6 +254,7 @@ def rolling_origin(
     season: int | None = None,
     min_train: int = 0,
     block: int = BLOCK_SERIES,
+    fitted: np.ndarray | None = None,
     parameter_uncertainty: bool = False,
 ) -> BacktestResult:
     """Backtest each series' AR specification at the last ``origins`` origins (see the module notes).
@@ -277,6 +278,9 @@ def rolling_origin(
     G, T = Y.shape
     lags = np.asarray(lags, dtype=np.int64).ravel()
     lag_mask = np.asarray(lag_mask, dtype=bool)
+    # ``fitted`` (G,) marks fitted models: one with no lags is then the constant mean (order 0);
+    # without it a series with no lags is taken as not fitted
+    fit_ok = np.zeros(G, dtype=bool) if fitted is None else np.asarray(fitted, dtype=bool)
     if lag_mask.shape != (G, len(lags)):
         raise ValueError(f"lag_mask must have shape {(G, len(lags))}, got {lag_mask.shape}")
     if len(lags) and lags.min() < 1:
@@ -308,7 +312,7 @@ def rolling_origin(
     for b0 in range(0, G, step):
         idx = perm[b0 : b0 + step]
         out = _block(Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train),
-                     bool(parameter_uncertainty))
+                     fit_ok[idx], bool(parameter_uncertainty))
         for k, v in out.items():
             parts[k].append(v)
     if G == 0:
@@ -337,7 +341,7 @@ def rolling_origin(
     )
 
 
-def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, param_unc=False) -> dict:
+def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, fit_ok=None, param_unc=False) -> dict:
     B, T = Y.shape
     C = len(cov)
     sums = {k: _Sums(B, H) for k in ("model", "naive", "snaive")}
@@ -345,16 +349,18 @@ def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, para
     n_orig = np.zeros(B, dtype=np.int64)
     out = lambda: dict(model=sums["model"], naive=sums["naive"], snaive=sums["snaive"],  # noqa: E731
                        hits=hits, n_origins=n_orig)
+    has = mask.any(axis=1) | (np.ones(B, dtype=bool) if fit_ok is None else fit_ok)
     used = mask.any(axis=0)
-    if not used.any() or len(cols) == 0:
+    if not has.any() or len(cols) == 0 or len(lags) == 0:
         return out()
+    if not used.any():
+        used = np.arange(len(lags)) == 0  # only constant-mean models: one masked-out column
     # only the lag columns some series of this block uses
     lags_b = lags[used]
     mask = mask[:, used]
     order = np.argsort(lags_b)
     lags_b, mask = lags_b[order], mask[:, order]
     K = len(lags_b)
-    has = mask.any(axis=1)
     k = mask.sum(axis=1)
     maxlag = np.max(np.where(mask, lags_b[None, :], 0), axis=1)
     n = np.isfinite(Y).sum(axis=1)

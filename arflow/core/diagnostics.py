@@ -186,7 +186,12 @@ def ljung_box(resid_or_acf: np.ndarray | AcfResult, lags: int, model_df: int | n
 
 
 def breusch_godfrey(
-    resid: np.ndarray, X: np.ndarray | None, mask: np.ndarray | None, nlags: int
+    resid: np.ndarray,
+    X: np.ndarray | None,
+    mask: np.ndarray | None,
+    nlags: int,
+    lag_set: np.ndarray | None = None,
+    lag_use: np.ndarray | None = None,
 ) -> TestResult:
     """Breusch-Godfrey LM test for residual autocorrelation up to lag ``nlags``, batched.
 
@@ -201,10 +206,19 @@ def breusch_godfrey(
     ``resid`` (only rows where ``resid`` is valid are read; may be None for
     no regressors beyond the constant); ``mask`` (G, k) bool or None (all).
     Series with ``n <= 1 + k_used + nlags`` give NaN.
+
+    ``lag_set`` (e.g. 1..12 and 52) replaces ``1..nlags`` by any set of
+    lagged residuals; the statistic is then chi-square with ``len(lag_set)``
+    degrees of freedom (the model's own regressors are in the auxiliary
+    regression, so no degrees of freedom are subtracted for them).
+    ``lag_use`` (G, len(lag_set)) bool drops lagged residuals per series (the
+    degrees of freedom count the ones used).
     """
     nlags = int(nlags)
     if nlags < 1:
         raise ValueError("nlags must be >= 1")
+    use = np.arange(1, nlags + 1) if lag_set is None else np.asarray(lag_set, dtype=np.int64)
+    nlags = len(use)
     e = _as_panel(resid)
     valid, n = valid_mask(e)
     G, T = e.shape
@@ -223,16 +237,19 @@ def breusch_godfrey(
         m = np.broadcast_to(m, (G, Xo.shape[2]))
         # zero masked-out columns: their values never enter the fit
         Xo = Xo * m[:, None, :]
-    lagcols = np.stack([_shift(z, j) for j in range(1, nlags + 1)], axis=2)
+    lagcols = np.stack([_shift(z, int(j)) for j in use], axis=2)
+    lu = np.ones((G, nlags), dtype=bool) if lag_use is None else np.asarray(lag_use, dtype=bool)
+    lagcols = lagcols * lu[:, None, :]
     Xa = np.concatenate([Xo, lagcols], axis=2)
-    ma = np.concatenate([m, np.ones((G, nlags), dtype=bool)], axis=1)
+    ma = np.concatenate([m, lu], axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         res = ols.fit(Xa, z, valid.astype(np.float64), ma)
         r2 = res.r_squared
         lm = n * r2
     k_used = m.sum(axis=1)
-    lm = np.where(n > 1 + k_used + nlags, lm, np.nan)
-    df = np.full(G, float(nlags))
+    n_lag = lu.sum(axis=1)
+    lm = np.where((n > 1 + k_used + n_lag) & (n_lag > 0), lm, np.nan)
+    df = n_lag.astype(np.float64)
     return TestResult(lm, _chi2_sf(lm, df), df)
 
 
@@ -310,3 +327,161 @@ def _adjust(pvalues: np.ndarray, axis: int, method: str) -> np.ndarray:
     np.put_along_axis(out, order, adj, axis=-1)
     out = np.moveaxis(out, -1, axis)
     return out[0] if scalar else out
+
+
+# ----------------------------------------------------------------------------- subset AR models
+
+
+def acf_at(resid: np.ndarray, lags: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Residual autocorrelations at the given lags (any set, e.g. 1..12 and 52): ``(r (G, m), n (G,))``.
+
+    Same definition as :func:`residual_acf` (demeaned, denominator over all
+    ``n``); NaN where a lag is not below ``n``.
+    """
+    z, _, n = _demeaned(resid)
+    G, T = z.shape
+    denom = np.einsum("gt,gt->g", z, z)
+    lags = np.asarray(lags, dtype=np.int64)
+    r = np.full((G, len(lags)), np.nan)
+    ok = (n >= 2) & (denom > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for j, k in enumerate(lags):
+            k = int(k)
+            if k < 1 or k >= T:
+                continue
+            num = np.einsum("gt,gt->g", z[:, k:], z[:, :-k])
+            r[:, j] = np.where(ok & (k < n), num / np.where(denom > 0, denom, 1.0), np.nan)
+    return r, n
+
+
+def ar_autocovariance(phi: np.ndarray) -> np.ndarray:
+    """Autocovariances gamma(0..L) (G, L+1) of stationary AR processes with unit innovation variance.
+
+    Solves the Yule-Walker equations ``gamma(h) - sum_i phi_i gamma(|h - i|) = [h == 0]``,
+    h = 0..L (Brockwell & Davis 1991, Section 3.3). ``phi`` (G, L) holds lag j in column j-1.
+    """
+    phi = np.asarray(phi, dtype=np.float64)
+    G, L = phi.shape
+    h = np.arange(L + 1)
+    B = np.broadcast_to(np.eye(L + 1), (G, L + 1, L + 1)).copy()
+    for i in range(1, L + 1):
+        col = np.abs(h - i)  # one entry per row h: no repeated positions within a lag
+        B[:, h, col] -= phi[:, i - 1 : i]
+    rhs = np.zeros((G, L + 1))
+    rhs[:, 0] = 1.0
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        try:
+            return np.linalg.solve(B, rhs[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            out = np.full((G, L + 1), np.nan)
+            for g in range(G):  # only reached when some system is singular (a unit root)
+                try:
+                    out[g] = np.linalg.solve(B[g], rhs[g])
+                except np.linalg.LinAlgError:
+                    pass
+            return out
+
+
+def ar_residual_acf_cov(
+    coef: np.ndarray, lag_mask: np.ndarray, model_lags: np.ndarray, tested: np.ndarray
+) -> np.ndarray:
+    """Asymptotic covariance (times n) of the residual autocorrelations at lags ``tested`` of fitted AR models.
+
+    For residuals of an AR model with (possibly subset) lags ``J``, fitted by
+    least squares, ``r_hat ~ (I - X (X'X)^{-1} X') r`` where ``r`` are the
+    autocorrelations of the true innovations and ``X[k, j] = psi_{k - l_j}``
+    (psi the weights of ``1 / phi(B)``, zero at negative indices) for lags
+    ``k = 1, 2, ...``: Box & Pierce (1970), Section 3; McLeod (1978), JRSS B 40,
+    296-302. Each model lag ``l_j`` imposes one linear constraint
+    ``sum_k psi_{k - l_j} r_k = 0``; only the part of it that falls on the
+    tested lags reduces the tested autocorrelations' variance. Returns
+    ``A = I_m - X_L (X'X)^{-1} X_L'`` (G, m, m), ``X_L`` the rows of the
+    tested lags; ``X'X`` summed over all k is the AR autocovariance matrix
+    ``gamma(l_i - l_j)`` (unit innovation variance; :func:`ar_autocovariance`).
+    Non-stationary fits get NaN.
+
+    ``coef`` (G, K) and ``lag_mask`` (G, K) as in :class:`arflow.core.autoreg.ARFit`
+    (``model_lags`` its K candidate lags).
+    """
+    coef = np.nan_to_num(np.asarray(coef, dtype=np.float64))
+    mask = np.asarray(lag_mask, dtype=bool)
+    model_lags = np.asarray(model_lags, dtype=np.int64)
+    tested = np.asarray(tested, dtype=np.int64)
+    G, K = coef.shape
+    m = len(tested)
+    if K == 0 or not mask.any():
+        return np.broadcast_to(np.eye(m), (G, m, m)).copy()
+    L = int(model_lags.max())
+    phi = np.zeros((G, L))
+    phi[:, model_lags - 1] = coef * mask
+    gamma = ar_autocovariance(phi)  # (G, L+1)
+    diff = np.abs(model_lags[:, None] - model_lags[None, :])
+    XtX = gamma[:, diff] * (mask[:, :, None] & mask[:, None, :]) + np.eye(K)[None] * (~mask)[:, None, :]
+    # psi_0 .. psi_{max tested lag}
+    H = int(tested.max())
+    psi = np.zeros((G, H + 1))
+    psi[:, 0] = 1.0
+    for j in range(1, H + 1):
+        q = min(j, L)
+        psi[:, j] = np.einsum("gi,gi->g", phi[:, :q], psi[:, j - 1 :: -1][:, :q])
+    idx = tested[:, None] - model_lags[None, :]  # (m, K)
+    XL = np.where(idx[None] >= 0, psi[:, np.clip(idx, 0, H)], 0.0) * mask[:, None, :]
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        try:
+            sol = np.linalg.solve(XtX, np.swapaxes(XL, 1, 2))  # (G, K, m)
+        except np.linalg.LinAlgError:
+            sol = np.einsum("gkl,glm->gkm", np.linalg.pinv(XtX), np.swapaxes(XL, 1, 2))
+        A = np.eye(m)[None] - np.einsum("gmk,gkn->gmn", XL, sol)
+    ev = np.diagonal(A, axis1=1, axis2=2)
+    bad = ~(gamma[:, 0] > 0) | ~np.isfinite(A).all(axis=(1, 2)) | np.any(ev < -1e-8, axis=1) | np.any(ev > 1 + 1e-8, axis=1)
+    return np.where(bad[:, None, None], np.nan, A)
+
+
+def ljung_box_subset(
+    r: np.ndarray,
+    lags: np.ndarray,
+    nobs: np.ndarray,
+    cov: np.ndarray | None = None,
+    model_df: np.ndarray | int = 0,
+    use: np.ndarray | None = None,
+) -> TestResult:
+    """Ljung-Box statistic over any set of lags, for residuals of (subset) AR models.
+
+    ``Q = n (n + 2) sum_{k in lags} r_k^2 / (n - k)`` (Ljung & Box 1978).
+    Reference distribution: with ``cov`` (the ``A`` of
+    :func:`ar_residual_acf_cov`), ``Q`` is asymptotically ``sum lambda_i
+    chi2_1`` with ``lambda`` the eigenvalues of ``A``; it is referred to
+    ``a chi2_b`` with ``a = tr(A^2) / tr(A)`` and ``b = tr(A)^2 / tr(A^2)``
+    (Satterthwaite 1946: two moments matched). When the tested lags carry a
+    model lag's whole constraint, ``A`` is a projection and this is exactly
+    chi-square on ``m - (number of those model lags)`` degrees of freedom,
+    the usual ``h - p``; a model lag whose constraint falls on untested lags
+    (lag 52 when lags 1..12 are tested) removes nothing. ``df`` reports ``b``.
+    Series where ``cov`` is NaN fall back to ``m - model_df`` (floored at 1).
+    ``use`` (G, m) bool drops lags per series (e.g. a seasonal lag a short
+    series cannot estimate): their terms and their rows and columns of ``A``
+    are left out, and ``m`` counts the lags used.
+    """
+    lags = np.asarray(lags, dtype=np.float64)
+    n = np.asarray(nobs)
+    nf = n.astype(np.float64)
+    u = np.ones(r.shape, dtype=bool) if use is None else np.asarray(use, dtype=bool)
+    m = u.sum(axis=1).astype(np.float64)
+    r = np.where(u, r, 0.0)
+    if cov is not None:
+        cov = cov * (u[:, :, None] & u[:, None, :])
+    lag_max = np.max(np.where(u, lags[None, :], 0.0), axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        q = nf * (nf + 2.0) * np.sum(np.where(u, r * r / (nf[:, None] - lags[None, :]), 0.0), axis=1)
+        q = np.where((n > lag_max) & np.all(np.isfinite(r), axis=1) & (m > 0), q, np.nan)
+        md = np.broadcast_to(np.asarray(model_df, dtype=np.float64), n.shape)
+        a = np.ones(len(n))
+        b = np.maximum(m - md, 1.0)
+        if cov is not None:
+            tr = np.trace(cov, axis1=1, axis2=2)
+            tr2 = np.einsum("gij,gij->g", cov, cov)
+            good = np.isfinite(tr) & (tr2 > 0)
+            a = np.where(good, tr2 / np.where(good, tr, 1.0), a)
+            b = np.where(good, tr * tr / np.where(good, tr2, 1.0), b)
+        p = _chi2_sf(q / a, b)
+    return TestResult(q, p, b)

@@ -30,6 +30,7 @@ REASONS = (
     "worse_than_naive",
     "outlier",
     "interval_undercoverage",
+    "order_not_supported",
 )
 REASON_INDEX = {r: i for i, r in enumerate(REASONS)}
 
@@ -125,6 +126,10 @@ class GateInputs:
     coverage_statistic: np.ndarray | None = None  # backtest interval coverage (worst level)
     coverage_pvalue: np.ndarray | None = None  # one-sided binomial p-value of under-coverage
     coverage_alpha: float | None = None
+    order_unsupported: np.ndarray | None = None  # a fixed order the series cannot carry
+    selection_cut: np.ndarray | None = None  # fitted on fewer candidate orders than configured
+    order_cap: np.ndarray | None = None  # the largest order the series' sample could carry
+    max_order: int | None = None
 
 
 def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off", coverage_mode: str = "off") -> GateOutcome:
@@ -165,7 +170,14 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
     short = (x.n < gates.min_observations) & ~no_data
     b.add("min_observations", ~short, statistic=x.n, threshold=gates.min_observations, reason="too_short")
     # a series long enough for the gate but not for its model
-    b.flag("fit_failed", ~x.fitted & ~short & ~no_data & ~const)
+    unsupported = np.zeros(G, dtype=bool) if x.order_unsupported is None else np.asarray(x.order_unsupported, bool)
+    b.flag("fit_failed", ~x.fitted & ~short & ~no_data & ~const & ~unsupported)
+    # a fixed order longer than the series can carry: flagged, never refitted at another order
+    b.flag("order_not_supported", unsupported & ~short & ~no_data & ~const)
+    if x.selection_cut is not None:
+        # recorded, never quarantines: the order was chosen among fewer candidates than configured
+        b.add("order_candidates", ~np.asarray(x.selection_cut, bool), statistic=x.order_cap,
+              threshold=np.nan if x.max_order is None else x.max_order, applies=x.fitted)
 
     fitted = x.fitted
     if unit_root_policy == "quarantine":

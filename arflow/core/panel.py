@@ -27,6 +27,10 @@ CONSTANT = 16
 ENDS_BEFORE_AS_OF = 32
 NO_DATA = 64
 
+#: a series whose range is at most this share of its largest absolute value is constant
+#: (about 4,500 float64 rounding units: only rounding noise, at any scale)
+CONSTANT_RELATIVE_RANGE = 1e-12
+
 QUALITY_FLAG_NAMES: dict[int, str] = {
     DUPLICATE_PERIODS: "duplicate_periods",
     INTERNAL_GAPS: "internal_gaps",
@@ -185,6 +189,7 @@ def build_panel(
         with np.errstate(invalid="ignore"):
             hi = np.nanmax(np.where(np.isnan(panel), -np.inf, panel), axis=1)
             lo = np.nanmin(np.where(np.isnan(panel), np.inf, panel), axis=1)
-        const = has_f & (n >= 2) & (hi - lo <= 1e-12 * np.maximum(1.0, np.abs(hi)))
+        # scale-free: the range relative to the series' magnitude (an all-zero series is constant)
+        const = has_f & (n >= 2) & (hi - lo <= CONSTANT_RELATIVE_RANGE * np.maximum(np.abs(hi), np.abs(lo)))
         flags[const] |= CONSTANT
     return Panel(panel, n, first, last, flags, int(as_of))
