@@ -218,7 +218,8 @@ def _cmd_validate(args: argparse.Namespace, reporter: _Reporter) -> int:
     if reporter.json:
         reporter.emit({"event": "valid", "job": report.job, "source": report.source, "columns": dict(report.columns),
                        "rows": report.rows, "series": report.series, "first_period": report.first_period,
-                       "latest_period": report.latest_period, "target": report.target, "target_status": report.target_status})
+                       "latest_period": report.latest_period, "target": report.target, "target_status": report.target_status,
+                       "notes": list(report.notes)})
     else:
         cols = ", ".join(f"{n} {t}" for n, t in report.columns)
         reporter.out.write(
