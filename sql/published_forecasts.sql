@@ -26,7 +26,11 @@ with_forecasts AS (
     SELECT s.run_id, s.job, s.as_of, ${s_key_list}
     FROM ${schema}.series_status AS s
     WHERE s.decision = 'published'
-       OR EXISTS (SELECT 1 FROM ${schema}.forecasts AS k WHERE k.step = 1 AND k.run_id = s.run_id AND ${ks_key_join})
+    UNION ALL
+    SELECT s.run_id, s.job, s.as_of, ${s_key_list}
+    FROM ${schema}.series_status AS s
+    SEMI JOIN (SELECT * FROM ${schema}.forecasts WHERE step = 1) AS k ON k.run_id = s.run_id AND ${ks_key_join}
+    WHERE s.decision <> 'published' AND s.on_failure = 'keep-previous'
 ),
 last_published AS (
     SELECT run_id, job, as_of, ${key_list}
@@ -50,15 +54,21 @@ visible AS (
     LEFT JOIN ${schema}.job_policy AS pol ON pol.job = p.job
     WHERE l.decision = 'published' OR l.on_failure = 'keep-previous'
 ),
-candidate AS (
-    SELECT v.run_id, v.job, v.as_of, v.stale, v.arflow_latest__, v.arflow_limit__,
-           ${age} AS arflow_age__,
-           max(f.period) OVER (PARTITION BY f.run_id, ${f_key_list}) AS arflow_last__,
-           f.* EXCLUDE (run_id)
+live AS (
+    -- stale forecasts that have not expired (the few rows the expiry rule needs to look at)
+    SELECT v.run_id, ${v_key_list}
     FROM visible AS v
     JOIN ${schema}.forecasts AS f ON f.run_id = v.run_id AND ${f_key_join}
+    WHERE v.stale AND (v.arflow_limit__ IS NULL OR ${age} <= v.arflow_limit__)
+    GROUP BY v.run_id, ${v_key_list}, v.arflow_latest__
+    HAVING max(f.period) > v.arflow_latest__
+),
+shown AS (
+    SELECT run_id, job, as_of, stale, ${key_list} FROM visible WHERE NOT stale
+    UNION ALL
+    SELECT v.run_id, v.job, v.as_of, v.stale, ${v_key_list}
+    FROM visible AS v SEMI JOIN live AS x ON x.run_id = v.run_id AND ${xv_key_join}
 )
-SELECT * EXCLUDE (arflow_latest__, arflow_limit__, arflow_age__, arflow_last__)
-FROM candidate
-WHERE NOT stale
-   OR (arflow_last__ > arflow_latest__ AND (arflow_limit__ IS NULL OR arflow_age__ <= arflow_limit__));
+SELECT v.run_id, v.job, v.as_of, v.stale, f.* EXCLUDE (run_id)
+FROM shown AS v
+JOIN ${schema}.forecasts AS f ON f.run_id = v.run_id AND ${f_key_join};

@@ -126,6 +126,8 @@ def render_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ...] 
         f_key_join=" AND ".join(f"f.{k} = v.{k}" for k in keys),
         s_key_list=", ".join(f"s.{k}" for k in keys),
         f_key_list=", ".join(f"f.{k}" for k in keys),
+        v_key_list=", ".join(f"v.{k}" for k in keys),
+        xv_key_join=" AND ".join(f"x.{k} = v.{k}" for k in keys),
         ks_key_join=" AND ".join(f"k.{k} = s.{k}" for k in keys),
         age=_age_sql(layout.period_type),
     )
