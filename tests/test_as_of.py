@@ -84,6 +84,7 @@ def sql(database: Path, query: str) -> list[tuple]:
     ("quarter", None, "end", D(2026, 5, 20), False, D(2026, 3, 31)),
     ("quarter", None, "end", D(2026, 6, 30), False, D(2026, 6, 30)),
     ("year", None, "start", D(2026, 5, 20), False, D(2026, 1, 1)),
+    ("day", None, "start", D(2026, 5, 20), False, D(2026, 5, 20)),
 ])
 def test_calendar_places_an_as_of_on_the_label(frequency, weekday, anchor, given, whole_month, want) -> None:
     cal = SourceCalendar(frequency, "DATE", None, weekday, anchor)
@@ -210,3 +211,14 @@ def test_null_periods_are_named_with_examples(tmp_path: Path, capsys) -> None:
     assert main(["validate", str(job)]) == 3
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "2 row(s) with a NULL period" in err and "site=s04 at None" in err
+
+
+def test_day_timestamps_go_to_midnight_and_huge_steps_are_refused(tmp_path: Path) -> None:
+    cal = SourceCalendar("day", "TIMESTAMP", None)
+    assert cal.place(dt.datetime(2026, 5, 20, 13, 30)) == dt.datetime(2026, 5, 20)
+    frame = pl.DataFrame({"site": ["a"] * 5, "t": list(range(1, 6)), "reading": [1.0, 2.0, 3.0, 2.0, 1.0]})
+    with source_over(tmp_path, frame, "t", "step") as src:
+        assert src.place_as_of("4")[0] == 4
+        with pytest.raises(Exception) as info:
+            src.place_as_of("99999999999999999999")
+        assert getattr(info.value, "exit_code", None) == 2 and "out of range" in str(info.value)

@@ -105,10 +105,12 @@ class SourceCalendar:
     def place(self, value: Any, whole_month: bool = False) -> Any:
         """``value`` moved onto the label of its period (see :meth:`DuckDBSource.place_as_of`)."""
         f = self.frequency
-        if f in ("step", "day") or value is None:
+        if f == "step" or value is None:
             return value
         day = value.date() if isinstance(value, dt.datetime) else value
-        if f == "week":
+        if f == "day":
+            pass  # a day's label is its date (a timestamp goes to its midnight)
+        elif f == "week":
             day = day - dt.timedelta(days=(day.weekday() - (self.weekday or 0)) % 7)
         else:
             months = {"month": 1, "quarter": 3, "year": 12}[f]
