@@ -146,8 +146,8 @@ def test_retract_removes_the_lakehouse_run_too(tmp_path: Path, capsys) -> None:
 # ------------------------------------------------------------------------------------ re-runs
 
 def broken(frame: pl.DataFrame, last: dt.date) -> pl.DataFrame:
-    """An upstream double-load: every row of the month ``last`` twice."""
-    return pl.concat([frame, frame.filter(pl.col("month") == last)])
+    """An upstream double-load: every row of the month ``last`` twice, the second copy with other values."""
+    return pl.concat([frame, frame.filter(pl.col("month") == last).with_columns(pl.col("reading") * 1.5)])
 
 
 def test_rerun_on_a_double_loaded_source_leaves_the_view_as_it_was(tmp_path: Path, capsys) -> None:
