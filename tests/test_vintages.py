@@ -254,3 +254,39 @@ def test_lakehouse_view_matches_duckdb_with_kept_and_held_runs(tmp_path: Path, c
         "SELECT * FROM arflow.published_forecasts ORDER BY job, site, step").to_arrow_table())
     assert lake.select(duck.columns).equals(duck)
     assert lake.filter(pl.col("site") == "s01")["stale"].to_list() == [True] * 6
+
+
+def test_retracting_an_older_vintage_keeps_the_current_one(tmp_path: Path, capsys) -> None:
+    job = make_job(tmp_path)
+    db = tmp_path / "warehouse.duckdb"
+    for as_of in ("2026-10", "2026-11", "2026-12"):
+        assert run(job, "--as-of", as_of) == 0
+    published = view(db)
+    capsys.readouterr()
+    assert main(["retract", str(job), "--as-of", "2026-11", "--yes", "--log-format", "json"]) == 0
+    (event,) = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert event["event"] == "retract" and event["run_id"] == "meters@2026-11-01" and event["rows"]["runs"] == 1
+    assert view(db) == published
+    assert sql(db, "SELECT run_id FROM arflow.runs ORDER BY 1") == [("meters@2026-10-01",), ("meters@2026-12-01",)]
+    for table in ("series_status", "models", "gates", "forecasts", "backtests", "vintages"):
+        assert sql(db, f"SELECT count(*) FROM arflow.{table} WHERE run_id = 'meters@2026-11-01'") == [(0,)]
+    assert sql(db, "SELECT count(*) FROM arflow.accuracy WHERE run_id = 'meters@2026-11-01' OR recorded_by = 'meters@2026-11-01'") == [(0,)]
+
+
+def test_lakehouse_only_job_lists_and_retracts(tmp_path: Path, capsys) -> None:
+    mixed_panel().write_parquet(tmp_path / "src.parquet")
+    sections = default_job()
+    sections["source"] = {"parquet": "src.parquet", "keys": ["site"], "period": "month", "value": "reading", "frequency": "month"}
+    sections["publish"] = {"lakehouse": "lake"}  # no DuckDB target at all
+    path = tmp_path / "job.toml"
+    path.write_text(job_toml(sections), encoding="utf-8")
+    assert run(path, "--as-of", "2026-11") == 0
+    assert run(path, "--as-of", "2026-12") == 0
+    capsys.readouterr()
+    assert main(["vintages", str(path), "--log-format", "json"]) == 0
+    rows = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert [(r["as_of"], r["current"]) for r in rows] == [("2026-11-01", False), ("2026-12-01", True)]
+    assert main(["retract", str(path), "--as-of", "2026-12", "--yes"]) == 0
+    capsys.readouterr()
+    assert parquet_store.committed_runs(tmp_path / "lake")["as_of"].to_list() == ["2026-11-01"]
+    assert (tmp_path / "lake" / "arflow" / "_removals.jsonl").exists()
