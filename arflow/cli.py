@@ -167,7 +167,8 @@ def _summary(outcome: Any) -> str:
         head,
         row("series read", f"{outcome.series_total:,}",
             f"({outcome.rows_read:,} rows, {outcome.chunks} chunk{'s' if outcome.chunks != 1 else ''})"),
-        row("would publish" if outcome.dry_run else "published", f"{outcome.series_published:,}"),
+        row("would publish" if outcome.dry_run else ("passed (held back)" if getattr(outcome, "held", False) else "published"),
+            f"{outcome.series_published:,}"),
         row("would quarantine" if outcome.dry_run else "quarantined", f"{outcome.series_quarantined:,}",
             f"({100 * outcome.quarantine_share:.1f}% of series; alarm above {100 * outcome.max_quarantine_share:g}%)"),
     ]
