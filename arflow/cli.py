@@ -81,7 +81,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.set_defaults(handler=_cmd_run)
     _add_vintage_commands(sub, common)
 
-    val = sub.add_parser("validate", help="check the job file and the source (columns, types) without fitting")
+    val = sub.add_parser("validate", help="check what run checks before fitting (job file, columns, types, NULLs, calendar, as-of guards)")
     val.add_argument("job_file", metavar="JOB.toml", help="the job file")
     common(val)
     val.set_defaults(handler=_cmd_validate)
