@@ -290,3 +290,27 @@ def test_lakehouse_only_job_lists_and_retracts(tmp_path: Path, capsys) -> None:
     capsys.readouterr()
     assert parquet_store.committed_runs(tmp_path / "lake")["as_of"].to_list() == ["2026-11-01"]
     assert (tmp_path / "lake" / "arflow" / "_removals.jsonl").exists()
+
+
+def test_retract_on_a_terminal_asks_for_the_as_of(tmp_path: Path, capsys) -> None:
+    import os
+    import pty
+    import subprocess
+    import sys
+
+    job = make_job(tmp_path)
+    for as_of in ("2026-11", "2026-12"):
+        assert run(job, "--as-of", as_of) == 0
+    capsys.readouterr()
+    db = tmp_path / "warehouse.duckdb"
+    for answer, code, left in (("no\n", 2, 2), ("2026-12\n", 0, 1)):
+        leader, follower = pty.openpty()
+        proc = subprocess.Popen([sys.executable, "-m", "arflow", "retract", str(job), "--as-of", "2026-12"],
+                                stdin=follower, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        os.close(follower)
+        os.write(leader, answer.encode())
+        out, err = proc.communicate(timeout=120)
+        os.close(leader)
+        assert proc.returncode == code, err
+        assert "type the as-of to confirm" in err
+        assert sql(db, "SELECT count(*) FROM arflow.runs") == [(left,)]
