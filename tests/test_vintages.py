@@ -18,7 +18,7 @@ from arflow.warehouse import parquet_store
 
 #: columns that hold wall-clock times (and runs.source, the source path): two targets that ran the same vintages
 #: from two folders differ only there
-TIME_COLUMNS = {"started_at", "finished_at", "duration_seconds", "published_at", "seconds", "source"}
+TIME_COLUMNS = {"started_at", "finished_at", "duration_seconds", "published_at", "seconds", "source", "created_at"}
 
 
 def make_job(folder: Path, frame: pl.DataFrame | None = None, **publish: object) -> Path:
