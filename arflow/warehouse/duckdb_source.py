@@ -59,7 +59,7 @@ def first_line(exc: BaseException) -> str:
 
 
 #: largest |step| accepted as an as-of (period arithmetic stays far from the int64 limit)
-STEP_LIMIT = 10**15
+STEP_LIMIT = 2**53
 _WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
 
 
@@ -333,7 +333,10 @@ class DuckDBSource:
             if ptype == "BIGINT":
                 value = int(text)
                 if abs(value) > STEP_LIMIT:
-                    raise SettingsError(f"--as-of {text[:40]!r} is out of range; use a step period within +/-{STEP_LIMIT:,}")
+                    raise SettingsError(
+                        f"--as-of: as-of period {text[:40]} is out of range for integer periods "
+                        f"(at most +-2**53 = {STEP_LIMIT}); use a period inside the source's range"
+                    )
                 return value
             if re.fullmatch(r"\d{4}-\d{2}", text):
                 text += "-01"
