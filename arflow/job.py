@@ -133,10 +133,15 @@ DEFAULT_PERIODS_AHEAD = {"day": 366, "week": 53, "month": 12, "quarter": 4, "yea
 
 
 def _previous_vintage(spec: JobSpec, strict: bool) -> Any:
-    """The job's latest vintage in its target, read before the source is opened (they may be one file)."""
+    """The job's latest vintage in its target, read before the source is opened (they may be one file).
+
+    A target locked by another process gives None here: the lock is reported
+    by the target checks, and the publishing transaction checks the far-ahead
+    guard again.
+    """
     from .warehouse.vintages import latest_vintage
 
-    return latest_vintage(spec, strict=strict)
+    return latest_vintage(spec, strict=False)
 
 
 def place_as_of(
@@ -172,8 +177,7 @@ def place_as_of(
                 f"--as-of {_iso(value)} is after the latest period in the source, {_iso(latest)}; use an as-of at or "
                 "before it, or add --allow-beyond-data to write such a vintage deliberately"
             )
-    limit = spec.publish.max_periods_ahead
-    limit = DEFAULT_PERIODS_AHEAD[freq] if limit is None else limit
+    limit = _jump_limit(spec)
     if previous is not None and value > previous and not allow_jump:
         gap = periods_between(freq, previous, value)
         if gap > limit:
@@ -188,6 +192,12 @@ def place_as_of(
                 "or add --allow-jump to write it deliberately"
             )
     return value, notes
+
+
+def _jump_limit(spec: JobSpec) -> int:
+    """``[publish] max_periods_ahead``, or the frequency's default."""
+    limit = spec.publish.max_periods_ahead
+    return DEFAULT_PERIODS_AHEAD[spec.settings.frequency] if limit is None else limit
 
 
 def _iso(value: Any) -> str:
@@ -281,6 +291,7 @@ def run_job(
                 config_sha256=spec.config_sha256, arflow_version=arflow_version(),
                 reason_counts=summary.reason_counts, held=held,
                 stale_after_periods=spec.publish.stale_after_periods,
+                jump_limit=None if allow_jump else _jump_limit(spec),
             )
             # lakehouse: files first (invisible), then the DuckDB transaction, then the lakehouse commit marker
             staged = None

@@ -222,3 +222,21 @@ def test_day_timestamps_go_to_midnight_and_huge_steps_are_refused(tmp_path: Path
         with pytest.raises(Exception) as info:
             src.place_as_of("99999999999999999999")
         assert getattr(info.value, "exit_code", None) == 2 and "out of range" in str(info.value)
+
+
+def test_the_far_ahead_guard_holds_inside_the_transaction_too(tmp_path: Path, capsys, monkeypatch) -> None:
+    # as if the target had been locked while the job looked (the early check then skips); the publish checks again
+    job = monthly_job(tmp_path)
+    db = tmp_path / "warehouse.duckdb"
+    assert main(["run", str(job), "--as-of", "2026-12"]) == 0
+    stray = pl.DataFrame({"site": ["s03"], "month": [D(2031, 1, 1)], "reading": [1.0]})
+    write_table(db, pl.concat([mixed_panel(), stray]))
+    before = warehouse_state(db)
+    import arflow.job
+
+    monkeypatch.setattr(arflow.job, "_previous_vintage", lambda spec, strict: None)
+    capsys.readouterr()
+    assert main(["run", str(job), "--allow-beyond-data"]) == 3
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "more than publish.max_periods_ahead = 12" in err and "nothing was published" in err
+    assert warehouse_state(db) == before

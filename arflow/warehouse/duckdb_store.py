@@ -83,6 +83,8 @@ class RunRecord:
     held: bool = False
     #: [publish] stale_after_periods (None: kept forecasts expire only when all their periods are past)
     stale_after_periods: int | None = None
+    #: refuse (inside the transaction) a vintage more than this many periods after the job's latest one (None: no check)
+    jump_limit: int | None = None
 
 
 def _fault_point(name: str) -> None:
@@ -241,6 +243,7 @@ class DuckDBStore:
                 f"SELECT max(attempt) FROM {self._schema}.runs WHERE run_id = ?", [record.run_id]
             ).fetchone() or (None,)
             attempt = int(previous or 0) + 1
+            self._check_jump(con, record)
             held = record.held
             # a held run replaces the vintage's records but not what the view reads (series_status, forecasts)
             untouched = ("series_status", "forecasts", "accuracy") if held else ()
@@ -310,6 +313,25 @@ class DuckDBStore:
             f"(SELECT 1 FROM {models} AS m WHERE m.decision <> 'published' AND {same})",
             [record.run_id],
         )
+
+    def _check_jump(self, con: duckdb.DuckDBPyConnection, record: RunRecord) -> None:
+        """The far-ahead guard again, inside the transaction (the job checked it before fitting)."""
+        if record.jump_limit is None:
+            return
+        from .duckdb_source import periods_between
+
+        (latest,) = con.execute(
+            f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = ?", [record.job]
+        ).fetchone() or (None,)
+        if latest is None or not record.as_of > latest:
+            return
+        gap = periods_between(record.frequency, latest, record.as_of)
+        if gap > record.jump_limit:
+            raise PublishError(
+                f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
+                f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
+                "(add --allow-jump to write it deliberately)"
+            )
 
     def _write_policy(self, con: duckdb.DuckDBPyConnection, record: RunRecord) -> None:
         """The job's row of ``job_policy`` (what the view's expiry rule reads)."""
