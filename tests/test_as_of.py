@@ -83,6 +83,9 @@ def sql(database: Path, query: str) -> list[tuple]:
     ("quarter", None, "start", D(2026, 5, 20), False, D(2026, 4, 1)),
     ("quarter", None, "end", D(2026, 5, 20), False, D(2026, 3, 31)),
     ("quarter", None, "end", D(2026, 6, 30), False, D(2026, 6, 30)),
+    ("quarter", None, "end", D(2026, 6, 1), True, D(2026, 6, 30)),   # --as-of 2026-06: June ends Q2
+    ("quarter", None, "end", D(2026, 5, 1), True, D(2026, 3, 31)),   # --as-of 2026-05: Q2 not complete
+    ("quarter", None, "start", D(2026, 5, 1), True, D(2026, 4, 1)),
     ("year", None, "start", D(2026, 5, 20), False, D(2026, 1, 1)),
     ("day", None, "start", D(2026, 5, 20), False, D(2026, 5, 20)),
 ])

@@ -118,8 +118,10 @@ class SourceCalendar:
             if self.anchor == "start":
                 day = dt.date(day.year, first, 1)
             else:
+                if whole_month:  # YYYY-MM text: the whole month counts, so its last day
+                    day = _month_end(day.year, day.month)
                 end = _month_end(day.year, first + months - 1)
-                if not (whole_month or day == end):
+                if day != end:
                     prev = dt.date(day.year, first, 1) - dt.timedelta(days=1)
                     end = _month_end(prev.year, prev.month)
                 day = end
