@@ -1,15 +1,20 @@
-"""Command line: ``arflow run | validate | demo``.
+"""Command line: ``arflow run | validate | demo | vintages | retract``.
 
 Exit codes: 0 success; 1 unexpected internal error; 2 job-file or usage
 error; 3 source, data or target error (including a locked target); 4 the
 share of quarantined series is over ``gates.max_quarantine_share`` (results
-were still written).
+were still written; with ``publish.hold_on_alarm`` the published view was
+left as it was). A closed standard output (a pipe to ``head``) does not stop
+a run: output stops, the run completes (or rolls back) and exits with its own
+code.
 """
 
 from __future__ import annotations
 
 import argparse
 import datetime as dt
+import errno
+import io
 import json
 import os
 import signal
@@ -33,7 +38,10 @@ EPILOG = """exit codes:
   1  unexpected internal error (a bug: please report it)
   2  job-file or usage error
   3  source, data or target error (also: target in use by another run)
-  4  quarantined share over gates.max_quarantine_share (results still written)
+  4  quarantined share over gates.max_quarantine_share (results still written;
+     the published view is held as it was unless publish.hold_on_alarm = false)
+a closed stdout (e.g. piped to head) does not stop a run: it completes or rolls
+back and exits with its own code.
 """
 
 
@@ -67,10 +75,15 @@ def build_parser() -> argparse.ArgumentParser:
                      help="run as of an earlier period (re-runs, backfills), e.g. 2024-06-01 or 2024-06; "
                           "default: the latest period in the source")
     run.add_argument("--dry-run", action="store_true", help="compute and report, write nothing")
+    run.add_argument("--allow-beyond-data", action="store_true",
+                     help="allow an --as-of after the latest period in the source (a vintage with no new data)")
+    run.add_argument("--allow-jump", action="store_true",
+                     help="allow a vintage more than publish.max_periods_ahead periods after the job's latest one")
     common(run)
     run.set_defaults(handler=_cmd_run)
+    _add_vintage_commands(sub, common)
 
-    val = sub.add_parser("validate", help="check the job file and the source (columns, types) without fitting")
+    val = sub.add_parser("validate", help="check what run checks before fitting (job file, columns, types, NULLs, calendar, as-of guards)")
     val.add_argument("job_file", metavar="JOB.toml", help="the job file")
     common(val)
     val.set_defaults(handler=_cmd_validate)
@@ -156,7 +169,8 @@ def _summary(outcome: Any) -> str:
         head,
         row("series read", f"{outcome.series_total:,}",
             f"({outcome.rows_read:,} rows, {outcome.chunks} chunk{'s' if outcome.chunks != 1 else ''})"),
-        row("would publish" if outcome.dry_run else "published", f"{outcome.series_published:,}"),
+        row("would publish" if outcome.dry_run else ("passed (held back)" if getattr(outcome, "held", False) else "published"),
+            f"{outcome.series_published:,}"),
         row("would quarantine" if outcome.dry_run else "quarantined", f"{outcome.series_quarantined:,}",
             f"({100 * outcome.quarantine_share:.1f}% of series; alarm above {100 * outcome.max_quarantine_share:g}%)"),
     ]
@@ -181,7 +195,8 @@ def _finish(outcome: Any, reporter: _Reporter) -> int:
         reporter.err.write(
             f"arflow: alarm: {100 * outcome.quarantine_share:.1f}% of series were quarantined, over "
             f"gates.max_quarantine_share = {outcome.max_quarantine_share:g}; "
-            f"{'nothing was written (dry run)' if outcome.dry_run else 'results were written'}\n"
+            f"{'nothing was written (dry run)' if outcome.dry_run else 'results were written'}"
+            f"{'; published_forecasts was left as it was (publish.hold_on_alarm)' if getattr(outcome, 'held', False) else ''}\n"
         )
         return EXIT_ALARM
     return EXIT_OK
@@ -192,7 +207,8 @@ def _cmd_run(args: argparse.Namespace, reporter: _Reporter) -> int:
     from .job_file import load_job
 
     spec = load_job(args.job_file)
-    outcome = run_job(spec, as_of=args.as_of, dry_run=args.dry_run, on_event=reporter)
+    outcome = run_job(spec, as_of=args.as_of, dry_run=args.dry_run, on_event=reporter,
+                      allow_beyond_data=args.allow_beyond_data, allow_jump=args.allow_jump)
     return _finish(outcome, reporter)
 
 
@@ -205,7 +221,8 @@ def _cmd_validate(args: argparse.Namespace, reporter: _Reporter) -> int:
     if reporter.json:
         reporter.emit({"event": "valid", "job": report.job, "source": report.source, "columns": dict(report.columns),
                        "rows": report.rows, "series": report.series, "first_period": report.first_period,
-                       "latest_period": report.latest_period, "target": report.target, "target_status": report.target_status})
+                       "latest_period": report.latest_period, "target": report.target, "target_status": report.target_status,
+                       "notes": list(report.notes)})
     else:
         cols = ", ".join(f"{n} {t}" for n, t in report.columns)
         reporter.out.write(
@@ -214,6 +231,7 @@ def _cmd_validate(args: argparse.Namespace, reporter: _Reporter) -> int:
             f"{_fmt_period(report.first_period)} to {_fmt_period(report.latest_period)}\n"
             f"  columns  {cols}\n"
             f"  target   {report.target}: {report.target_status}\n"
+            + "".join(f"  note     {n}\n" for n in report.notes)
         )
     return EXIT_OK
 
@@ -248,8 +266,8 @@ def _interrupted_by_signal() -> bool:
 
 def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextIO | None = None) -> int:
     """Run the command line; returns the exit code."""
-    out = out or sys.stdout
-    err = err or sys.stderr
+    out = _PipeSafe(out or sys.stdout)
+    err = _PipeSafe(err or sys.stderr)
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
@@ -288,6 +306,147 @@ def _signal_name(signum: int | None) -> str:
         return signal.Signals(signum).name if signum is not None else "a signal"
     except ValueError:
         return f"signal {signum}"
+
+
+class _PipeSafe:
+    """A text stream that survives its reader going away (``arflow ... | head``).
+
+    On a broken pipe it stops writing (the rest of the output is dropped, the
+    run goes on to commit or roll back) and points the process's own file
+    descriptor at the null device, so nothing fails when Python flushes at exit.
+    """
+
+    def __init__(self, stream: TextIO) -> None:
+        self._stream = stream
+        self.closed_by_reader = False
+
+    def write(self, text: str) -> int:
+        if not self.closed_by_reader:
+            try:
+                return self._stream.write(text)
+            except (BrokenPipeError, ValueError):
+                self._gone()
+            except OSError as exc:
+                if exc.errno not in (errno.EPIPE, errno.EINVAL):
+                    raise
+                self._gone()
+        return len(text)
+
+    def flush(self) -> None:
+        if not self.closed_by_reader:
+            try:
+                self._stream.flush()
+            except (BrokenPipeError, ValueError):
+                self._gone()
+            except OSError as exc:
+                if exc.errno not in (errno.EPIPE, errno.EINVAL):
+                    raise
+                self._gone()
+
+    def isatty(self) -> bool:
+        try:
+            return bool(self._stream.isatty())
+        except (ValueError, OSError):
+            return False
+
+    def _gone(self) -> None:
+        self.closed_by_reader = True
+        try:
+            fd = self._stream.fileno()
+        except (AttributeError, ValueError, OSError, io.UnsupportedOperation):
+            return
+        try:
+            null = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(null, fd)
+            os.close(null)
+        except OSError:
+            pass
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._stream, name)
+
+
+# -- vintages -----------------------------------------------------------------
+
+def _add_vintage_commands(sub: Any, common: Any) -> None:
+    lst = sub.add_parser("vintages", help="list a job's vintages: as-of, attempts, status, counts, when published")
+    lst.add_argument("job_file", metavar="JOB.toml", help="the job file")
+    common(lst)
+    lst.set_defaults(handler=_cmd_vintages)
+    ret = sub.add_parser(
+        "retract", help="remove one vintage from every table of the job's target (atomic, audited)",
+        description="Remove one vintage of a job from every table of its target in one transaction, and record "
+                    "who removed it in the table vintage_removals. The previous vintage becomes current again.",
+    )
+    ret.add_argument("job_file", metavar="JOB.toml", help="the job file")
+    ret.add_argument("--as-of", metavar="PERIOD", required=True, help="the vintage to remove, as listed by 'arflow vintages'")
+    ret.add_argument("--dry-run", action="store_true", help="show what would be removed, change nothing")
+    ret.add_argument("--yes", action="store_true", help="confirm without a prompt (needed when not on a terminal)")
+    common(ret)
+    ret.set_defaults(handler=_cmd_retract)
+
+
+def _cmd_vintages(args: argparse.Namespace, reporter: _Reporter) -> int:
+    from .job_file import load_job
+    from .warehouse.vintages import list_vintages
+
+    spec = load_job(args.job_file)
+    found = list_vintages(spec)
+    if reporter.json:
+        for v in found:
+            reporter.emit({"event": "vintage", "job": spec.name, "as_of": v.as_of, "run_id": v.run_id,
+                           "attempts": v.attempts, "status": v.status, "series_total": v.series_total,
+                           "series_published": v.series_published, "series_quarantined": v.series_quarantined,
+                           "visible": v.visible, "published_at": v.published_at, "current": v.current})
+        return EXIT_OK
+    if not found:
+        reporter.out.write(f"arflow: job {spec.name} has no vintages in its target yet\n")
+        return EXIT_OK
+    head = f"{'as of':<20}{'attempts':>9}  {'status':<7}{'series':>9}{'published':>10}{'quarantined':>12}{'in view':>9}  published at (UTC)"
+    lines = [f"vintages of job {spec.name} (* = current in published_forecasts)", head]
+    for v in found:
+        when = v.published_at.isoformat(sep=" ", timespec="seconds") if v.published_at else "-- (held; view unchanged)"
+        shown = "--" if v.visible < 0 else f"{v.visible:,}"
+        lines.append(f"{_fmt_period(v.as_of) + (' *' if v.current else ''):<20}{v.attempts:>9}  {v.status:<7}"
+                     f"{v.series_total:>9,}{v.series_published:>10,}{v.series_quarantined:>12,}{shown:>9}  {when}")
+    reporter.out.write("\n".join(lines) + "\n")
+    return EXIT_OK
+
+
+def _cmd_retract(args: argparse.Namespace, reporter: _Reporter) -> int:
+    from .job_file import load_job
+    from .warehouse.vintages import remove_vintage
+
+    spec = load_job(args.job_file)
+    plan = remove_vintage(spec, args.as_of, dry_run=True)
+    if not args.dry_run and not args.yes:
+        if not sys.stdin.isatty():
+            reporter.err.write(
+                f"arflow: error: retract removes vintage {_fmt_period(plan.as_of)} of job {spec.name} "
+                f"({plan.total_rows:,} rows); add --yes to confirm (or --dry-run to look first)\n"
+            )
+            return EXIT_USAGE
+        reporter.err.write(f"remove vintage {_fmt_period(plan.as_of)} of job {spec.name} ({plan.total_rows:,} rows)? "
+                           "type the as-of to confirm: ")
+        reporter.err.flush()
+        if sys.stdin.readline().strip() not in (args.as_of.strip(), _fmt_period(plan.as_of)):
+            reporter.err.write("arflow: not confirmed; nothing was removed\n")
+            return EXIT_USAGE
+    report = plan if args.dry_run else remove_vintage(spec, args.as_of)
+    if reporter.json:
+        reporter.emit({"event": "retract", "job": report.job, "as_of": report.as_of, "run_id": report.run_id,
+                       "dry_run": report.dry_run, "rows": report.rows, "lakehouse_files": report.lakehouse_files,
+                       "removed_by": report.removed_by})
+        return EXIT_OK
+    verb = "would remove" if report.dry_run else "removed"
+    lines = [f"arflow: {verb} vintage {_fmt_period(report.as_of)} of job {report.job} (run id {report.run_id})"]
+    lines += [f"  {table:<28}{n:>10,} rows" for table, n in report.rows.items()]
+    if report.lakehouse_files:
+        lines.append(f"  {'lakehouse files':<28}{report.lakehouse_files:>10,}")
+    lines.append("  nothing was changed (dry run)" if report.dry_run
+                 else f"  recorded in vintage_removals (by {report.removed_by})")
+    reporter.out.write("\n".join(lines) + "\n")
+    return EXIT_OK
 
 
 def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:

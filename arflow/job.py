@@ -21,7 +21,7 @@ import polars as pl
 
 from . import api
 from .allocator import tune_for_batch
-from .errors import SourceError
+from .errors import SettingsError, SourceError
 from .job_file import JobSpec, load_job
 from .runtime import bind_to_parent, stop_pool
 from .settings import coverage_label
@@ -55,6 +55,8 @@ class JobOutcome:
     attempt: int | None = None
     notes: tuple[str, ...] = ()
     phase_seconds: dict[str, float] = field(default_factory=dict)
+    #: the run was over the alarm level and [publish] hold_on_alarm kept the published view as it was
+    held: bool = False
 
     @property
     def alarm(self) -> bool:
@@ -78,10 +80,14 @@ class ValidationReport:
     notes: tuple[str, ...] = field(default_factory=tuple)
 
 
+#: the project's distribution name on package indexes (the import package and the command are ``arflow``)
+DISTRIBUTION = "arflow-gated"
+
+
 def arflow_version() -> str:
     """Installed package version (``0+unknown`` when run from a bare checkout)."""
     try:
-        return metadata.version("arflow")
+        return metadata.version(DISTRIBUTION)
     except metadata.PackageNotFoundError:
         return "0+unknown"
 
@@ -109,21 +115,113 @@ def _open_source(spec: JobSpec) -> Any:
 
 
 def validate_job(spec: JobSpec) -> ValidationReport:
-    """Check the job file's source and target (columns, types, NULL keys) without fitting."""
+    """Check what ``run`` checks before fitting: columns, types, NULL keys, the calendar, the as-of guards."""
+    previous = _previous_vintage(spec, strict=False)
     with _open_source(spec) as source:
         src = source.layout()
         source.check_rows()
-        latest = source.latest_period()
+        latest, as_of_notes = place_as_of(spec, source, None, previous=previous)
         rows, series, first = source.stats(latest)
         layout = _layout(spec, source)
     status = check_target(spec.publish.database, layout) if spec.publish.database else "lakehouse only"
     wanted = {*spec.source.keys, spec.source.period, spec.source.value}
     columns = tuple((n, t) for n, t in src.columns if n in wanted)
-    return ValidationReport(spec.name, spec.source.describe(), columns, rows, series, first, latest, _target_text(spec), status)
+    return ValidationReport(spec.name, spec.source.describe(), columns, rows, series, first, latest, _target_text(spec), status,
+                            tuple(as_of_notes))
 
 
-def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: EventSink | None = None) -> JobOutcome:
-    """Run a job: read, forecast chunk by chunk, publish everything in one transaction."""
+#: [publish] max_periods_ahead when the job file leaves it out: about a year (five for yearly data)
+DEFAULT_PERIODS_AHEAD = {"day": 366, "week": 53, "month": 12, "quarter": 4, "year": 5, "step": 1000}
+
+
+def _previous_vintage(spec: JobSpec, strict: bool) -> Any:
+    """The job's latest vintage in its target, read before the source is opened (they may be one file).
+
+    A target locked by another process gives None here: the lock is reported
+    by the target checks, and the publishing transaction checks the far-ahead
+    guard again.
+    """
+    from .warehouse.vintages import latest_vintage
+
+    return latest_vintage(spec, strict=False)
+
+
+def place_as_of(
+    spec: JobSpec, source: Any, as_of: Any, *, previous: Any = None, allow_beyond_data: bool = False,
+    allow_jump: bool = False,
+) -> tuple[Any, list[str]]:
+    """The vintage a run will write, and notes: the as-of guards.
+
+    The as-of (default: the latest period in the source) is moved onto the
+    source's calendar label; one later than the latest period in the source is
+    refused unless ``allow_beyond_data``; one more than ``[publish]
+    max_periods_ahead`` periods after ``previous`` (the job's latest vintage in
+    the target) is refused unless ``allow_jump`` (a stray far-future row must
+    not become the latest vintage).
+    """
+    from .warehouse.duckdb_source import periods_between
+
+    notes: list[str] = []
+    latest = source.latest_period()
+    freq = spec.settings.frequency
+    calendar = source.calendar() if hasattr(source, "calendar") else None
+    if as_of is None:
+        value = latest
+    else:
+        if calendar is not None:
+            value, given = source.place_as_of(as_of)
+        else:
+            value = given = source.parse_as_of(as_of)
+        if value != given:
+            notes.append(f"--as-of {_iso(given)} was moved to {_iso(value)}, the source's label of that {freq}")
+        if value > latest and not allow_beyond_data:
+            raise SettingsError(
+                f"--as-of {_iso(value)} is after the latest period in the source, {_iso(latest)}; use an as-of at or "
+                "before it, or add --allow-beyond-data to write such a vintage deliberately"
+            )
+    limit = _jump_limit(spec)
+    if previous is not None and value > previous and not allow_jump:
+        gap = periods_between(freq, previous, value)
+        if gap > limit:
+            where = "--as-of" if as_of is not None else "the latest period in the source"
+            example = ""
+            if as_of is None and hasattr(source, "example_rows"):
+                example = f" (rows at {_iso(value)}: {source.example_rows(source._period_expr() + ' = ' + _sql_literal(value))})"
+            error = SettingsError if as_of is not None else SourceError
+            raise error(
+                f"{where}, {_iso(value)}, is {gap:,} {freq} period(s) after this job's latest vintage {_iso(previous)}, "
+                f"more than publish.max_periods_ahead = {limit}{example}; fix the source or the as-of, "
+                "or add --allow-jump to write it deliberately"
+            )
+    return value, notes
+
+
+def _jump_limit(spec: JobSpec) -> int:
+    """``[publish] max_periods_ahead``, or the frequency's default."""
+    limit = spec.publish.max_periods_ahead
+    return DEFAULT_PERIODS_AHEAD[spec.settings.frequency] if limit is None else limit
+
+
+def _iso(value: Any) -> str:
+    return value.isoformat() if isinstance(value, (dt.date, dt.datetime)) else str(value)
+
+
+def _sql_literal(value: Any) -> str:
+    if isinstance(value, dt.datetime):
+        return f"TIMESTAMP '{value.isoformat(sep=' ')}'"
+    if isinstance(value, dt.date):
+        return f"DATE '{value.isoformat()}'"
+    return str(int(value))
+
+
+def run_job(
+    spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: EventSink | None = None, *,
+    allow_beyond_data: bool = False, allow_jump: bool = False,
+) -> JobOutcome:
+    """Run a job: read, forecast chunk by chunk, publish everything in one transaction.
+
+    ``allow_beyond_data`` / ``allow_jump`` lift the as-of guards (see :func:`place_as_of`).
+    """
     tune_for_batch()
     emit: EventSink = on_event or (lambda event: None)
     clock = time.perf_counter()
@@ -131,10 +229,14 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
     settings = spec.settings
     notes: list[str] = []
     spark = spec.source.engine == "spark"
+    previous = _previous_vintage(spec, strict=not dry_run)
     with _open_source(spec) as source:
         source.layout()
         source.check_rows()
-        as_of_value = source.parse_as_of(as_of) if as_of is not None else source.latest_period()
+        as_of_value, as_of_notes = place_as_of(
+            spec, source, as_of, previous=previous, allow_beyond_data=allow_beyond_data, allow_jump=allow_jump
+        )
+        notes.extend(as_of_notes)
         rows, series, _ = source.stats(as_of_value)
         if rows == 0:
             raise SourceError(f"the source has no rows at or before --as-of {as_of}; pick a later period")
@@ -168,6 +270,12 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
     total = summary.series_total
     share = summary.series_quarantined / total if total else 0.0
     alarm = share > settings.gates.max_quarantine_share
+    held = alarm and spec.publish.hold_on_alarm and not dry_run
+    if held:
+        notes.append(
+            "held: the quarantined share is over gates.max_quarantine_share, so this run's records were written but "
+            "published_forecasts was left as it was (publish.hold_on_alarm)"
+        )
     attempt: int | None = None
     try:
         if dry_run:
@@ -178,12 +286,14 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
             emit({"event": "publish", "run_id": run_id, "target": _target_text(spec)})
             record = RunRecord(
                 run_id=run_id, job=spec.name, as_of=as_of_value, started_at=started_at, finished_at=_utcnow(),
-                status="alarm" if alarm else "ok", series_total=total, series_published=summary.series_published,
+                status="held" if held else ("alarm" if alarm else "ok"), series_total=total, series_published=summary.series_published,
                 series_quarantined=summary.series_quarantined, quarantine_share=share,
                 on_failure=spec.publish.on_failure, frequency=settings.frequency, horizon=settings.forecast.horizon,
                 coverage=settings.forecast.coverage, source=spec.source.describe(),
                 config_sha256=spec.config_sha256, arflow_version=arflow_version(),
-                reason_counts=summary.reason_counts,
+                reason_counts=summary.reason_counts, held=held,
+                stale_after_periods=spec.publish.stale_after_periods,
+                jump_limit=None if allow_jump else _jump_limit(spec),
             )
             # lakehouse: files first (invisible), then the DuckDB transaction, then the lakehouse commit marker
             staged = None
@@ -210,7 +320,7 @@ def run_job(spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: E
         reason_counts=summary.reason_counts, quarantine_share=share,
         max_quarantine_share=settings.gates.max_quarantine_share, chunks=summary.chunks,
         seconds=time.perf_counter() - clock, target=_target_text(spec), attempt=attempt, notes=tuple(notes),
-        phase_seconds={k: round(v, 3) for k, v in phases.items()},
+        phase_seconds={k: round(v, 3) for k, v in phases.items()}, held=held,
     )
     emit({"event": "finish", **outcome_dict(outcome)})
     return outcome
@@ -222,7 +332,7 @@ def outcome_dict(outcome: JobOutcome) -> dict[str, Any]:
         "job": outcome.job, "run_id": outcome.run_id, "as_of": outcome.as_of, "dry_run": outcome.dry_run,
         "attempt": outcome.attempt, "rows_read": outcome.rows_read, "series_total": outcome.series_total,
         "series_published": outcome.series_published, "series_quarantined": outcome.series_quarantined,
-        "quarantine_share": round(outcome.quarantine_share, 6), "alarm": outcome.alarm,
+        "quarantine_share": round(outcome.quarantine_share, 6), "alarm": outcome.alarm, "held": outcome.held,
         "reason_counts": outcome.reason_counts, "chunks": outcome.chunks, "seconds": round(outcome.seconds, 3),
         "target": outcome.target, "notes": list(outcome.notes), "phase_seconds": outcome.phase_seconds,
     }
@@ -351,17 +461,47 @@ def _utcnow() -> dt.datetime:
 
 
 def prepare_demo(directory: Path, seed: int | None = None) -> Path:
-    """Build the sample warehouse and its job file in ``directory``; returns the job file."""
+    """Build the sample warehouse and its job file in ``directory``; returns the job file.
+
+    A job file already there that differs from the shipped one (the user
+    edited it) is kept as it is; :func:`demo_job_note` says so.
+    """
     from .sample import generate
 
     directory.mkdir(parents=True, exist_ok=True)
     job_path = directory / generate.DEMO_JOB_FILE
     generate.build_sample_warehouse(directory / generate.DEMO_DATABASE, **({} if seed is None else {"seed": seed}))
-    job_path.write_text(generate.demo_job_text(), encoding="utf-8")
+    if demo_job_note(job_path) is None:
+        job_path.write_text(generate.demo_job_text(), encoding="utf-8")
     return job_path
 
 
+def demo_job_note(job_path: Path) -> str | None:
+    """A note when ``job_path`` exists and is not the shipped demo job (so the demo must not overwrite it)."""
+    from .sample import generate
+
+    try:
+        text = job_path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return None
+    except (OSError, UnicodeDecodeError):
+        text = None
+    if text == generate.demo_job_text():
+        return None
+    return f"kept your edited job file {job_path} (not overwritten) and ran it; delete it to get the shipped demo job back"
+
+
 def run_demo(directory: Path, on_event: EventSink | None = None) -> JobOutcome:
-    """``arflow demo``: build the sample warehouse in ``directory`` and run its job."""
+    """``arflow demo``: build the sample warehouse in ``directory`` and run its job (an edited job file is kept)."""
+    from .sample import generate
+
+    note = demo_job_note(directory / generate.DEMO_JOB_FILE)
+    if note is not None and on_event is not None:
+        on_event({"event": "note", "message": note})
     job_path = prepare_demo(directory)
-    return run_job(load_job(job_path), on_event=on_event)
+    outcome = run_job(load_job(job_path), on_event=on_event)
+    if note is not None:
+        from dataclasses import replace
+
+        outcome = replace(outcome, notes=(*outcome.notes, note))
+    return outcome

@@ -36,7 +36,7 @@ RESERVED_COLUMNS = frozenset(
 )
 
 _SOURCE_KEYS = ("engine", "database", "parquet", "table", "query", "keys", "period", "value", "frequency")
-_PUBLISH_KEYS = ("database", "lakehouse", "schema", "on_failure")
+_PUBLISH_KEYS = ("database", "lakehouse", "schema", "on_failure", "hold_on_alarm", "stale_after_periods", "max_periods_ahead")
 ENGINES = ("duckdb", "spark")
 _SPARK_KEYS = ("master", "partitions", "config")
 _RUN_KEYS = ("chunk_series", "workers")
@@ -98,6 +98,12 @@ class PublishSpec:
     schema: str = "arflow"
     on_failure: str = "keep-previous"
     lakehouse: Path | None = None
+    #: a run over gates.max_quarantine_share writes its records but leaves published_forecasts as it was
+    hold_on_alarm: bool = True
+    #: a kept (stale) forecast leaves the view once its vintage is this many periods behind the latest (None: no limit)
+    stale_after_periods: int | None = None
+    #: refuse a vintage more than this many periods after the job's latest one (None: per-frequency default)
+    max_periods_ahead: int | None = None
 
 
 @dataclass(frozen=True)
@@ -320,7 +326,24 @@ def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) 
         raise SettingsError(
             f"publish.on_failure = {on_failure!r} is not allowed; use " + " / ".join(f'"{p}"' for p in ON_FAILURE_POLICIES)
         )
-    return PublishSpec(database=database, schema=schema, on_failure=on_failure, lakehouse=lakehouse)
+    return PublishSpec(database=database, schema=schema, on_failure=on_failure, lakehouse=lakehouse, **_vintage_guards(section))
+
+
+def _vintage_guards(section: dict[str, Any]) -> dict[str, Any]:
+    """``[publish]`` hold_on_alarm, stale_after_periods and max_periods_ahead (see README, Operations)."""
+    out: dict[str, Any] = {}
+    hold = section.get("hold_on_alarm", True)
+    if not isinstance(hold, bool):
+        raise SettingsError(f"publish.hold_on_alarm = {hold!r} is not allowed; use true or false")
+    out["hold_on_alarm"] = hold
+    for key, low in (("stale_after_periods", 0), ("max_periods_ahead", 1)):
+        value = section.get(key)
+        if value is None:
+            continue
+        if not (isinstance(value, int) and not isinstance(value, bool) and low <= value <= 100_000):
+            raise SettingsError(f"publish.{key} = {value!r} is not allowed; use an integer from {low} to 100000")
+        out[key] = value
+    return out
 
 
 def _parse_run(section: dict[str, Any]) -> RunOptions:

@@ -55,7 +55,8 @@ from .errors import ArflowError, SchemaError, SettingsError, SourceError
 from .settings import Settings
 from .warehouse.duckdb_source import DuckDBSource, SourceLayout
 
-INSTALL_HINT = "pip install 'arflow[spark]'"
+#: the project's own distribution name (the import package and command stay ``arflow``)
+INSTALL_HINT = "pip install 'arflow-gated[spark]'"
 BUCKET = "__arflow_bucket"
 #: Result pieces are cut to about this many bytes each (one binary value per piece).
 PIECE_BYTES = 32 << 20
@@ -87,7 +88,7 @@ def require_pyspark() -> None:
     major = int(str(pyspark.__version__).split(".")[0])
     if major < 4:
         raise SettingsError(
-            f'engine = "spark" needs pyspark 4.0 or later (found {pyspark.__version__}); upgrade with: pip install -U \'arflow[spark]\''
+            f'engine = "spark" needs pyspark 4.0 or later (found {pyspark.__version__}); upgrade with: pip install -U \'arflow-gated[spark]\''
         )
     # pyspark warns about pandas versions before Arrow UDFs; arflow never converts to pandas
     warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)

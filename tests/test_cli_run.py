@@ -177,6 +177,7 @@ def test_json_log_lines(job: Job, capsys) -> None:
 
 def test_alarm_exit_code_still_writes(job: Job, capsys) -> None:
     job.sections["gates"]["max_quarantine_share"] = 0.2
+    job.sections["publish"]["hold_on_alarm"] = False  # the default holds the view (tests/test_vintages.py)
     job.write()
     code, out, err = cli(capsys, "run", str(job.path))
     assert code == 4

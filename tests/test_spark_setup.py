@@ -106,7 +106,7 @@ def test_without_the_extra_one_line_install_hint(tmp_path: Path, monkeypatch, ca
     assert code == 2
     assert err == (
         "arflow: error: [source] engine = \"spark\" needs the spark extra, which is not installed; "
-        "install it with: pip install 'arflow[spark]'\n"
+        "install it with: pip install 'arflow-gated[spark]'\n"
     )
 
 

@@ -101,6 +101,94 @@ def first_line(exc: BaseException) -> str:
     return re.sub(r"^[A-Za-z ]*Error: ", "", text)
 
 
+#: largest |step| accepted as an as-of (period arithmetic stays far from the int64 limit)
+STEP_LIMIT = 2**53
+_WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
+
+
+def normalise_as_of(value: Any, period_type: str) -> Any:
+    """One value per vintage: UTC without a zone; DATE columns get a date, TIMESTAMP columns a datetime."""
+    if isinstance(value, dt.datetime):
+        if value.tzinfo is not None:
+            value = value.astimezone(dt.timezone.utc).replace(tzinfo=None)
+        return value.date() if period_type == "DATE" else value
+    if isinstance(value, dt.date) and period_type == "TIMESTAMP":
+        return dt.datetime(value.year, value.month, value.day)
+    return value
+
+
+def _cut(text: str, limit: int = 40) -> str:
+    """Printable text, cut to ``limit`` characters (for error messages)."""
+    clean = "".join(c if c.isprintable() else "?" for c in text)
+    return clean if len(clean) <= limit else clean[: limit - 3] + "..."
+
+
+def describe_row(keys: Any, key_values: Any, period: Any) -> str:
+    """``zone=Z-01, region=north at 2025-08-06`` (short, printable)."""
+    shown = ", ".join(f"{k}={_cut(str(v))}" for k, v in zip(keys, key_values))
+    when = period.isoformat() if isinstance(period, (dt.date, dt.datetime)) else str(period)
+    return f"{shown} at {when}"
+
+
+def _month_end(year: int, month: int) -> dt.date:
+    nxt = dt.date(year + month // 12, month % 12 + 1, 1)
+    return nxt - dt.timedelta(days=1)
+
+
+@dataclass(frozen=True)
+class SourceCalendar:
+    """How a source labels its periods: ``weekday`` (0 = Monday) of weekly labels, ``anchor`` start/end."""
+
+    frequency: str
+    period_type: str
+    latest: Any
+    weekday: int | None = None
+    anchor: str = "start"
+
+    def place(self, value: Any, whole_month: bool = False) -> Any:
+        """``value`` moved onto the label of its period (see :meth:`DuckDBSource.place_as_of`)."""
+        f = self.frequency
+        if f == "step" or value is None:
+            return value
+        day = value.date() if isinstance(value, dt.datetime) else value
+        if f == "day":
+            pass  # a day's label is its date (a timestamp goes to its midnight)
+        elif f == "week":
+            day = day - dt.timedelta(days=(day.weekday() - (self.weekday or 0)) % 7)
+        else:
+            months = {"month": 1, "quarter": 3, "year": 12}[f]
+            first = (day.month - 1) // months * months + 1
+            if self.anchor == "start":
+                day = dt.date(day.year, first, 1)
+            else:
+                if whole_month:  # YYYY-MM text: the whole month counts, so its last day
+                    day = _month_end(day.year, day.month)
+                end = _month_end(day.year, first + months - 1)
+                if day != end:
+                    prev = dt.date(day.year, first, 1) - dt.timedelta(days=1)
+                    end = _month_end(prev.year, prev.month)
+                day = end
+        return dt.datetime(day.year, day.month, day.day) if self.period_type == "TIMESTAMP" else day
+
+    def periods_between(self, earlier: Any, later: Any) -> int:
+        """Whole periods from ``earlier`` to ``later`` on this calendar."""
+        return periods_between(self.frequency, earlier, later)
+
+
+def periods_between(frequency: str, earlier: Any, later: Any) -> int:
+    """Whole periods of ``frequency`` from ``earlier`` to ``later`` (negative when later is earlier)."""
+    if frequency == "step":
+        return int(later) - int(earlier)
+    a = earlier.date() if isinstance(earlier, dt.datetime) else earlier
+    b = later.date() if isinstance(later, dt.datetime) else later
+    if frequency == "day":
+        return (b - a).days
+    if frequency == "week":
+        return (b - a).days // 7
+    months = (b.year - a.year) * 12 + (b.month - a.month)
+    return months // {"month": 1, "quarter": 3, "year": 12}[frequency]
+
+
 @dataclass(frozen=True)
 class SourceLayout:
     """Checked types of the source: DuckDB type names used in the output DDL."""
@@ -119,6 +207,7 @@ class DuckDBSource:
         self.frequency = frequency
         self._con: duckdb.DuckDBPyConnection | None = None
         self._layout: SourceLayout | None = None
+        self._calendar: SourceCalendar | None = None
 
     # -- opening ---------------------------------------------------------
     def __enter__(self) -> "DuckDBSource":
@@ -273,13 +362,13 @@ class DuckDBSource:
             raise SourceError("the source has no rows; check source.table / source.query (or the parquet files)")
         if null_keys:
             raise SourceError(
-                f"the source has {null_keys} row(s) with a NULL key ({', '.join(spec.keys)}); "
-                "filter them out or fill them in with a [source] query"
+                f"the source has {null_keys:,} row(s) with a NULL key ({', '.join(spec.keys)}), e.g. "
+                f"{self.example_rows(null_key)}; filter them out or fill them in with a [source] query"
             )
         if null_periods:
             raise SourceError(
-                f"the source has {null_periods} row(s) with a NULL period ({spec.period}); "
-                "filter them out with a [source] query"
+                f"the source has {null_periods:,} row(s) with a NULL period ({spec.period}), e.g. "
+                f"{self.example_rows(quote(spec.period) + ' IS NULL')}; filter them out with a [source] query"
             )
         return int(total)
 
@@ -288,22 +377,94 @@ class DuckDBSource:
         return self._sql(f"SELECT max({self._period_expr()}) FROM {self._from()}")[0][0]
 
     def parse_as_of(self, text: Any) -> Any:
-        """Turn a ``--as-of`` string into a value of the period column's type."""
+        """Turn a ``--as-of`` string into a value of the period column's type.
+
+        Normalised so that one vintage has one value (and one run id): a time
+        zone is converted to UTC and dropped (``T00:00Z`` and ``T00:00`` are the
+        same), a DATE column takes the date of a timestamp, and a TIMESTAMP
+        column takes a bare date as its midnight. Placing the value on the
+        source's calendar is :meth:`place_as_of`.
+        """
         ptype = self.layout().period_type
         if not isinstance(text, str):
-            return text
+            return normalise_as_of(text, ptype)
         text = text.strip()
         try:
             if ptype == "BIGINT":
-                return int(text)
-            if ptype == "DATE":
-                if re.fullmatch(r"\d{4}-\d{2}", text):
-                    text += "-01"
-                return dt.date.fromisoformat(text)
-            return dt.datetime.fromisoformat(text)
-        except ValueError:
+                value = int(text)
+                if abs(value) > STEP_LIMIT:
+                    raise SettingsError(
+                        f"--as-of: as-of period {text[:40]} is out of range for integer periods "
+                        f"(at most +-2**53 = {STEP_LIMIT}); use a period inside the source's range"
+                    )
+                return value
+            if re.fullmatch(r"\d{4}-\d{2}", text):
+                text += "-01"
+            if re.fullmatch(r"\d{4}-\d{2}-\d{2}", text):
+                return normalise_as_of(dt.date.fromisoformat(text), ptype)
+            return normalise_as_of(dt.datetime.fromisoformat(text.replace("z", "Z")), ptype)
+        except (ValueError, OverflowError):
             want = {"BIGINT": "an integer period", "DATE": "a date like 2024-06-01", "TIMESTAMP": "a timestamp like 2024-06-01T00:00"}[ptype]
-            raise SettingsError(f"--as-of {text!r} is not {want} (the period column {self.spec.period} is {ptype})") from None
+            raise SettingsError(f"--as-of {text[:40]!r} is not {want} (the period column {self.spec.period} is {ptype})") from None
+
+    def calendar(self) -> "SourceCalendar":
+        """How the source labels its periods (weekday of weekly labels, period starts or ends).
+
+        Raises the calendar-alignment error ``run`` would raise (weekly labels
+        on different weekdays), naming the count and a few example rows.
+        """
+        if self._calendar is not None:
+            return self._calendar
+        freq = self.frequency
+        period = self._period_expr()
+        latest = self.latest_period()
+        weekday: int | None = None
+        anchor = "start"
+        if freq == "week":
+            counts = self._sql(
+                f"SELECT isodow(p) - 1 AS wd, count(*) AS n FROM (SELECT {period} AS p FROM {self._from()}) "
+                "GROUP BY wd ORDER BY n DESC, wd"
+            )
+            weekday = int(counts[0][0])
+            if len(counts) > 1:
+                off = sum(int(n) for _, n in counts[1:])
+                examples = self.example_rows(f"isodow({period}) - 1 <> {weekday}")
+                raise SchemaError(
+                    f"weekly periods fall on different weekdays: {off:,} row(s) are not on a {_WEEKDAYS[weekday]} "
+                    f"(the weekday of most rows), e.g. {examples}; label each week by the same weekday "
+                    "(e.g. its Monday) or use frequency 'day'"
+                )
+        elif freq in ("month", "quarter", "year"):
+            end = {"month": "p = last_day(p)", "quarter": "p = last_day(p) AND month(p) % 3 = 0",
+                   "year": "month(p) = 12 AND day(p) = 31"}[freq]
+            (all_end,) = self._sql(
+                f"SELECT bool_and({end}) FROM (SELECT DISTINCT CAST({period} AS DATE) AS p FROM {self._from()})"
+            )[0]
+            anchor = "end" if all_end else "start"
+        self._calendar = SourceCalendar(freq, self.layout().period_type, latest, weekday, anchor)
+        return self._calendar
+
+    def place_as_of(self, text: Any) -> tuple[Any, Any]:
+        """``(value, given)``: the as-of moved onto the source's calendar label, and the parsed value as given.
+
+        A week goes to the label of the week holding the date (2025-12-23 ->
+        Monday 2025-12-22 for Monday-labelled weeks); a month, quarter or year
+        to its first day, or, when the source labels periods by their last
+        day, to the last label at or before the date (``YYYY-MM`` text means
+        that month, so its last day).
+        """
+        given = self.parse_as_of(text)
+        whole_month = isinstance(text, str) and re.fullmatch(r"\d{4}-\d{2}", text.strip()) is not None
+        return self.calendar().place(given, whole_month), given
+
+    def example_rows(self, condition: str, limit: int = 3) -> str:
+        """A few rows matching ``condition`` as ``key=..., key=... at period`` text (for error messages)."""
+        keys = [quote(k) for k in self.spec.keys]
+        rows = self._sql(
+            f"SELECT {', '.join(keys)}, {self._period_expr()} FROM {self._from()} WHERE {condition} "
+            f"ORDER BY {', '.join(keys)}, 2 LIMIT {int(limit)}"
+        ) if keys else []
+        return "; ".join(describe_row(self.spec.keys, r[:-1], r[-1]) for r in rows) or "(none)"
 
     def _period_expr(self) -> str:
         return f"CAST({quote(self.spec.period)} AS {self.layout().period_type})"

@@ -33,7 +33,8 @@ from .identifiers import quote
 
 #: Tables written per run, in insert order (the fault hook names these).
 RUN_TABLES = ("series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy")
-DDL_FILES = ("runs", "vintages", "series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy")
+DDL_FILES = ("runs", "vintages", "series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy",
+             "job_policy", "vintage_removals")
 VIEW_FILE = "published_forecasts"
 ACCURACY_VIEW = "accuracy_by_horizon"
 #: per coverage level: table -> column prefixes added with ALTER TABLE
@@ -79,6 +80,12 @@ class RunRecord:
     config_sha256: str
     arflow_version: str
     reason_counts: dict[str, int] = field(default_factory=dict)
+    #: hold_on_alarm: write the run's records but leave series_status, forecasts and the view as they were
+    held: bool = False
+    #: [publish] stale_after_periods (None: kept forecasts expire only when all their periods are past)
+    stale_after_periods: int | None = None
+    #: refuse (inside the transaction) a vintage more than this many periods after the job's latest one (None: no check)
+    jump_limit: int | None = None
 
 
 def _fault_point(name: str) -> None:
@@ -120,6 +127,24 @@ def render_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ...] 
         p_key_list=", ".join(f"p.{k}" for k in keys),
         key_join=" AND ".join(f"p.{k} = l.{k}" for k in keys),
         f_key_join=" AND ".join(f"f.{k} = v.{k}" for k in keys),
+        s_key_list=", ".join(f"s.{k}" for k in keys),
+        f_key_list=", ".join(f"f.{k}" for k in keys),
+        v_key_list=", ".join(f"v.{k}" for k in keys),
+        xv_key_join=" AND ".join(f"x.{k} = v.{k}" for k in keys),
+        ks_key_join=" AND ".join(f"k.{k} = s.{k}" for k in keys),
+        age=_age_sql(layout.period_type),
+    )
+
+
+def _age_sql(period_type: str) -> str:
+    """SQL for whole periods from a kept vintage (``v.as_of``) to the job's latest vintage."""
+    if period_type == "BIGINT":
+        return "(v.arflow_latest__ - v.as_of)"
+    diff = "date_diff('{unit}', v.as_of, v.arflow_latest__)"
+    return (
+        "CASE v.arflow_frequency__ "
+        + " ".join(f"WHEN '{u}' THEN {diff.format(unit=u)}" for u in ("day", "month", "quarter", "year"))
+        + f" WHEN 'week' THEN {diff.format(unit='day')} // 7 END"
     )
 
 
@@ -220,12 +245,24 @@ class DuckDBStore:
                 f"SELECT max(attempt) FROM {self._schema}.runs WHERE run_id = ?", [record.run_id]
             ).fetchone() or (None,)
             attempt = int(previous or 0) + 1
+            self._check_jump(con, record)
+            held = record.held
+            # a held run replaces the vintage's records but not what the view reads (series_status, forecasts)
+            untouched = ("series_status", "forecasts", "accuracy") if held else ()
             for table in (*RUN_TABLES, "runs"):
+                if table in untouched:
+                    continue
+                if table == "forecasts" and record.on_failure == "keep-previous":
+                    self._delete_forecasts_keeping_vetted(con, tables, record)
+                    continue
                 column = "recorded_by" if table == "accuracy" else "run_id"
                 con.execute(f"DELETE FROM {self._schema}.{quote(table)} WHERE {column} = ?", [record.run_id])
-            con.execute(f"DELETE FROM {self._schema}.vintages WHERE job = ? AND as_of = ?", [record.job, record.as_of])
+            if not held:
+                con.execute(f"DELETE FROM {self._schema}.vintages WHERE job = ? AND as_of = ?", [record.job, record.as_of])
             for table in RUN_TABLES:
-                if table == "series_status":
+                if table in untouched:
+                    pass
+                elif table == "series_status":
                     self._insert_status(con, tables, record)
                 elif table == "accuracy":
                     self._record_accuracy(con, tables, record, coverage_labels)
@@ -234,10 +271,12 @@ class DuckDBStore:
                 _fault_point(table)
             self._insert_run(con, record, attempt)
             _fault_point("runs")
-            con.execute(
-                f"INSERT INTO {self._schema}.vintages VALUES (?, ?, ?, ?, ?)",
-                [record.job, record.as_of, record.run_id, attempt, record.finished_at],
-            )
+            if not held:
+                con.execute(
+                    f"INSERT INTO {self._schema}.vintages VALUES (?, ?, ?, ?, ?)",
+                    [record.job, record.as_of, record.run_id, attempt, record.finished_at],
+                )
+                self._write_policy(con, record)
             _fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
             con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
@@ -260,6 +299,53 @@ class DuckDBStore:
             unwatch_connection(con)
             tables.release(con)
             con.close()
+
+    def _delete_forecasts_keeping_vetted(
+        self, con: duckdb.DuckDBPyConnection, tables: "RunTables", record: RunRecord
+    ) -> None:
+        """Delete an earlier attempt's forecasts of this vintage, except for series this attempt quarantines.
+
+        Under keep-previous those rows stay (the view shows them as stale), so
+        a bad re-run never loses a forecast that was vetted.
+        """
+        s = self._schema
+        models = tables.relation(con, "models")
+        if models is None:
+            con.execute(f"DELETE FROM {s}.forecasts WHERE run_id = ?", [record.run_id])
+            return
+        same = " AND ".join(f"m.{quote(k)} = {s}.forecasts.{quote(k)}" for k in self.layout.keys)
+        con.execute(
+            f"DELETE FROM {s}.forecasts WHERE run_id = ? AND NOT EXISTS "
+            f"(SELECT 1 FROM {models} AS m WHERE m.decision <> 'published' AND {same})",
+            [record.run_id],
+        )
+
+    def _check_jump(self, con: duckdb.DuckDBPyConnection, record: RunRecord) -> None:
+        """The far-ahead guard again, inside the transaction (the job checked it before fitting)."""
+        if record.jump_limit is None:
+            return
+        from .duckdb_source import periods_between
+
+        (latest,) = con.execute(
+            f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = ?", [record.job]
+        ).fetchone() or (None,)
+        if latest is None or not record.as_of > latest:
+            return
+        gap = periods_between(record.frequency, latest, record.as_of)
+        if gap > record.jump_limit:
+            raise PublishError(
+                f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
+                f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
+                "(add --allow-jump to write it deliberately)"
+            )
+
+    def _write_policy(self, con: duckdb.DuckDBPyConnection, record: RunRecord) -> None:
+        """The job's row of ``job_policy`` (what the view's expiry rule reads)."""
+        con.execute(f"DELETE FROM {self._schema}.job_policy WHERE job = ?", [record.job])
+        con.execute(
+            f"INSERT INTO {self._schema}.job_policy VALUES (?, ?, ?)",
+            [record.job, record.frequency, record.stale_after_periods],
+        )
 
     def _ensure_tables(self, con: duckdb.DuckDBPyConnection, coverage_labels: tuple[str, ...]) -> None:
         check_layout(con, self.layout, self.database)

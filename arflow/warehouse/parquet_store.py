@@ -53,6 +53,8 @@ from .identifiers import check_identifier
 FORMAT_VERSION = 1
 COMMITS = "_commits"
 LAYOUT_FILE = "_layout.json"
+#: Tables the published_forecasts reader uses (a held run keeps the earlier attempt's files of these).
+VIEW_TABLES = ("series_status", "forecasts")
 #: Tables every run writes (further result frames, e.g. backtests, are written after these).
 BASE_TABLES = ("series_status", "models", "gates", "residual_acf", "forecasts")
 
@@ -132,12 +134,25 @@ class StagedRun:
             "committed_at": dt.datetime.now(dt.timezone.utc).replace(tzinfo=None),
             "status": rec.status,
             "tables": self.tables,
+            "frequency": rec.frequency,
+            "stale_after_periods": rec.stale_after_periods,
+            "counts": {"series_total": rec.series_total, "series_published": rec.series_published,
+                       "series_quarantined": rec.series_quarantined},
         }
         path = self.root / COMMITS / f"{run_dir_name(rec.run_id)}.json"
         previous = _read_marker(path)
+        if rec.held:
+            # hold_on_alarm: the records are new, what the view reads stays as the earlier attempt had it
+            marker["changed_view"] = bool(previous and previous.get("changed_view", True))
+            for table in VIEW_TABLES:
+                marker["tables"].pop(table, None)
+                if previous and table in previous["tables"]:
+                    marker["tables"][table] = previous["tables"][table]
+            if previous is not None:
+                marker["committed_at"] = previous.get("committed_at", marker["committed_at"])
         _write_json_atomic(path, marker)
         self.done = True
-        keep = {self.attempt} | ({int(previous["attempt"])} if previous else set())
+        keep = {self.attempt} | ({int(previous["attempt"])} if previous else set()) | _attempts_named(marker)
         _remove_attempts(self.root, rec.run_id, keep)
         return self.attempt
 
@@ -217,6 +232,15 @@ class ParquetStore:
             ordered: dict[str, pl.DataFrame | None] = {"series_status": status}
             ordered.update({name: frames.get(name) for name in BASE_TABLES[1:]})
             ordered.update({name: f for name, f in frames.items() if name not in ordered})
+            if record.held:
+                for name in VIEW_TABLES:
+                    ordered[name] = None
+            else:
+                kept = _kept_forecasts(self.root, record, models, self.layout.keys)
+                if kept is not None:
+                    fresh = ordered.get("forecasts")
+                    ordered["forecasts"] = kept if fresh is None or not fresh.height else pl.concat(
+                        [fresh, kept.select([c for c in fresh.columns if c in kept.columns])], how="diagonal_relaxed")
             for table, frame in ordered.items():
                 if frame is None or frame.width == 0:
                     continue
@@ -275,6 +299,34 @@ def _read_marker(path: Path) -> dict[str, Any] | None:
         return json.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
         return None
+
+
+def _attempts_named(marker: dict[str, Any]) -> set[int]:
+    """Attempt numbers whose files a marker names (a held run names an earlier attempt's files)."""
+    out = set()
+    for entry in marker["tables"].values():
+        for f in entry["files"]:
+            for part in f.split("/"):
+                if part.startswith("attempt="):
+                    try:
+                        out.add(int(part.split("=", 1)[1]))
+                    except ValueError:
+                        pass
+    return out
+
+
+def _kept_forecasts(root: Path, record: RunRecord, models: pl.DataFrame, keys: tuple[str, ...]) -> pl.DataFrame | None:
+    """keep-previous: the earlier attempt's forecasts of series this attempt quarantines (None when none)."""
+    if record.on_failure != "keep-previous" or not models.height:
+        return None
+    previous = _read_marker(root / COMMITS / f"{run_dir_name(record.run_id)}.json")
+    entry = previous["tables"].get("forecasts") if previous else None
+    if not entry:
+        return None
+    old = pl.concat([pl.read_parquet(root / f) for f in entry["files"]], how="diagonal_relaxed")
+    quarantined = models.filter(pl.col("decision") != "published").select(*keys).unique()
+    kept = old.join(quarantined, on=list(keys), how="semi").drop("run_id", strict=False)
+    return kept if kept.height else None
 
 
 def _remove_attempts(root: Path, run_id: str, keep: set[int]) -> None:
@@ -359,6 +411,13 @@ def published_forecasts(lakehouse: str | Path, schema: str = "arflow") -> pl.Dat
         for table, files in (("series_status", status_files), ("forecasts", forecast_files)):
             listing = ", ".join("'" + f.replace("'", "''") + "'" for f in files)
             con.execute(f'CREATE VIEW "{schema}"."{table}" AS SELECT * FROM read_parquet([{listing}], union_by_name = true, hive_partitioning = false)')
+        con.execute(f'CREATE TABLE "{schema}".job_policy (job VARCHAR, frequency VARCHAR, stale_after_periods INTEGER)')
+        policy: dict[str, dict[str, Any]] = {}
+        for m in sorted(_markers(root), key=lambda m: str(m.get("committed_at"))):
+            if m.get("changed_view", True) and m.get("frequency"):
+                policy[m["job"]] = m
+        for job, m in policy.items():
+            con.execute(f'INSERT INTO "{schema}".job_policy VALUES (?, ?, ?)', [job, m["frequency"], m.get("stale_after_periods")])
         con.execute(render_sql(VIEW_FILE, layout))
         keys = ", ".join(f'"{k}"' for k in layout.keys)
         return con.sql(f'SELECT * FROM "{schema}".published_forecasts ORDER BY job, {keys}, step').pl()

@@ -1,0 +1,358 @@
+"""Vintages of a job in its target: list them, and remove one atomically.
+
+A vintage is one as-of of one job (run id ``"<job>@<as_of>"``). Its rows sit
+in every run table of the DuckDB target (and, when configured, in the Parquet
+lakehouse under a commit marker). :func:`remove_vintage` deletes all of them
+in one transaction and records who removed what and when in the table
+``vintage_removals`` (lakehouse: ``_removals.jsonl``); the views then show the
+previous vintage again, as if the removed one had never run.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import getpass
+import json
+import os
+import re
+import shutil
+import socket
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import duckdb
+
+from ..errors import PublishError, SettingsError
+from .duckdb_source import first_line, is_lock_error, lock_message, normalise_as_of
+from .duckdb_store import RUN_TABLES, TableLayout, _open, render_sql
+from .identifiers import quote
+from .parquet_store import COMMITS, _markers, _read_marker, run_dir_name, store_root
+
+#: every table holding a vintage's rows, with the column naming its run (accuracy twice: scores of
+#: this vintage's forecasts, and scores of earlier vintages that this run recorded)
+VINTAGE_COLUMNS: tuple[tuple[str, str], ...] = (
+    *((t, "run_id") for t in RUN_TABLES), ("accuracy", "recorded_by"), ("runs", "run_id"), ("vintages", "run_id"),
+)
+AUDIT_TABLE = "vintage_removals"
+LAKEHOUSE_AUDIT = "_removals.jsonl"
+
+
+@dataclass(frozen=True)
+class VintageInfo:
+    """One vintage of a job as the target holds it."""
+
+    as_of: Any
+    run_id: str
+    attempts: int
+    status: str  # ok | alarm | held (the latest attempt's)
+    series_total: int
+    series_published: int
+    series_quarantined: int
+    visible: int  # series of this vintage shown by published_forecasts now
+    published_at: dt.datetime | None  # None when the vintage never changed the view (held)
+    current: bool  # the job's latest vintage in the view
+
+
+@dataclass(frozen=True)
+class RemovalReport:
+    """What :func:`remove_vintage` removed (or would remove, with ``dry_run``)."""
+
+    job: str
+    as_of: Any
+    run_id: str
+    rows: dict[str, int]
+    dry_run: bool
+    removed_by: str
+    lakehouse_files: int = 0
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    @property
+    def total_rows(self) -> int:
+        return sum(self.rows.values())
+
+
+def os_user() -> str:
+    """The operating-system user running arflow (for the audit trail)."""
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):
+        return f"uid {os.getuid()}" if hasattr(os, "getuid") else "unknown"
+
+
+def _iso(value: Any) -> str:
+    return value.isoformat() if isinstance(value, (dt.date, dt.datetime)) else str(value)
+
+
+def _has_table(con: duckdb.DuckDBPyConnection, schema: str, table: str) -> bool:
+    (n,) = con.execute(
+        "SELECT count(*) FROM information_schema.tables WHERE table_schema = ? AND table_name = ?", [schema, table]
+    ).fetchone() or (0,)
+    return bool(n)
+
+
+def _period_type(con: duckdb.DuckDBPyConnection, schema: str) -> str | None:
+    row = con.execute(
+        "SELECT data_type FROM information_schema.columns WHERE table_schema = ? AND table_name = 'runs' "
+        "AND column_name = 'as_of'", [schema],
+    ).fetchone()
+    return str(row[0]).upper() if row else None
+
+
+def _read_only(database: Path) -> duckdb.DuckDBPyConnection | None:
+    """A read-only connection, or None when the file does not exist."""
+    if not database.exists():
+        return None
+    try:
+        return duckdb.connect(str(database), read_only=True)
+    except duckdb.Error as exc:
+        if is_lock_error(exc):
+            raise PublishError(f"target {lock_message(database)}") from None
+        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
+
+
+def parse_vintage(text: Any, period_type: str) -> Any:
+    """A vintage as the user typed it, as a value of the target's period type (normalised like --as-of)."""
+    if not isinstance(text, str):
+        return normalise_as_of(text, period_type)
+    raw = text.strip()
+    try:
+        if period_type == "BIGINT":
+            return int(raw)
+        if re.fullmatch(r"\d{4}-\d{2}", raw):
+            raw += "-01"
+        if re.fullmatch(r"\d{4}-\d{2}-\d{2}", raw):
+            return normalise_as_of(dt.date.fromisoformat(raw), period_type)
+        return normalise_as_of(dt.datetime.fromisoformat(raw), period_type)
+    except (ValueError, OverflowError):
+        raise SettingsError(f"--as-of {raw[:40]!r} is not a period like the target's ({period_type}); e.g. 2025-06-01") from None
+
+
+# ------------------------------------------------------------------------------------ latest
+
+def latest_vintage(spec: Any, *, strict: bool = True) -> Any:
+    """The job's latest vintage that changed the view (None when there is none yet).
+
+    ``strict=False`` returns None for a DuckDB target locked by another process.
+    """
+    found: list[Any] = []
+    pub = spec.publish
+    if pub.database is not None:
+        try:
+            con = _read_only(pub.database)
+        except PublishError:
+            if strict:
+                raise
+            con = None
+        if con is not None:
+            try:
+                if _has_table(con, pub.schema, "vintages"):
+                    (value,) = con.execute(
+                        f"SELECT max(as_of) FROM {quote(pub.schema)}.vintages WHERE job = ?", [spec.name]
+                    ).fetchone() or (None,)
+                    if value is not None:
+                        found.append(value)
+            finally:
+                con.close()
+    if pub.lakehouse is not None and not found:
+        root = store_root(pub.lakehouse, pub.schema)
+        values = [m["as_of"] for m in _markers(root) if m.get("job") == spec.name and m.get("changed_view", True)]
+        if values:
+            layout = _read_marker(root / "_layout.json") or {}
+            ptype = layout.get("period_type", "DATE")
+            found.append(max(parse_vintage(v, ptype) for v in values))
+    return max(found) if found else None
+
+
+# ------------------------------------------------------------------------------------ list
+
+def list_vintages(spec: Any) -> list[VintageInfo]:
+    """The job's vintages, oldest first (DuckDB target; a lakehouse-only job reads the commit markers)."""
+    pub = spec.publish
+    if pub.database is None:
+        return _list_lakehouse(spec)
+    con = _read_only(pub.database)
+    if con is None:
+        return []
+    s = quote(pub.schema)
+    try:
+        if not _has_table(con, pub.schema, "runs"):
+            return []
+        view = _has_view(con, pub.schema)
+        visible = (
+            f"LEFT JOIN (SELECT run_id, count(*) AS n FROM {s}.published_forecasts WHERE step = 1 GROUP BY run_id) AS p "
+            "ON p.run_id = r.run_id" if view else ""
+        )
+        rows = con.execute(
+            f"""
+            SELECT r.as_of, r.run_id, r.attempt, r.status, r.series_total, r.series_published, r.series_quarantined,
+                   {'coalesce(p.n, 0)' if view else '0'}, v.published_at
+            FROM {s}.runs AS r
+            LEFT JOIN {s}.vintages AS v ON v.run_id = r.run_id
+            {visible}
+            WHERE r.job = ?
+            ORDER BY r.as_of
+            """,
+            [spec.name],
+        ).fetchall()
+        (current,) = con.execute(f"SELECT max(as_of) FROM {s}.vintages WHERE job = ?", [spec.name]).fetchone() or (None,)
+    except duckdb.Error as exc:
+        raise PublishError(f"cannot read vintages from {pub.database} ({first_line(exc)})") from None
+    finally:
+        con.close()
+    return [
+        VintageInfo(r[0], r[1], int(r[2]), r[3], int(r[4]), int(r[5]), int(r[6]), int(r[7]), r[8], r[0] == current)
+        for r in rows
+    ]
+
+
+def _has_view(con: duckdb.DuckDBPyConnection, schema: str) -> bool:
+    (n,) = con.execute(
+        "SELECT count(*) FROM duckdb_views() WHERE schema_name = ? AND view_name = 'published_forecasts'", [schema]
+    ).fetchone() or (0,)
+    return bool(n)
+
+
+def _list_lakehouse(spec: Any) -> list[VintageInfo]:
+    root = store_root(spec.publish.lakehouse, spec.publish.schema)
+    layout = _read_marker(root / "_layout.json") or {}
+    ptype = layout.get("period_type", "DATE")
+    markers = sorted((m for m in _markers(root) if m.get("job") == spec.name), key=lambda m: str(m["as_of"]))
+    changed = [parse_vintage(m["as_of"], ptype) for m in markers if m.get("changed_view", True)]
+    current = max(changed) if changed else None
+    out = []
+    for m in markers:
+        as_of = parse_vintage(m["as_of"], ptype)
+        counts = m.get("counts", {})
+        status_rows = m["tables"].get("series_status", {}).get("rows", 0)
+        out.append(VintageInfo(
+            as_of, m["run_id"], int(m["attempt"]), m.get("status", "ok"), int(counts.get("series_total", status_rows)),
+            int(counts.get("series_published", 0)), int(counts.get("series_quarantined", 0)), -1,
+            dt.datetime.fromisoformat(m["committed_at"]) if m.get("changed_view", True) else None, as_of == current,
+        ))
+    return out
+
+
+# ------------------------------------------------------------------------------------ remove
+
+def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | None = None) -> RemovalReport:
+    """Remove one vintage of the job from every table of its target(s), atomically, with an audit row.
+
+    DuckDB: one transaction (deletes, then the ``vintage_removals`` row).
+    Lakehouse: the commit marker is moved aside first (the run disappears for
+    readers at once), the DuckDB transaction commits, then the run's folders
+    are deleted; if the DuckDB part fails the marker is put back.
+    """
+    pub = spec.publish
+    who = user or os_user()
+    rows: dict[str, int] = {}
+    notes: list[str] = []
+    con = None
+    value: Any = None
+    run_id = ""
+    lake_marker: Path | None = None
+    lake_files = 0
+    attempts: int | None = None
+    try:
+        if pub.database is not None:
+            con = _read_only(pub.database) if dry_run else (_open(pub.database) if pub.database.exists() else None)
+            if con is None or not _has_table(con, pub.schema, "runs"):
+                raise PublishError(f"{pub.database} holds no vintages of job {spec.name}; nothing to remove")
+            ptype = _period_type(con, pub.schema) or "DATE"
+            value = parse_vintage(as_of, ptype)
+            run_id, attempts = _find_run(con, pub.schema, spec.name, value)
+            if not dry_run:
+                con.execute("BEGIN TRANSACTION")
+            rows = _delete_rows(con, pub.schema, run_id, dry_run)
+        if pub.lakehouse is not None:
+            root = store_root(pub.lakehouse, pub.schema)
+            layout = _read_marker(root / "_layout.json") or {}
+            lvalue = parse_vintage(as_of, layout.get("period_type", "DATE"))
+            lrun = f"{spec.name}@{_iso(lvalue)}"
+            marker_path = root / COMMITS / f"{run_dir_name(lrun)}.json"
+            marker = _read_marker(marker_path)
+            if marker is None and pub.database is None:
+                raise PublishError(f"lakehouse {root} has no committed vintage {_iso(lvalue)} of job {spec.name}; see arflow vintages")
+            if marker is not None:
+                value, run_id = lvalue, lrun
+                lake_files = sum(len(e["files"]) for e in marker["tables"].values())
+                if not dry_run:
+                    lake_marker = marker_path.with_name(f".{marker_path.name}.removing")
+                    os.replace(marker_path, lake_marker)
+        if con is not None and not dry_run:
+            _audit(con, pub.schema, spec.name, value, run_id, attempts, rows, who)
+            con.execute("COMMIT")
+    except BaseException as exc:
+        if con is not None and not dry_run:
+            try:
+                con.execute("ROLLBACK")
+            except duckdb.Error:
+                pass
+        if lake_marker is not None and lake_marker.exists():
+            os.replace(lake_marker, lake_marker.with_name(lake_marker.name[1:-len(".removing")]))
+        if isinstance(exc, duckdb.Error):
+            raise PublishError(f"removing the vintage failed and was rolled back ({first_line(exc)}); nothing changed") from None
+        raise
+    finally:
+        if con is not None:
+            con.close()
+    if lake_marker is not None:
+        root = lake_marker.parent.parent
+        for folder in root.glob(f"*/run={run_dir_name(run_id)}"):
+            shutil.rmtree(folder, ignore_errors=True)
+        lake_marker.unlink(missing_ok=True)
+        with open(root / LAKEHOUSE_AUDIT, "a", encoding="utf-8") as fh:
+            fh.write(json.dumps({"removed_at": _utcnow().isoformat(), "removed_by": who, "host": socket.gethostname(),
+                                 "job": spec.name, "as_of": _iso(value), "run_id": run_id, "files": lake_files}) + "\n")
+    return RemovalReport(spec.name, value, run_id, rows, dry_run, who, lake_files, tuple(notes))
+
+
+def _find_run(con: duckdb.DuckDBPyConnection, schema: str, job: str, value: Any) -> tuple[str, int | None]:
+    s = quote(schema)
+    row = con.execute(f"SELECT run_id, attempt FROM {s}.runs WHERE job = ? AND as_of = ?", [job, value]).fetchone()
+    if row is None:
+        row = con.execute(f"SELECT run_id, attempt FROM {s}.vintages WHERE job = ? AND as_of = ?", [job, value]).fetchone()
+    if row is None:
+        known = [_iso(r[0]) for r in con.execute(
+            f"SELECT DISTINCT as_of FROM {s}.runs WHERE job = ? ORDER BY as_of DESC LIMIT 5", [job]).fetchall()]
+        listing = ", ".join(known) if known else "none"
+        raise SettingsError(f"job {job} has no vintage {_iso(value)} (latest vintages: {listing}); see arflow vintages")
+    return str(row[0]), (int(row[1]) if row[1] is not None else None)
+
+
+def _delete_rows(con: duckdb.DuckDBPyConnection, schema: str, run_id: str, dry_run: bool) -> dict[str, int]:
+    s = quote(schema)
+    rows: dict[str, int] = {}
+    for table, column in VINTAGE_COLUMNS:
+        if not _has_table(con, schema, table):
+            continue
+        where = f"FROM {s}.{quote(table)} WHERE {quote(column)} = ?"
+        (n,) = con.execute(f"SELECT count(*) {where}", [run_id]).fetchone() or (0,)
+        label = "accuracy (recorded by it)" if column == "recorded_by" else table
+        rows[label] = int(n)
+        if not dry_run and n:
+            con.execute(f"DELETE {where}", [run_id])
+    return rows
+
+
+def _audit(
+    con: duckdb.DuckDBPyConnection, schema: str, job: str, value: Any, run_id: str, attempts: int | None,
+    rows: dict[str, int], who: str,
+) -> None:
+    period_type = _period_type(con, schema) or "DATE"
+    con.execute(render_sql(AUDIT_TABLE, TableLayout(schema, ("k",), ("VARCHAR",), period_type)))
+    con.execute(
+        f"INSERT INTO {quote(schema)}.{AUDIT_TABLE} VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        [_utcnow(), who, socket.gethostname(), job, value, run_id, attempts,
+         json.dumps(rows, sort_keys=True), _version()],
+    )
+
+
+def _version() -> str:
+    from ..job import arflow_version
+
+    return arflow_version()
+
+
+def _utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.timezone.utc).replace(tzinfo=None)
