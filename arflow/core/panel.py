@@ -26,6 +26,11 @@ TOO_SHORT = 8
 CONSTANT = 16
 ENDS_BEFORE_AS_OF = 32
 NO_DATA = 64
+#: set by the frame adapter (the panel sees ordinals only): duplicated periods whose values differ
+CONFLICTING_DUPLICATES = 128
+#: set by the frame adapter: a period label that is not on the frequency's calendar
+#: (a mid-month date under "month", a Wednesday among Monday weeks, a time of day)
+OFF_CALENDAR = 256
 
 QUALITY_FLAG_NAMES: dict[int, str] = {
     DUPLICATE_PERIODS: "duplicate_periods",
@@ -35,6 +40,8 @@ QUALITY_FLAG_NAMES: dict[int, str] = {
     CONSTANT: "constant_series",
     ENDS_BEFORE_AS_OF: "ends_before_as_of",
     NO_DATA: "no_data",
+    CONFLICTING_DUPLICATES: "conflicting_duplicates",
+    OFF_CALENDAR: "off_calendar_periods",
 }
 
 

@@ -190,6 +190,26 @@ def _in_processes(pieces: list[Panel], settings: Settings, workers: int) -> list
         return list(pool.map(_run_block, pieces, [settings] * len(pieces)))
 
 
+def _relative_interval_width(panel: Panel, fc: Forecasts) -> np.ndarray:
+    """Narrowest published interval half-width (any step, any level) over the series' standard deviation.
+
+    Computed from the published bounds themselves, so an interval that
+    rounding collapsed to a point shows as zero; NaN where it cannot be computed
+    (the gate then fails closed).
+    """
+    G = panel.n_series
+    if fc.lower.size == 0 or panel.values.shape[1] < 2:
+        return np.full(G, np.nan)
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        half = np.min(fc.upper - fc.lower, axis=(0, 2)) / 2.0
+        Y = panel.values
+        m = np.isfinite(Y).sum(axis=1)
+        mean = np.nansum(Y, axis=1) / m
+        scale = np.sqrt(np.nansum((Y - mean[:, None]) ** 2, axis=1) / np.maximum(m - 1, 1))
+        rel = half / scale
+    return np.where(np.isfinite(rel), rel, np.nan)
+
+
 def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
     """Run the statistical core on a panel with the given settings.
 
@@ -217,6 +237,7 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         rp = diagnostics.benjamini_hochberg(np.where(fit.fitted, rp, np.nan))
         rtest = diagnostics.TestResult(rtest.statistic, rp, rtest.df)
     finite = np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
+    interval_width = _relative_interval_width(panel, fc)
     inputs = gates.GateInputs(
         flags=panel.flags,
         n=panel.n,
@@ -236,6 +257,7 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         arch_pvalue=None if arch is None else arch.pvalue,
         naive_statistic=None if bt is None else bt.relative_rmse_over(settings.backtest.naive_steps),
         naive_threshold=1.0 + settings.backtest.naive_tolerance,
+        interval_relative_width=interval_width,
     )
     outcome = gates.decide(inputs, gs, ms.unit_root, settings.backtest.naive_gate if bt is not None else "off")
     return CoreResult(panel, fit, parts["differenced"], parts["unit_root"], parts["adf"], parts["kpss"],
