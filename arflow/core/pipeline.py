@@ -88,6 +88,8 @@ def adf_from_fit(fit: autoreg.ARFit) -> unitroot.AdfResult:
 def _run_block(panel: Panel, settings: Settings) -> dict:
     ms, gs, fs = settings.model, settings.gates, settings.forecast
     Y = panel.values
+    if Y.shape[1] < 2:  # no series has two values (e.g. all NULL): NaN columns keep every shape valid
+        Y = np.concatenate([np.full((Y.shape[0], 2 - Y.shape[1]), np.nan), Y], axis=1)
     G = Y.shape[0]
     seasonal = ms.seasonal_for(settings.frequency)
     usable = (panel.n >= max(gs.min_observations, 3)) & ((panel.flags & (NO_DATA | CONSTANT)) == 0)
@@ -126,6 +128,8 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
     # ---- forecasts -------------------------------------------------------------------------------
     width = max(int(fit.lags.max()), 1) + 1
     hist = np.nan_to_num(Y[:, -width:]) if Y.shape[1] else np.zeros((G, 1))
+    if hist.shape[1] < width:  # a lag (e.g. a long seasonal one) reaches before every series: zeros, never used
+        hist = np.concatenate([np.zeros((G, width - hist.shape[1])), hist], axis=1)
     fc = forecast_ar(
         hist,
         np.nan_to_num(fit.intercept),

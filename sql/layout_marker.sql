@@ -1,0 +1,11 @@
+-- Which tables of this schema arflow created (one row per table), so that a
+-- later run never writes into a table arflow did not make (a user's own
+-- "forecasts") and can name a table that was dropped by hand.
+CREATE TABLE IF NOT EXISTS ${schema}.arflow_tables (
+    table_name      VARCHAR NOT NULL,
+    created_at      TIMESTAMP NOT NULL,
+    created_by      VARCHAR NOT NULL,
+    arflow_version  VARCHAR NOT NULL,
+    key_columns     VARCHAR[] NOT NULL,
+    period_type     VARCHAR NOT NULL
+);
