@@ -9,7 +9,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -129,6 +129,8 @@ def forecast(
         as_of=as_of_ord,
         min_observations=settings.gates.min_observations,
     )
+    if inp.flags is not None:  # what only the frame adapter can see (resolved duplicates, off-calendar labels)
+        panel = replace(panel, flags=panel.flags | inp.flags)
     core = run_core(panel, settings, workers=workers)
     frames = result_frames(inp, core, settings)
     as_of_label = inp.codec.decode(np.array([panel.as_of])).item()
