@@ -296,6 +296,16 @@ def check_ownership(con: duckdb.DuckDBPyConnection, layout: TableLayout, databas
         problem = _column_difference(expected[table], present[table], table)
         if problem:
             raise PublishError(f"{where}: {problem}; {fix} (or restore the column)")
+    # a coverage level has its columns in every table that carries levels
+    labels = {c[len(p) + 1:] for t, prefixes in COVERAGE_COLUMNS.items() if t in present
+              for p in prefixes for c in present[t] if c.startswith(p + "_")}
+    for label in sorted(labels):
+        for table, prefixes in COVERAGE_COLUMNS.items():
+            for prefix in prefixes:
+                if table in present and f"{prefix}_{label}" not in present[table]:
+                    raise PublishError(
+                        f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)"
+                    )
     return [t for t in DDL_FILES if t not in present]
 
 
