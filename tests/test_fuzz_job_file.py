@@ -172,7 +172,8 @@ def _render(draw: dict, database: Path, target: Path) -> str:
     )
 
 
-@settings(max_examples=30, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.function_scoped_fixture,
+@pytest.mark.slow
+@settings(max_examples=25, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.function_scoped_fixture,
                                                                                    HealthCheck.too_slow])
 @given(draw=jobs)
 def test_no_job_file_crashes_arflow(warehouse: Path, draw: dict) -> None:
