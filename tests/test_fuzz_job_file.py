@@ -121,19 +121,24 @@ run = st.fixed_dictionaries({}, optional={
     "chunk_series": st.integers(5, 50_000),
     "workers": st.integers(1, 256),
 })
+publish = st.fixed_dictionaries({
+    "schema": st.sampled_from(["fuzz", "FUZZ", "main", "x_1"]),
+}, optional={"on_failure": st.sampled_from(["keep-previous", "withdraw"])})
 jobs = st.fixed_dictionaries({
+    "publish": publish,
     "model": model, "forecast": forecast, "gates": gates, "backtest": backtest, "source": source, "run": run,
     "dry_run": st.booleans(), "as_of": st.sampled_from([None, None, "2021-06-01", "2019-01", "1900-01-01", "42"]),
     # at most one key per job gets an odd value, in about a quarter of the jobs
     "odd": st.one_of(st.none(), st.none(), st.none(), st.tuples(
-        st.sampled_from(["model", "forecast", "gates", "backtest", "run", "source"]),
+        st.sampled_from(["model", "forecast", "gates", "backtest", "run", "source", "publish", "job"]),
         st.sampled_from(ODD_VALUES), st.integers(0, 20))),
 })
 
 _counter = itertools.count()
 KEYS = {"model": [f.name for f in fields(ModelSettings)], "forecast": [f.name for f in fields(ForecastSettings)],
         "gates": [f.name for f in fields(GateSettings)], "backtest": [f.name for f in fields(BacktestSettings)],
-        "run": ("chunk_series", "workers"), "source": ("frequency", "keys", "period", "value", "table")}
+        "run": ("chunk_series", "workers"), "source": ("frequency", "keys", "period", "value", "table"),
+        "publish": ("schema", "on_failure", "database"), "job": ("name",)}
 
 
 def _toml(value: object) -> str:
@@ -158,7 +163,7 @@ def _render(draw: dict, database: Path, target: Path) -> str:
         "job": {"name": "fuzz"},
         "source": {"database": str(database), "table": draw["source"]["table"], "keys": ["site"], "period": "month",
                    "value": "reading", "frequency": draw["source"]["frequency"]},
-        "publish": {"database": str(target), "schema": "fuzz"},
+        "publish": {"database": str(target), **draw["publish"]},
     }
     for name in ("model", "forecast", "gates", "backtest", "run"):
         if draw[name]:
