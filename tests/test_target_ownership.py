@@ -163,3 +163,19 @@ def test_coverage_levels_are_limited(published: Path) -> None:
     code, err = _run(path)
     assert code == 3 and "at most 6 are allowed" in err, err
     assert digest(db) == before
+
+
+def test_column_new_in_a_later_version_is_added(published: Path) -> None:
+    # as if models.r_squared had been added to the DDL after this schema was made
+    db = _db(published)
+    _sql(db, "ALTER TABLE arflow.models DROP COLUMN r_squared",
+         "UPDATE arflow.arflow_tables SET columns = list_filter(columns, lambda c: c <> 'r_squared') WHERE table_name = 'models'")
+    code, err = _run(published)
+    assert code == 0, err
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        assert con.execute("SELECT count(r_squared) > 0 FROM arflow.models").fetchone() == (True,)
+        (cols,) = con.execute("SELECT columns FROM arflow.arflow_tables WHERE table_name = 'models'").fetchone()
+        assert "r_squared" in cols
+    finally:
+        con.close()

@@ -267,35 +267,39 @@ def _table_columns(con: duckdb.DuckDBPyConnection, schema: str) -> dict[str, dic
     return out
 
 
-def check_ownership(con: duckdb.DuckDBPyConnection, layout: TableLayout, database: Path) -> list[str]:
+def check_ownership(
+    con: duckdb.DuckDBPyConnection, layout: TableLayout, database: Path
+) -> tuple[list[str], list[tuple[str, str, str]]]:
     """Refuse a schema whose arflow-named tables arflow did not create, or whose columns were altered.
 
-    Returns the arflow tables still to be created. A schema written before
-    the marker table existed is adopted when every table has exactly the
-    columns arflow would create.
+    Returns the arflow tables still to be created and the (table, column,
+    type) columns this arflow version defines that the schema's tables never
+    had (to be added). A schema written before the marker table existed is
+    adopted when every table has exactly the columns arflow would create.
     """
     expected = _expected_columns(layout)
     present = _table_columns(con, layout.schema)
     where = f"schema {layout.schema} in {database}"
     fix = "publish this job to another schema with [publish] schema"
     ours = [t for t in DDL_FILES if t in present]
+    recorded: dict[str, set[str]] = {}
     if MARKER_TABLE in present:
-        marked = {str(r[0]).lower() for r in con.execute(
-            f"SELECT table_name FROM {quote(layout.schema)}.{MARKER_TABLE}").fetchall()}
-    elif ours:
-        marked = set(ours) if _all_match(ours, expected, present) else set()
-    else:
-        marked = set()
+        recorded = {str(t).lower(): {str(c).lower() for c in cols} for t, cols in con.execute(
+            f"SELECT table_name, columns FROM {quote(layout.schema)}.{MARKER_TABLE}").fetchall()}
+    elif ours and _all_match(ours, expected, present):
+        recorded = {t: set(present[t]) for t in ours}
     for table in ours:
-        if table not in marked:
+        if table not in recorded:
             raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
-    for table in sorted(marked - set(present) - {MARKER_TABLE}):
+    for table in sorted(set(recorded) - set(present)):
         if table in DDL_FILES:
             raise PublishError(f"{where}: arflow's table {table} was dropped; {fix} (or restore the table)")
+    new_columns: list[tuple[str, str, str]] = []
     for table in ours:
-        problem = _column_difference(expected[table], present[table], table)
+        problem, new = _column_difference(expected[table], present[table], table, recorded[table])
         if problem:
             raise PublishError(f"{where}: {problem}; {fix} (or restore the column)")
+        new_columns.extend((table, c, t) for c, t in new)
     # a coverage level has its columns in every table that carries levels
     labels = {c[len(p) + 1:] for t, prefixes in COVERAGE_COLUMNS.items() if t in present
               for p in prefixes for c in present[t] if c.startswith(p + "_")}
@@ -306,31 +310,43 @@ def check_ownership(con: duckdb.DuckDBPyConnection, layout: TableLayout, databas
                     raise PublishError(
                         f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)"
                     )
-    return [t for t in DDL_FILES if t not in present]
+    return [t for t in DDL_FILES if t not in present], new_columns
 
 
 def _all_match(tables: list[str], expected: dict, present: dict) -> bool:
-    return len(tables) == len(DDL_FILES) and all(not _column_difference(expected[t], present[t], t) for t in tables)
+    return len(tables) == len(DDL_FILES) and all(
+        _column_difference(expected[t], present[t], t, None) == (None, []) for t in tables)
 
 
-def _column_difference(expected: list[tuple[str, str]], actual: dict[str, str], table: str) -> str | None:
-    """What differs between a table's columns and arflow's definition (None when they agree)."""
+def _column_difference(
+    expected: list[tuple[str, str]], actual: dict[str, str], table: str, recorded: set[str] | None
+) -> tuple[str | None, list[tuple[str, str]]]:
+    """(what differs between a table's columns and arflow's definition or None, columns new in this version).
+
+    ``recorded``: the columns arflow created the table with (None: every
+    defined column must be there). A defined column missing from the table
+    and from ``recorded`` is new in this version, not dropped.
+    """
     want = {c.lower(): t for c, t in expected}
+    new: list[tuple[str, str]] = []
     for column, typ in want.items():
         if column not in actual:
-            return f"column {table}.{column} was dropped"
+            if recorded is not None and column not in recorded:
+                new.append((column, typ))
+                continue
+            return f"column {table}.{column} was dropped", []
         if actual[column] != typ:
-            return f"column {table}.{column} is {actual[column]}, arflow writes {typ}"
+            return f"column {table}.{column} is {actual[column]}, arflow writes {typ}", []
     prefixes = tuple(f"{p}_" for p in COVERAGE_COLUMNS.get(table, ()))
     for column, typ in actual.items():
         if column in want:
             continue
         if prefixes and column.startswith(prefixes):
             if typ != _COVERAGE_TYPES[table]:
-                return f"column {table}.{column} is {typ}, arflow writes {_COVERAGE_TYPES[table]}"
+                return f"column {table}.{column} is {typ}, arflow writes {_COVERAGE_TYPES[table]}", []
             continue
-        return f"table {table} has a column {column} that arflow did not create"
-    return None
+        return f"table {table} has a column {column} that arflow did not create", []
+    return None, new
 
 
 def _arflow_version() -> str:
@@ -465,19 +481,25 @@ class DuckDBStore:
 
     def _ensure_tables(self, con: duckdb.DuckDBPyConnection, coverage_labels: tuple[str, ...]) -> None:
         check_layout(con, self.layout, self.database)
-        missing = check_ownership(con, self.layout, self.database)
+        missing, new_columns = check_ownership(con, self.layout, self.database)
         con.execute(f"CREATE SCHEMA IF NOT EXISTS {self._schema}")
         con.execute(render_sql(MARKER_FILE, self.layout))
         marked = {str(r[0]) for r in con.execute(f"SELECT table_name FROM {self._schema}.{MARKER_TABLE}").fetchall()}
         for name in DDL_FILES:
             con.execute(render_sql(name, self.layout))
+        for table, column, kind in new_columns:  # defined by this arflow version after the table was made
+            con.execute(f"ALTER TABLE {self._schema}.{quote(table)} ADD COLUMN {quote(column)} {kind}")
+        expected = _expected_columns(self.layout)
         for name in DDL_FILES:
+            columns = [c.lower() for c, _ in expected[name]]
             if name in missing or name not in marked:  # created now, or adopted from a schema that matched exactly
                 con.execute(
-                    f"INSERT INTO {self._schema}.{MARKER_TABLE} VALUES (?, ?, ?, ?, ?, ?)",
+                    f"INSERT INTO {self._schema}.{MARKER_TABLE} VALUES (?, ?, ?, ?, ?, ?, ?)",
                     [name, dt.datetime.now(dt.timezone.utc).replace(tzinfo=None), "arflow", _arflow_version(),
-                     list(self.layout.keys), self.layout.period_type],
+                     list(self.layout.keys), self.layout.period_type, columns],
                 )
+            elif any(t == name for t, _, _ in new_columns):
+                con.execute(f"UPDATE {self._schema}.{MARKER_TABLE} SET columns = ? WHERE table_name = ?", [columns, name])
         have_levels = {c[len("lower_"):] for c in self._columns(con, "forecasts") if c.startswith("lower_")}
         if len(have_levels | set(coverage_labels)) > MAX_COVERAGE_LEVELS:
             raise PublishError(
