@@ -274,7 +274,8 @@ def _resolve_duplicates(
     dc, do = np.diff(codes), np.diff(ordinals)
     if np.all((dc > 0) | ((dc == 0) & (do > 0))):
         return codes, ordinals, values  # ordered without repeats
-    order = np.lexsort((values, ordinals, codes))  # NaN sorts last
+    # NaN sorts last; the bit pattern breaks ties between equal values (-0.0 and 0.0)
+    order = np.lexsort((values.view(np.int64), values, ordinals, codes))
     c, o, v = codes[order], ordinals[order], values[order]
     same = (c[1:] == c[:-1]) & (o[1:] == o[:-1])
     if not same.any():

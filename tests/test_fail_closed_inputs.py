@@ -299,3 +299,41 @@ def test_wednesday_among_monday_weeks_is_flagged(tmp_path: Path) -> None:
                           settings=arflow.Settings(frequency="week", gates=arflow.GateSettings(alpha=1e-6)))
     reasons = dict(zip(run.models["site"], run.models["reasons"].to_list()))
     assert "off_calendar_periods" in reasons["s02"] and reasons["s01"] == []
+
+
+def test_duplicate_resolution_ignores_row_order() -> None:
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    from arflow.core.panel import CONFLICTING_DUPLICATES, DUPLICATE_PERIODS
+    from arflow.frames import to_panel_inputs
+
+    rows = st.lists(st.tuples(st.sampled_from(["a", "b", "c"]), st.integers(0, 6),
+                              st.one_of(st.none(), st.sampled_from([1.0, 2.0, -0.0, 0.0, float("nan")]))),
+                    min_size=1, max_size=40)
+
+    @settings(max_examples=200, deadline=None, derandomize=True)
+    @given(rows=rows, seed=st.integers(0, 2**32 - 1))
+    def check(rows: list, seed: int) -> None:
+        frame = pl.DataFrame(rows, schema={"k": pl.String, "p": pl.Int64, "v": pl.Float64}, orient="row")
+        shuffled = frame.sample(fraction=1.0, shuffle=True, seed=seed)
+        results = []
+        for f in (frame, shuffled):
+            inp = to_panel_inputs(f, ["k"], "p", "v", "step")
+            keys = inp.keys["k"].to_list()
+            cells = sorted((keys[c], int(o), repr(float(v))) for c, o, v in zip(inp.codes, inp.ordinals, inp.values))
+            flags = {keys[g]: int(inp.flags[g]) for g in range(len(keys))}
+            results.append((cells, flags))
+        assert results[0] == results[1]
+        cells, flags = results[0]
+        assert len({(k, o) for k, o, _ in cells}) == len(cells)  # one row per (series, period)
+        for k, bits in flags.items():
+            values = {}
+            for kk, p, v in rows:
+                if kk == k:
+                    values.setdefault(p, set()).add("nan" if v is None or v != v else float(v))
+            repeated = any(sum(1 for kk, pp, _ in rows if kk == k and pp == p) > 1 for p in values)
+            assert bool(bits & DUPLICATE_PERIODS) == repeated
+            assert bool(bits & CONFLICTING_DUPLICATES) == any(len(s) > 1 for s in values.values())
+
+    check()
