@@ -85,6 +85,9 @@ def adf_from_fit(fit: autoreg.ARFit) -> unitroot.AdfResult:
     return unitroot.AdfResult(stat, pval, used, np.where(fit.fitted, fit.n_obs, -1), crit[:, 0], crit[:, 1], crit[:, 2])
 
 
+# overflow and 0/0 in degenerate series (values near +-1e308, exact fits) become NaN/inf,
+# which the gates then fail closed on; numpy's floating-point warnings would only be noise
+@np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore")
 def _run_block(panel: Panel, settings: Settings) -> dict:
     ms, gs, fs = settings.model, settings.gates, settings.forecast
     Y = panel.values
@@ -242,6 +245,8 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         rtest = diagnostics.TestResult(rtest.statistic, rp, rtest.df)
     finite = np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
     interval_width = _relative_interval_width(panel, fc)
+    with np.errstate(over="ignore", invalid="ignore"):  # overflowing errors give inf/NaN: the gate fails closed
+        naive_stat = None if bt is None else bt.relative_rmse_over(settings.backtest.naive_steps)
     inputs = gates.GateInputs(
         flags=panel.flags,
         n=panel.n,
@@ -259,7 +264,7 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         forecast_finite=finite,
         arch_statistic=None if arch is None else arch.statistic,
         arch_pvalue=None if arch is None else arch.pvalue,
-        naive_statistic=None if bt is None else bt.relative_rmse_over(settings.backtest.naive_steps),
+        naive_statistic=naive_stat,
         naive_threshold=1.0 + settings.backtest.naive_tolerance,
         interval_relative_width=interval_width,
     )
