@@ -3,6 +3,12 @@
 The nominal levels are the outside reference here: a 5% test must reject about
 5% of series for which its null hypothesis holds. Data are simulated Gaussian
 AR processes (the reference model itself), so the rates are exact targets.
+
+Every rate is bounded on both sides: a gate that never rejects (or a policy
+that never acts) fails a lower bound, one that always rejects fails an upper
+bound. A detection rate (power) is paired with the same settings on data where
+the null holds, whose rate has the upper bound. Bounds on
+measured rates are about four binomial standard errors from the measurement.
 """
 
 from __future__ import annotations
@@ -37,7 +43,12 @@ def test_default_residual_gate_size(ar12):
 def test_breusch_godfrey_and_holm_lag_t_are_not_oversized(ar12):
     for gate in (GateSettings(residual_test="breusch-godfrey"), GateSettings(residual_test="lag-t")):
         r = run_core(panel_of(ar12), Settings(frequency="month", gates=gate))
-        assert residual_rate(r) <= 0.07
+        # nominal 5%; measured 3.0% (Breusch-Godfrey) and 1.6% (Holm over 12 lags: it controls the
+        # chance of any false alarm at 5% and is conservative under dependent looks). Binomial SE
+        # with 2,000 series: about 0.4 and 0.3 points.
+        rate = residual_rate(r)
+        low = 0.015 if gate.residual_test == "breusch-godfrey" else 0.005
+        assert low <= rate <= 0.07, (gate.residual_test, rate)
 
 
 def test_uncorrected_per_lag_t_test_over_12_lags_is_badly_oversized(ar12):
@@ -46,13 +57,18 @@ def test_uncorrected_per_lag_t_test_over_12_lags_is_badly_oversized(ar12):
     # independent looks; residual autocorrelations of a fitted AR are not independent).
     gate = GateSettings(residual_test="lag-t", lag_correction="none")
     r = run_core(panel_of(ar12), Settings(frequency="month", gates=gate))
-    assert residual_rate(r) > 0.12
+    # measured 28.6%: above the nominal 5% by far, below the independent-looks bound of 46%
+    assert 0.12 < residual_rate(r) < 0.46
 
 
 def test_omitted_seasonal_lag_is_caught():
     Y = simulate({1: 0.2, 4: 0.5}, 2000, 120, 21)
     s = Settings(frequency="quarter", model=ModelSettings(order=1, seasonal_lag="off", unit_root="ignore"))
-    assert residual_rate(run_core(panel_of(Y), s)) >= 0.90
+    assert residual_rate(run_core(panel_of(Y), s)) >= 0.90  # measured 97.9%; the other side below
+    # the other side: with the same settings on data that have no seasonal lag (the null holds)
+    # the gate rejects at its nominal 5% (measured 4.85%), so a gate that always rejects fails here
+    Y0 = simulate({1: 0.2}, 2000, 120, 23)
+    assert 0.03 <= residual_rate(run_core(panel_of(Y0), s)) <= 0.07
 
 
 def test_seasonal_candidate_publishes_with_the_seasonal_lag():
@@ -60,7 +76,14 @@ def test_seasonal_candidate_publishes_with_the_seasonal_lag():
     for model in (ModelSettings(), ModelSettings(order=1)):
         r = run_core(panel_of(Y), Settings(frequency="quarter", model=model))
         j = list(r.fit.lags).index(4)
-        assert (r.outcome.published & r.fit.lag_mask[:, j]).mean() >= 0.90
+        assert (r.outcome.published & r.fit.lag_mask[:, j]).mean() >= 0.90  # measured 93.8%, 92.5%
+    # the other side: on data without a seasonal lag the candidate is kept about as often as its 5%
+    # significance test allows (measured 4.1% and 4.3%): a rule that always keeps it fails here
+    Y0 = simulate({1: 0.2}, 2000, 120, 24)
+    for model in (ModelSettings(), ModelSettings(order=1)):
+        r = run_core(panel_of(Y0), Settings(frequency="quarter", model=model))
+        j = list(r.fit.lags).index(4)
+        assert 0.02 <= r.fit.lag_mask[:, j].mean() <= 0.08
 
 
 def test_differencing_policy_rates():
@@ -68,8 +91,11 @@ def test_differencing_policy_rates():
     walks = 50.0 + np.cumsum(rng.normal(size=(2000, 120)), axis=1)
     seasonal = simulate({1: 0.2, 4: 0.5}, 2000, 120, 32)
     s = Settings(frequency="quarter", model=ModelSettings(unit_root="difference"))
-    assert run_core(panel_of(walks), s).differenced.mean() >= 0.90
-    assert run_core(panel_of(seasonal), s).differenced.mean() <= 0.15
+    # random walks: the ADF test at 5% rejects its true null in about 5% of walks, so about 95%
+    # are differenced (measured 93.1%); a policy that never or always differences fails
+    assert 0.90 <= run_core(panel_of(walks), s).differenced.mean() <= 0.97
+    # stationary seasonal AR: rarely differenced (measured 2.9%)
+    assert 0.005 <= run_core(panel_of(seasonal), s).differenced.mean() <= 0.15
 
 
 def test_backtest_gate_beats_naive_rates():
@@ -83,8 +109,11 @@ def test_backtest_gate_beats_naive_rates():
     walks = 50.0 + np.cumsum(np.random.default_rng(52).normal(size=(1000, 150)), axis=1)
     ratio_ar = run_core(panel_of(ar), s).outcome.gates["beats_naive"].statistic
     ratio_rw = run_core(panel_of(walks), s).outcome.gates["beats_naive"].statistic
-    assert np.nanmean(ratio_ar < 1.0) >= 0.90
-    assert np.nanmean(ratio_rw < 1.0 - s.backtest.naive_tolerance) <= 0.10
+    assert np.nanmean(ratio_ar < 1.0) >= 0.90  # measured 96.1%; the random walks below are the other side
+    # measured 4.1%; a statistic that can never claim skill (always >= 1) fails the lower bound
+    assert 0.01 <= np.nanmean(ratio_rw < 1.0 - s.backtest.naive_tolerance) <= 0.10
+    # and every series was scored (a NaN statistic would silently drop out of the rates above)
+    assert np.isfinite(ratio_ar).all() and np.isfinite(ratio_rw).all()
 
 
 def test_worker_processes_give_the_same_numbers():

@@ -198,6 +198,36 @@ def test_too_short_and_constant_series_do_not_raise():
     Y[1, :] = 7.0
     Y[2, :] = simulated(3, n=50)
     f = fit_ar(Y, order="auto", max_order=4)
+    # five values cannot carry an AR model with MIN_RESID_DF residual degrees of freedom: not
+    # fitted, and every number is NaN (never a zero that could pass for an estimate)
     assert not f.fitted[0]
-    assert np.isnan(f.coef[0]).all() or np.all(f.coef[0] == 0) or np.isnan(f.sigma[0])
+    assert f.n_obs[0] == 0 and not f.lag_mask[0].any()
+    for name in ("intercept", "sigma", "aic", "max_root_modulus"):
+        assert np.isnan(getattr(f, name)[0]), name
+    assert np.isnan(f.coef[0]).all() and np.isnan(f.resid[0]).all()
+    # a constant series is fitted exactly by its own level: y_t = 7 + 0 * y_(t-1), zero residuals,
+    # sigma 0 and undefined t statistics (0 / 0). The pipeline flags it "constant_series" and never
+    # fits or publishes it (test_constant_series_is_quarantined_by_the_pipeline).
+    assert f.fitted[1] and f.n_obs[1] == 49
+    assert f.lags[f.lag_mask[1]].tolist() == [1]
+    assert f.intercept[1] == 7.0 and np.all(f.coef[1] == 0.0)
+    assert f.sigma[1] == 0.0 and np.all(f.resid[1, -49:] == 0.0)
+    assert np.isnan(f.t_stat[1, f.lag_mask[1]]).all()
+    assert f.mean_level[1] == 7.0
     assert f.fitted[2]
+    ref = AutoReg(Y[2], list(f.lags[f.lag_mask[2]]), trend="c").fit()  # statsmodels AutoReg
+    assert rel(np.r_[f.intercept[2], f.coef[2][f.lag_mask[2]]], ref.params) < 1e-8
+
+
+def test_constant_series_is_quarantined_by_the_pipeline():
+    from arflow.core.gates import REASONS
+    from arflow.core.pipeline import run_core
+    from arflow.sample.simulate import to_panel
+    from arflow.settings import Settings
+
+    Y = np.vstack([np.full(60, 7.0), simulated(4, phi=(0.5,), n=60)])
+    core = run_core(to_panel(Y), Settings(frequency="step"))
+    assert not core.fit.fitted[0] and core.fit.fitted[1]
+    assert core.outcome.reason_lists()[0] == ["constant_series"]
+    assert core.outcome.published.tolist() == [False, True]
+    assert core.outcome.reasons[0, REASONS.index("constant_series")]

@@ -13,14 +13,14 @@ import numpy as np
 import pytest
 from scipy import stats
 
-sm = pytest.importorskip("statsmodels.api")
-from statsmodels.stats.diagnostic import acorr_breusch_godfrey, acorr_ljungbox, het_arch  # noqa: E402
-from statsmodels.stats.multitest import multipletests  # noqa: E402
-from statsmodels.tsa.stattools import acf as sm_acf  # noqa: E402
+import statsmodels.api as sm
+from statsmodels.stats.diagnostic import acorr_breusch_godfrey, acorr_ljungbox, het_arch
+from statsmodels.stats.multitest import multipletests
+from statsmodels.tsa.stattools import acf as sm_acf
 
-from arflow.core import ols  # noqa: E402
-from arflow.sample.simulate import right_align  # noqa: E402
-from arflow.core.diagnostics import (  # noqa: E402
+from arflow.core import ols
+from arflow.sample.simulate import right_align
+from arflow.core.diagnostics import (
     AcfResult,
     arch_lm,
     benjamini_hochberg,
@@ -302,3 +302,139 @@ def test_breusch_godfrey_size_on_ar1_residuals():
     res = ols.fit(X, y, np.ones_like(y))
     rate = np.mean(breusch_godfrey(res.resid, X, None, 4).pvalue < 0.05)
     assert 0.035 <= rate <= 0.065, rate
+
+
+# ----------------------------------------------------------------------------- the pipeline's residual test
+
+
+@pytest.mark.parametrize("lags", [6, 12])
+def test_pipeline_ljung_box_df_is_lags_minus_p_for_contiguous_ar(lags):
+    # Contiguous AR(p) models (lags 1..p, no seasonal lag): the pipeline refers Ljung-Box Q at
+    # `residual_lags` K to chi-square with K - p degrees of freedom (Ljung & Box 1978; statsmodels
+    # acorr_ljungbox(resid, lags=[K], model_df=p)), and the gates table carries that p-value.
+    from statsmodels.tsa.ar_model import AutoReg
+
+    from arflow.core.pipeline import run_core
+    from arflow.sample.simulate import simulate_ar, to_panel
+    from arflow.settings import BacktestSettings, GateSettings, ModelSettings, Settings
+
+    Y = simulate_ar({1: 0.5, 2: 0.2}, 4, 120, 404)
+    for p in (1, 2, 3):
+        s = Settings(
+            frequency="step",
+            model=ModelSettings(order=p, seasonal_lag="off", unit_root="ignore"),
+            gates=GateSettings(residual_lags=lags),
+            backtest=BacktestSettings(enabled=False),
+        )
+        core = run_core(to_panel(Y), s)
+        assert core.fit.lag_mask.sum(axis=1).tolist() == [p] * 4
+        assert core.residual_test.df.tolist() == [float(lags - p)] * 4
+        row = core.outcome.gates["residual_autocorrelation"]
+        for g in range(4):
+            resid = AutoReg(Y[g], p, trend="c").fit().resid
+            ref = acorr_ljungbox(resid, lags=[lags], model_df=p)  # statsmodels reference
+            np.testing.assert_allclose(row.statistic[g], ref["lb_stat"].iloc[0], rtol=1e-9)
+            np.testing.assert_allclose(row.pvalue[g], ref["lb_pvalue"].iloc[0], rtol=1e-9)
+
+
+# ----------------------------------------------------------------------------- edges found by mutation testing
+
+
+def test_residual_acf_is_scale_free_and_allows_one_lag():
+    # autocorrelations do not depend on the residuals' units (definition): tiny residuals give
+    # statsmodels' numbers too, and a single lag is a valid request
+    e = SERIES["ar2"] * 1e-4
+    a = residual_acf(e, 1)
+    assert a.acf.shape == (1, 1)
+    np.testing.assert_allclose(a.acf[0], sm_acf(e, nlags=1, adjusted=False, fft=False)[1:], rtol=1e-10)
+    lb = ljung_box(e, 1)  # one lag: statsmodels acorr_ljungbox(e, lags=[1])
+    np.testing.assert_allclose(lb.statistic[0], acorr_ljungbox(e, lags=[1])["lb_stat"].iloc[0], rtol=RTOL)
+    assert lb.df[0] == 1.0
+
+
+def test_residual_acf_of_three_values_has_a_t_p_value():
+    # n = 3: r_1 is defined and its t test has n - 2 = 1 degree of freedom (scipy reference)
+    e = np.array([1.0, -2.0, 0.5])
+    a = residual_acf(e, 2)
+    r1 = sm_acf(e, nlags=1, adjusted=False, fft=False)[1]
+    np.testing.assert_allclose(a.acf[0, 0], r1, rtol=1e-12)
+    np.testing.assert_allclose(a.pvalue[0, 0], 2 * stats.t.sf(abs(r1) * np.sqrt(3), 1), rtol=1e-10)
+
+
+def test_more_lags_than_periods_give_nan_columns():
+    a = residual_acf(np.array([[1.0, 3.0, 2.0, 5.0]]), 8)
+    assert a.acf.shape == (1, 8) and np.isfinite(a.acf[0, :3]).all() and np.isnan(a.acf[0, 3:]).all()
+
+
+@pytest.mark.parametrize("row", [[1.0, np.nan], [np.nan, 1.0, np.nan, 2.0]])
+def test_nan_after_the_start_is_rejected(row):
+    with pytest.raises(ValueError, match=r"^panel is not right-aligned: NaN inside a series \(only leading NaN allowed\)$"):
+        ljung_box(np.array([row]), 1)
+
+
+def test_argument_errors_name_the_problem():
+    e = SERIES["ar2"]
+    with pytest.raises(ValueError, match="^max_lag must be >= 1$"):
+        residual_acf(e, 0)
+    with pytest.raises(ValueError, match="^lags must be >= 1$"):
+        ljung_box(e, 0)
+    with pytest.raises(ValueError, match="^AcfResult has 5 lags, need 10$"):
+        ljung_box(residual_acf(e, 5), 10)
+    with pytest.raises(ValueError, match="^nlags must be >= 1$"):
+        breusch_godfrey(e, None, None, 0)
+    with pytest.raises(ValueError, match="^nlags must be >= 1$"):
+        arch_lm(e, 0)
+    with pytest.raises(ValueError, match=r"^X shape \(1, 5, 1\) does not match resid shape \(1, 200\)$"):
+        breusch_godfrey(e, np.zeros((1, 5, 1)), None, 2)
+    with pytest.raises(ValueError, match=r"^resid must be a \(G, T\) panel or a 1-D series, got shape \(2, 2, 2\)$"):
+        arch_lm(np.zeros((2, 2, 2)), 1)
+
+
+def test_breusch_godfrey_without_regressors_and_with_a_2d_design():
+    y = SERIES["nile"]
+    # no regressors beyond the constant: statsmodels acorr_breusch_godfrey on OLS(y, 1)
+    ref0 = acorr_breusch_godfrey(sm.OLS(y, np.ones((len(y), 1))).fit(), nlags=3, result_object=True)
+    out0 = breusch_godfrey(y - y.mean(), None, None, 3)
+    np.testing.assert_allclose(out0.statistic[0], ref0.lm, rtol=RTOL)
+    np.testing.assert_allclose(out0.pvalue[0], ref0.lmpval, rtol=RTOL)
+    # one series given as a 1-D residual vector and a 2-D (T, k) design
+    res, X = _sm_ar_fit(y, 2)
+    out = breusch_godfrey(np.asarray(res.resid), X, None, 4)
+    ref = acorr_breusch_godfrey(res, nlags=4, result_object=True)
+    np.testing.assert_allclose(out.statistic[0], ref.lm, rtol=RTOL)
+    assert out.df[0] == 4.0
+
+
+def test_lm_tests_are_computed_down_to_their_documented_minimum_length():
+    rng = np.random.default_rng(9)
+    # Breusch-Godfrey: NaN when n <= 1 + k + nlags (k regressors), a number from n = 2 + k + nlags
+    k, nlags = 1, 2
+    for n, finite in ((2 + k + nlags, True), (1 + k + nlags, False)):
+        e, X = rng.standard_normal(n), rng.standard_normal((n, k))
+        assert np.isfinite(breusch_godfrey(e, X, None, nlags).statistic[0]) == finite, n
+    # ARCH LM: T' = n - q rows; NaN when T' <= q + 1, a number from T' = q + 2
+    q = 2
+    for n, finite in ((2 * q + 2, True), (2 * q + 1, False)):
+        out = arch_lm(rng.standard_normal(n), q)
+        assert np.isfinite(out.statistic[0]) == finite, n
+        assert out.df[0] == q
+
+
+def test_multiplicity_adjustments_keep_shape_and_axis():
+    rng = np.random.default_rng(13)
+    # a scalar stays a scalar (one p-value: nothing to adjust)
+    assert np.ndim(holm(0.03)) == 0 and holm(0.03) == 0.03
+    assert np.ndim(benjamini_hochberg(0.2)) == 0 and benjamini_hochberg(0.2) == 0.2
+    # 1-D input, and a 2-D panel adjusted along either axis (statsmodels multipletests per slice)
+    p1 = rng.uniform(size=9) ** 2
+    np.testing.assert_allclose(holm(p1), multipletests(p1, method="holm")[1], rtol=1e-12)
+    P = rng.uniform(size=(4, 7)) ** 2
+    for axis in (0, 1):
+        for fn, method in ((holm, "holm"), (benjamini_hochberg, "fdr_bh")):
+            out = fn(P, axis=axis)
+            assert out.shape == P.shape
+            for i in range(P.shape[1 - axis]):
+                sl = (slice(None), i) if axis == 0 else (i, slice(None))
+                np.testing.assert_allclose(out[sl], multipletests(P[sl], method=method)[1], rtol=1e-12)
+    Q = rng.uniform(size=(2, 3, 5))
+    np.testing.assert_allclose(benjamini_hochberg(Q, axis=2)[1, 2], multipletests(Q[1, 2], method="fdr_bh")[1], rtol=1e-12)

@@ -11,7 +11,7 @@ import polars as pl
 import pytest
 
 from arflow.cli import main
-from arflow.errors import PublishError
+from arflow.errors import PublishError, SourceError
 from arflow.job import run_job
 from arflow.job_file import load_job
 from arflow.sample.panels import ar_panel, default_job, job_toml, mixed_panel, warehouse_state, write_table
@@ -148,13 +148,15 @@ def test_lakehouse_only_and_layout_mismatch(tmp_path: Path, capsys) -> None:
     assert main(["run", str(path)]) == 3
     err = capsys.readouterr().err
     assert "keyed by (site)" in err and "[publish] schema" in err and len(err.strip().splitlines()) == 1
-    with pytest.raises(PublishError):
+    with pytest.raises(PublishError, match=r"keyed by \(site\)"):
         run_job(load_job(path))
 
 
 def test_missing_lakehouse_reader_errors(tmp_path: Path) -> None:
-    with pytest.raises(Exception, match="does not exist"):
+    with pytest.raises(SourceError, match=r"lakehouse folder .*nowhere.* does not exist; check the lakehouse path") as err:
         lake.committed_runs(tmp_path / "nowhere")
+    assert err.value.exit_code == 3  # a source problem: exit 3, one line
+    assert "\n" not in str(err.value)
     (tmp_path / "empty" / "arflow").mkdir(parents=True)
     assert lake.read_table(tmp_path / "empty", "models").height == 0
     assert lake.published_forecasts(tmp_path / "empty").height == 0

@@ -15,15 +15,15 @@ import warnings
 import numpy as np
 import pytest
 
-sm = pytest.importorskip("statsmodels.api")
-from statsmodels.tools.sm_exceptions import InterpolationWarning  # noqa: E402
-from statsmodels.tsa.adfvalues import mackinnoncrit, mackinnonp  # noqa: E402
-from statsmodels.tsa.stattools import adfuller  # noqa: E402
-from statsmodels.tsa.stattools import kpss as sm_kpss  # noqa: E402
+import statsmodels.api as sm
+from statsmodels.tools.sm_exceptions import InterpolationWarning
+from statsmodels.tsa.adfvalues import mackinnoncrit, mackinnonp
+from statsmodels.tsa.stattools import adfuller
+from statsmodels.tsa.stattools import kpss as sm_kpss
 
-from arflow.core import unitroot  # noqa: E402
-from arflow.core.unitroot import adf, kpss, mackinnon_crit, mackinnon_pvalue  # noqa: E402
-from arflow.sample.simulate import right_align  # noqa: E402
+from arflow.core import unitroot
+from arflow.core.unitroot import adf, kpss, mackinnon_crit, mackinnon_pvalue
+from arflow.sample.simulate import right_align
 
 RTOL = 1e-6
 
