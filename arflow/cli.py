@@ -18,13 +18,15 @@ import traceback
 from pathlib import Path
 from typing import Any, TextIO
 
-from .errors import ArflowError
+from .errors import ArflowError, clean_message
+from .runtime import install_signal_handlers, signals_held, stop_signal
 
 EXIT_OK = 0
 EXIT_INTERNAL = 1
 EXIT_USAGE = 2
 EXIT_DATA = 3
 EXIT_ALARM = 4
+EXIT_INTERRUPTED = 130
 
 EPILOG = """exit codes:
   0  success
@@ -39,7 +41,7 @@ class _Parser(argparse.ArgumentParser):
     """argparse with a one-line usage error (exit 2)."""
 
     def error(self, message: str) -> None:  # type: ignore[override]
-        self.exit(EXIT_USAGE, f"arflow: error: {message}; see '{self.prog} --help'\n")
+        self.exit(EXIT_USAGE, f"arflow: error: {clean_message(message)}; see '{self.prog} --help'\n")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -232,12 +234,16 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
 
 # -- entry point ------------------------------------------------------------
 
-def _one_line(text: str) -> str:
-    return " ".join(str(text).split())
+def _one_line(text: object) -> str:
+    return clean_message(text)
 
 
-def _on_term(signum: int, frame: Any) -> None:
-    raise KeyboardInterrupt
+_INTERRUPTED = "interrupted; nothing was published by this run"
+
+
+def _interrupted_by_signal() -> bool:
+    """A stop signal arrived before the publish committed (whatever error it surfaced as)."""
+    return stop_signal() is not None and not signals_held()
 
 
 def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextIO | None = None) -> int:
@@ -250,18 +256,23 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
     except SystemExit as exc:  # usage error or --help/--version
         return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_USAGE
     reporter = _Reporter(args.log_format, out, err)
-    previous = signal.getsignal(signal.SIGTERM)
+    # SIGTERM and Ctrl-C roll back cleanly (exit 130); once the publish commits they wait for the run's own status
+    restore = install_signal_handlers()
     try:
-        signal.signal(signal.SIGTERM, _on_term)  # roll back cleanly when a scheduler stops us
-    except ValueError:  # not the main thread
-        previous = None
-    try:
-        return args.handler(args, reporter)
+        code = args.handler(args, reporter)
+        if stop_signal() is not None:
+            reporter.err.write(f"arflow: note: {_signal_name(stop_signal())} arrived after the run committed; "
+                               f"exiting with the run's status {code}\n")
+        return code
     except ArflowError as exc:
+        if _interrupted_by_signal():
+            return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
         return _fail(reporter, exc.exit_code, type(exc).__name__, _one_line(str(exc)))
     except KeyboardInterrupt:
-        return _fail(reporter, 130, "Interrupted", "interrupted; nothing was published by this run")
+        return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
     except Exception as exc:  # noqa: BLE001 - last line of defence
+        if _interrupted_by_signal():  # e.g. DuckDB's RuntimeError('Query interrupted')
+            return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
         full = _disk_full(exc)
         if full:
             return _fail(reporter, EXIT_DATA, "DiskFull", full)
@@ -270,8 +281,16 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
         message = f"internal error ({type(exc).__name__}: {_one_line(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
         return _fail(reporter, EXIT_INTERNAL, type(exc).__name__, message)
     finally:
-        if previous is not None:
-            signal.signal(signal.SIGTERM, previous)
+        # as the program itself (no argv given) the status is decided now: a late stop signal must not
+        # turn it into death by signal (-15) while the interpreter shuts down, so it is ignored
+        restore(ignore=argv is None)
+
+
+def _signal_name(signum: int | None) -> str:
+    try:
+        return signal.Signals(signum).name if signum is not None else "a signal"
+    except ValueError:
+        return f"signal {signum}"
 
 
 def _disk_full(exc: BaseException) -> str | None:
@@ -298,6 +317,7 @@ def _disk_full(exc: BaseException) -> str | None:
 
 def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:
     reporter.clear()
+    message = _one_line(message)
     if reporter.json:
         reporter.emit({"event": "error", "exit_code": code, "error": kind, "message": message})
     reporter.err.write(f"arflow: error: {message}\n")

@@ -2,15 +2,64 @@
 
 from __future__ import annotations
 
+import unicodedata
+
+#: a run of non-space characters longer than this is cut in messages (a 1 MB name stays short)
+MAX_TOKEN = 120
+#: the longest message line printed
+MAX_LINE = 1_000
+_UNSAFE = frozenset(("Cc", "Cf", "Cs", "Co", "Cn", "Zl", "Zp"))
+
+
+def _cut(text: str, limit: int, keep_tail: int) -> str:
+    if len(text) <= limit:
+        return text
+    cut = len(text) - limit
+    return f"{text[:limit - keep_tail]}...[{cut:,} characters cut]...{text[len(text) - keep_tail:]}"
+
+
+def _escape(text: str) -> str:
+    if text.isascii() and text.isprintable():
+        return text
+    out = []
+    for ch in text:
+        if unicodedata.category(ch) in _UNSAFE:
+            out.append(ch.encode("unicode_escape", "backslashreplace").decode("ascii"))
+        else:
+            out.append(ch)
+    return "".join(out)
+
+
+def clean_message(value: object, limit: int = MAX_LINE) -> str:
+    """``value`` as one safe, short line for a terminal or a log.
+
+    Whitespace (newlines included) collapses to single spaces; control and
+    invisible formatting characters (an ANSI escape, a bidi override) are shown
+    escaped (``\\x1b``) so they never reach a terminal raw; a run of more than
+    :data:`MAX_TOKEN` non-space characters and a line of more than ``limit``
+    characters are cut in the middle, saying how much was cut.
+
+    >>> clean_message("no column 'a\\x1b[2Jb'\\nsee docs")
+    "no column 'a\\\\x1b[2Jb' see docs"
+    >>> len(clean_message("x" * 1_000_000)) < 200
+    True
+    """
+    text = " ".join(_cut(word, MAX_TOKEN, 20) for word in str(value).split())
+    return _escape(_cut(text, limit, 200))
+
 
 class ArflowError(Exception):
     """Base class of errors caused by input or configuration (not bugs).
 
-    The message is one line that names what is wrong and how to fix it.
-    ``exit_code`` is what the command line returns for it.
+    The message is one line that names what is wrong and how to fix it
+    (made safe and short by :func:`clean_message`). ``exit_code`` is what
+    the command line returns for it.
     """
 
     exit_code = 2
+
+    def __init__(self, message: object = "", *args: object) -> None:
+        super().__init__(clean_message(message), *args)
 
 
 class SettingsError(ArflowError):
@@ -27,6 +76,10 @@ class SourceError(ArflowError):
 
 class SchemaError(SourceError):
     """A column is missing or has the wrong type."""
+
+
+class SourceAccessError(SourceError):
+    """The source query tried to reach something outside the job's named source (a file, the network, an extension)."""
 
 
 class PublishError(ArflowError):

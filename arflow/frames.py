@@ -372,6 +372,7 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
         pl.Series("decision", np.where(published, "published", "quarantined")),
         _list_column("reasons", out.reasons, np.broadcast_to(reason_names, out.reasons.shape), pa.string()),
     )
+    models = models.with_columns(*_outlier_columns(res, codec))
     # the level of a differenced model is a random walk with drift: no mean-reverting level
     models = models.with_columns(
         pl.when(pl.col("transform") == "difference").then(None).otherwise(pl.col("mean_reverting_level"))
@@ -428,6 +429,27 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
     if res.backtest is not None:
         out["backtests"] = backtest_frame(keys, res)
     return out
+
+
+def _outlier_columns(res: CoreResult, codec) -> list[pl.Series]:
+    """``outlier_periods`` (periods of the detected additive outliers) and ``outlier_effects``
+    (their estimated size, in the units of the modelled series), empty lists when none."""
+    G = res.panel.n_series
+    o = res.outliers
+    if o is None:
+        eff = np.full((G, 0), np.nan)
+    else:
+        eff = o.effect
+    W = eff.shape[1]
+    mask = np.isfinite(eff)
+    col = np.broadcast_to(np.arange(W), eff.shape)
+    ordinals = res.panel.last_period[:, None] - (W - 1 - col)
+    counts = mask.sum(axis=1)
+    offsets = np.zeros(G + 1, dtype=np.int32)
+    np.cumsum(counts, out=offsets[1:])
+    flat = codec.decode(ordinals[mask]).to_arrow()
+    periods = pl.Series("outlier_periods", pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), flat))
+    return [periods, _list_column("outlier_effects", mask, np.nan_to_num(eff), pa.float64())]
 
 
 def backtest_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:

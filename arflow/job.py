@@ -8,6 +8,7 @@ optional ``on_event`` callback as plain dicts (``{"event": "start", ...}``).
 from __future__ import annotations
 
 import datetime as dt
+import os
 import time
 from collections.abc import Callable
 from concurrent.futures import Future
@@ -22,6 +23,7 @@ from . import api
 from .allocator import tune_for_batch
 from .errors import SourceError
 from .job_file import JobSpec, load_job
+from .runtime import bind_to_parent, stop_pool
 from .settings import coverage_label
 from .warehouse.duckdb_source import DuckDBSource
 from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, preflight_target, run_id_for
@@ -315,7 +317,9 @@ def _forecast_chunks(
 
     ctx = mp.get_context("spawn")
     workers = min(spec.run.workers, n_chunks)
-    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_start_worker) as pool:
+    # workers die with this process (kill -9 included) and do not hold its output open
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_start_worker, initargs=(os.getpid(),))
+    try:
         # start the workers (and their imports) while this process runs the source query
         for _ in range(workers):
             pool.submit(_start_worker)
@@ -326,11 +330,17 @@ def _forecast_chunks(
                 progress(pending.pop(0).result())
         for fut in pending:
             progress(fut.result())
+    except BaseException:
+        stop_pool(pool)  # an error or a stop signal: end the workers now, before the stage is removed
+        raise
+    pool.shutdown(wait=True)
     return summary
 
 
-def _start_worker() -> None:
-    """Worker process set-up: allocator tuning and the imports a chunk needs."""
+def _start_worker(parent: int | None = None) -> None:
+    """Worker process set-up: bound to its parent's life, allocator tuning and the imports a chunk needs."""
+    if parent is not None:
+        bind_to_parent(parent)
     tune_for_batch()
     from .core import pipeline  # noqa: F401  (imports numpy, scipy.special and the core once)
 

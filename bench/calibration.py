@@ -16,7 +16,7 @@ import numpy as np
 from arflow.core.gates import REASONS
 from arflow.sample.simulate import random_walks, simulate_ar as simulate, to_panel as panel_of
 from arflow.core.pipeline import run_core
-from arflow.settings import GateSettings, ModelSettings, Settings
+from arflow.settings import BacktestSettings, GateSettings, ModelSettings, Settings
 
 
 def rate(result, reason: str) -> float:
@@ -69,3 +69,133 @@ def main() -> None:
 
 if __name__ == "__main__":
     main()
+
+
+# ---- prediction-interval coverage and outlier detection (separate from the table above) -----------------
+
+
+def interval_coverage(Y: np.ndarray, n: int, frequency: str = "month", steps=(1, 12), parameter_uncertainty: bool = True,
+                      model: ModelSettings | None = None) -> dict:
+    """Empirical coverage of the published intervals: fit on the first ``n`` points, score the next ``max(steps)``.
+
+    Returns {(level, step): share of series whose actual fell inside}, over all fitted series
+    (whatever transform the pipeline chose for them; gates are not applied).
+    """
+    from arflow.settings import BacktestSettings, ForecastSettings
+
+    H = max(steps)
+    s = Settings(frequency=frequency, model=model or ModelSettings(),
+                 forecast=ForecastSettings(horizon=H, parameter_uncertainty=parameter_uncertainty),
+                 backtest=BacktestSettings(enabled=False))
+    r = run_core(panel_of(Y[:, :n]), s)
+    ok = r.fit.fitted
+    out = {}
+    for ci, level in enumerate(r.forecasts.coverage):
+        for h in steps:
+            a = Y[:, n + h - 1]
+            inside = (a >= r.forecasts.lower[ci, :, h - 1]) & (a <= r.forecasts.upper[ci, :, h - 1])
+            out[(level, h)] = float(inside[ok].mean())
+    return out
+
+
+COVERAGE_CASES = [
+    ("AR(1) 0.5", lambda G, T, seed: simulate({1: 0.5}, G, T, seed)),
+    ("AR(2) 0.5, 0.3", lambda G, T, seed: simulate({1: 0.5, 2: 0.3}, G, T, seed)),
+    ("AR(1) 0.9", lambda G, T, seed: simulate({1: 0.9}, G, T, seed)),
+    ("random walk", lambda G, T, seed: random_walks(G, T, seed)),
+]
+
+
+def coverage_table(G: int = 2000, lengths=(40, 60, 120), seed: int = 500) -> list[tuple]:
+    """Rows (case, n, method, {(level, step): coverage}) for plug-in and corrected intervals."""
+    rows = []
+    for k, (label, gen) in enumerate(COVERAGE_CASES):
+        for j, n in enumerate(lengths):
+            Y = gen(G, n + 12, seed + 10 * k + j)
+            for pu in (False, True):
+                rows.append((label, n, "corrected" if pu else "plug-in", interval_coverage(Y, n, parameter_uncertainty=pu)))
+    return rows
+
+
+def print_coverage(G: int = 2000) -> None:
+    print(f"\nPrediction-interval coverage, {G} series per row (fit on n points, score steps 1 and 12)")
+    print(f"{'data':<16} {'n':>4} {'intervals':<10} {'80% h1':>7} {'80% h12':>8} {'95% h1':>7} {'95% h12':>8}")
+    for label, n, method, c in coverage_table(G):
+        print(f"{label:<16} {n:>4} {method:<10} {c[(0.8, 1)]:>7.1%} {c[(0.8, 12)]:>8.1%} {c[(0.95, 1)]:>7.1%} {c[(0.95, 12)]:>8.1%}")
+
+
+OUTLIER_CASES = [
+    # label, frequency, generator(G, T, seed), length
+    ("AR(1) 0.5", "month", lambda G, T, seed: simulate({1: 0.5}, G, T, seed), 120),
+    ("AR(2) 0.5, 0.3", "month", lambda G, T, seed: simulate({1: 0.5, 2: 0.3}, G, T, seed), 120),
+    ("white noise", "month", lambda G, T, seed: simulate({1: 0.0}, G, T, seed), 120),
+    ("AR(1) 0.9", "month", lambda G, T, seed: simulate({1: 0.9}, G, T, seed), 120),
+    ("monthly 0.3 y(t-1) + 0.5 y(t-12)", "month", lambda G, T, seed: simulate({1: 0.3, 12: 0.5}, G, T, seed), 120),
+    ("weekly 0.3 y(t-1) + 0.5 y(t-52)", "week", lambda G, T, seed: simulate({1: 0.3, 52: 0.5}, G, T, seed), 156),
+    ("random walk", "month", lambda G, T, seed: random_walks(G, T, seed), 120),
+    ("AR(1) 0.5, short", "month", lambda G, T, seed: simulate({1: 0.5}, G, T, seed), 30),
+    ("AR(1) 0.5, short", "month", lambda G, T, seed: simulate({1: 0.5}, G, T, seed), 45),
+    ("AR(1) 0.5, short", "month", lambda G, T, seed: simulate({1: 0.5}, G, T, seed), 60),
+]
+
+
+def outlier_rates(Y: np.ndarray, frequency: str, size: float = 8.0, seed: int = 0) -> tuple[float, float]:
+    """(false-flag rate on the clean series, detection rate of one planted additive outlier).
+
+    The outlier (``size`` innovation standard deviations, random sign) is added at one period drawn
+    uniformly from the last three quarters of each series; "caught" means that period is flagged.
+    """
+    G, T = Y.shape
+    s = Settings(frequency=frequency, backtest=BacktestSettings(enabled=False))
+    clean = run_core(panel_of(Y), s)
+    ok = clean.fit.fitted
+    false = float((clean.outliers.count[ok] > 0).mean())
+    rng = np.random.default_rng(seed)
+    t = rng.integers(T // 4, T, size=G)
+    Z = Y.copy()
+    Z[np.arange(G), t] += size * rng.choice([-1.0, 1.0], size=G)
+    r = run_core(panel_of(Z), s)
+    W = r.outliers.effect.shape[1]
+    col = t - T + W
+    caught = np.isfinite(r.outliers.effect[np.arange(G), col])
+    return false, float(caught[r.fit.fitted].mean())
+
+
+def outlier_table(G: int = 2000, seed: int = 700) -> list[tuple]:
+    rows = []
+    for k, (label, freq, gen, T) in enumerate(OUTLIER_CASES):
+        false, caught = outlier_rates(gen(G, T, seed + k), freq, seed=seed + 100 + k)
+        rows.append((label, T, false, caught))
+    return rows
+
+
+def print_outliers(G: int = 2000) -> None:
+    print(f"\nAdditive outliers (default policy), {G} series per row: false flags on clean series, one 8-SD outlier caught")
+    print(f"{'data':<36} {'n':>4} {'false flag':>10} {'caught':>8}")
+    for label, T, false, caught in outlier_table(G):
+        print(f"{label:<36} {T:>4} {false:>10.1%} {caught:>8.1%}")
+
+
+def coverage_gate_rate(Y: np.ndarray, frequency: str = "month", parameter_uncertainty: bool = True,
+                       origins: int = 24) -> float:
+    """Share of fitted series the interval_calibration gate fails (defaults: step 1, 5%, Bonferroni over levels)."""
+    from arflow.settings import ForecastSettings
+
+    s = Settings(frequency=frequency, forecast=ForecastSettings(parameter_uncertainty=parameter_uncertainty),
+                 backtest=BacktestSettings(origins=origins, coverage_gate="enforce"))
+    r = run_core(panel_of(Y), s)
+    row = r.outcome.gates["interval_calibration"]
+    return float((~row.passed[r.fit.fitted]).mean())
+
+
+def print_coverage_gate(G: int = 2000) -> None:
+    print(f"\ninterval_calibration gate (5%, step 1, 24 origins), {G} series of 120 per row: share failed")
+    for label, gen in COVERAGE_CASES:
+        Y = gen(G, 120, 900)
+        print(f"{label:<16} corrected {coverage_gate_rate(Y):>6.1%}   plug-in {coverage_gate_rate(Y, parameter_uncertainty=False):>6.1%}")
+
+
+if __name__ == "__main__":
+    print_coverage()
+    print_outliers()
+    print_coverage_gate()

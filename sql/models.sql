@@ -26,5 +26,7 @@ CREATE TABLE IF NOT EXISTS ${schema}.models (
     last_period          ${period_type},
     quality_flags        VARCHAR[],
     decision             VARCHAR NOT NULL,
-    reasons              VARCHAR[]
+    reasons              VARCHAR[],
+    outlier_periods      ${period_type}[],
+    outlier_effects      DOUBLE[]
 );

@@ -39,25 +39,23 @@ HORIZON = 12
 def plug_in_settings(order: int) -> Settings:
     """The settings of every comparison in this file: fixed order, levels, plug-in intervals.
 
-    Another change adds parameter-uncertainty corrections to the intervals behind
-    ``ForecastSettings.parameter_uncertainty`` (default true). statsmodels' intervals are the
-    classic plug-in ones, so once that setting exists this helper MUST pass
-    ``parameter_uncertainty=False`` to ``ForecastSettings`` (and :func:`plug_in_job` must set
-    ``[forecast] parameter_uncertainty = false``).
+    statsmodels' intervals are the classic plug-in ones, so the parameter-uncertainty
+    correction (``ForecastSettings.parameter_uncertainty``, default true) is switched off, and
+    so is outlier treatment (a flagged period would add intervention terms AutoReg does not have).
     """
     return Settings(
         frequency="month",
-        model=ModelSettings(order=order, seasonal_lag="off", unit_root="ignore"),
-        forecast=ForecastSettings(horizon=HORIZON, coverage=COVERAGE),
+        model=ModelSettings(order=order, seasonal_lag="off", unit_root="ignore", outliers="off"),
+        forecast=ForecastSettings(horizon=HORIZON, coverage=COVERAGE, parameter_uncertainty=False),
         backtest=BacktestSettings(enabled=False),
     )
 
 
 def plug_in_job(database: str, order: int) -> dict:
-    """The job-file equivalent of :func:`plug_in_settings` (see its note on parameter_uncertainty)."""
+    """The job-file equivalent of :func:`plug_in_settings` (plug-in intervals, no outlier treatment)."""
     sections = default_job(database)
-    sections["model"] = {"order": order, "seasonal_lag": "off", "unit_root": "ignore"}
-    sections["forecast"] = {"horizon": HORIZON, "coverage": list(COVERAGE)}
+    sections["model"] = {"order": order, "seasonal_lag": "off", "unit_root": "ignore", "outliers": "off"}
+    sections["forecast"] = {"horizon": HORIZON, "coverage": list(COVERAGE), "parameter_uncertainty": False}
     sections["backtest"] = {"enabled": False}
     return sections
 

@@ -77,7 +77,7 @@ import numpy as np
 
 from . import ols
 from .autoreg import MIN_RESID_DF, shifted_lag_stack
-from .forecast import forecast_ar
+from .forecast import cov_from_gram, forecast_ar
 
 #: series per block: keeps the (series, periods, lags) design in cache
 BLOCK_SERIES = 1024
@@ -151,6 +151,43 @@ class BacktestResult:
             return np.where((nm > 0) & (nn > 0), np.sqrt((sm / nm) / (sn / nn)), np.nan)
 
 
+    def coverage_test(self, steps: int = 1) -> tuple[np.ndarray, np.ndarray]:
+        """Is the intervals' backtest coverage significantly below nominal? ``(statistic, pvalue)`` (G,).
+
+        For each coverage level c, the hits X among the N scored forecasts at
+        steps 1..``steps`` (pooled over origins) are compared with Binomial(N, c):
+        one-sided p-value ``P(Bin(N, c) <= X)`` (exact binomial test; Clopper &
+        Pearson 1934 give the matching interval). Levels are combined by
+        Bonferroni (smallest p times the number of levels, capped at 1).
+        ``statistic`` is the observed coverage of the level with the smallest p.
+        One-step errors at different origins are (for a correct model) separate
+        innovations, so step 1 alone keeps the binomial's independence; longer
+        steps overlap across origins and make the test oversized. The test is
+        discrete, hence conservative: its size is at most the level (measured
+        in ``bench/calibration.py``).
+        """
+        from .distributions import binom_cdf
+
+        k = max(1, min(int(steps), self.horizon))
+        n = self.model.count[:, :k].astype(np.float64)  # (G, k)
+        C = len(self.coverage)
+        G = n.shape[0]
+        if C == 0 or G == 0:
+            return np.full(G, np.nan), np.full(G, np.nan)
+        rate = np.nan_to_num(self.coverage_rate[:, :, :k])
+        hits = np.rint((rate * n[None]).sum(axis=2))  # (C, G)
+        N = n.sum(axis=1)  # (G,)
+        levels = np.asarray(self.coverage, dtype=np.float64)[:, None]
+        p = binom_cdf(hits, N[None, :], levels)
+        j = np.argmin(p, axis=0)
+        cols = np.arange(G)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            obs = hits[j, cols] / N
+        pmin = np.minimum(1.0, C * p[j, cols])
+        none = N <= 0
+        return np.where(none, np.nan, obs), np.where(none, np.nan, pmin)
+
+
 class _Sums:
     """Running sums of one method's errors over origins, for a block of series."""
 
@@ -217,6 +254,7 @@ def rolling_origin(
     season: int | None = None,
     min_train: int = 0,
     block: int = BLOCK_SERIES,
+    parameter_uncertainty: bool = False,
 ) -> BacktestResult:
     """Backtest each series' AR specification at the last ``origins`` origins (see the module notes).
 
@@ -225,6 +263,8 @@ def rolling_origin(
     a series with no lags is not backtested); ``differenced`` (G,) bool: model
     first differences. ``season``: seasonal naive benchmark and seasonal MASE
     scale. ``min_train``: least number of level observations up to an origin.
+    ``parameter_uncertainty``: intervals include the estimation term and
+    Student-t quantiles, as the published ones do (:mod:`arflow.core.forecast`).
 
     >>> y = np.tile([0.0, 2.0], 7)[None, :13]; y[0, 11:] = [3.0, 1.0]
     >>> r = rolling_origin(y, np.array([[True]]), np.array([1]), origins=2, horizon=2)
@@ -267,7 +307,8 @@ def rolling_origin(
     step = max(int(block), 1)
     for b0 in range(0, G, step):
         idx = perm[b0 : b0 + step]
-        out = _block(Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train))
+        out = _block(Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train),
+                     bool(parameter_uncertainty))
         for k, v in out.items():
             parts[k].append(v)
     if G == 0:
@@ -296,7 +337,7 @@ def rolling_origin(
     )
 
 
-def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train) -> dict:
+def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, param_unc=False) -> dict:
     B, T = Y.shape
     C = len(cov)
     sums = {k: _Sums(B, H) for k in ("model", "naive", "snaive")}
@@ -374,8 +415,16 @@ def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train) -> d
         if lo < 0:
             hist = np.concatenate([np.full((B, -lo), np.nan), hist], axis=1)
         hist = np.where(okf, np.nan_to_num(hist), 0.0)
+        extra = {}
+        if param_unc:
+            with np.errstate(all="ignore"):
+                V = cov_from_gram(g, mask, lags_b, sig, shift)
+            Vd = np.zeros((B, L + 1, L + 1))
+            Vd[:, : V.shape[1], : V.shape[2]] = V
+            extra = dict(coef_cov=np.where(okf[:, :, None], np.nan_to_num(Vd), 0.0),
+                         df_resid=np.where(ok, res.df_resid, np.nan))
         with np.errstate(all="ignore"):
-            fc = forecast_ar(hist, icpt, phi, sig, H, cov, diff)
+            fc = forecast_ar(hist, icpt, phi, sig, H, cov, diff, **extra)
         ok = ok & np.isfinite(sigma) & np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
         okf = ok[:, None]
         actual = Y[:, c + 1 : c + 1 + H]

@@ -9,8 +9,24 @@ model is ``sum_{j<h} psi_j e(T+h-j)``, so its variance is
 forecasts are cumulated onto the last level and the level psi-weights are the
 running sums of the difference model's psi-weights, so intervals are for levels.
 
-Caveat (stated in the README): these intervals treat the fitted coefficients
-as known; they do not include parameter-estimation uncertainty or model error.
+Parameter uncertainty (``coef_cov`` given): the forecast error with
+estimated coefficients is the error with known ones plus the estimation error
+of the forecast, ``y(T+h) - yhat(T+h) = sum psi_j e(T+h-j) + (f_h(theta) - f_h(theta_hat))``.
+Its variance is approximated, conditionally on the observed last values, by
+``sigma^2 sum psi_j^2 + g_h' V g_h`` with ``g_h = d yhat(T+h) / d theta`` (the
+derivatives of the chain forecast with respect to the intercept and the AR
+coefficients, by forward recursion) and ``V`` the OLS covariance of
+``theta_hat``: the delta-method estimator of the prediction-error variance
+with estimated parameters of Fuller & Hasza (1981, JASA 76, 155-161; Fuller
+1996, Introduction to Statistical Time Series, 2nd ed., section 8.5 -- section number from memory). The
+``1/n`` term is the same order as Yamamoto's (1976) asymptotic correction.
+With ``df_resid`` given the quantiles are Student t with the residual degrees
+of freedom instead of Gaussian. For differenced models the level derivatives
+are the running sums of the difference model's, so the drift's uncertainty
+grows with the square of the horizon, as it should.
+
+These intervals still assume the model's form (its lags, Gaussian
+innovations of constant variance); they do not cover model error.
 """
 
 from __future__ import annotations
@@ -18,7 +34,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from .distributions import norm_ppf
+from .distributions import norm_ppf, t_ppf
 
 
 @dataclass(frozen=True)
@@ -65,12 +81,17 @@ def forecast_ar(
     horizon: int,
     coverage: tuple[float, ...] = (0.8, 0.95),
     differenced: np.ndarray | None = None,
+    coef_cov: np.ndarray | None = None,
+    df_resid: np.ndarray | None = None,
 ) -> Forecasts:
     """Forecasts with intervals for all series at once.
 
     ``history`` (G, T) right-aligned levels; ``phi`` (G, L); ``sigma`` (G,);
     ``differenced`` (G,) bool marks models fitted to first differences (their
     ``intercept``/``phi`` describe the differences; output is in levels).
+    ``coef_cov`` (G, L+1, L+1): covariance of ``[intercept, phi_1..phi_L]``
+    (see :func:`coef_covariance`); when given, the interval variance includes
+    the parameter-estimation term. ``df_resid`` (G,): Student-t quantiles.
 
     >>> f = forecast_ar(np.array([[0.0, 1.0]]), np.array([0.0]), np.array([[0.5]]), np.array([1.0]), 3, (0.95,))
     >>> f.mean.round(3).tolist(), f.sd.round(4).tolist()
@@ -85,13 +106,124 @@ def forecast_ar(
         src = np.where(diff[:, None], np.concatenate([np.full((G, 1), np.nan), d], axis=1), history)
     mean = chain_forecast(np.nan_to_num(src), intercept, phi, horizon)
     psi = psi_weights(phi, horizon)
+    var_param = None
+    if coef_cov is not None:
+        var_param = parameter_variance(np.nan_to_num(src), intercept, phi, coef_cov, horizon, diff)
     if diff.any():
         last = history[:, -1]
         mean = np.where(diff[:, None], last[:, None] + np.cumsum(mean, axis=1), mean)
         psi = np.where(diff[:, None], np.cumsum(psi, axis=1), psi)
-    sd = sigma[:, None] * np.sqrt(np.cumsum(psi * psi, axis=1))
+    var = sigma[:, None] ** 2 * np.cumsum(psi * psi, axis=1)
+    if var_param is not None:
+        var = var + var_param
+    sd = np.sqrt(var)
     cov = tuple(float(c) for c in coverage)
-    z = norm_ppf(0.5 + np.asarray(cov) / 2.0)
-    lower = mean[None] - z[:, None, None] * sd[None]
-    upper = mean[None] + z[:, None, None] * sd[None]
+    upper_p = 0.5 + np.asarray(cov) / 2.0
+    if df_resid is None:
+        z = np.broadcast_to(norm_ppf(upper_p)[:, None], (len(cov), G))
+    else:
+        df = np.asarray(df_resid, dtype=np.float64)
+        df = np.where(np.isfinite(df) & (df >= 1), df, np.nan)
+        z = t_ppf(upper_p[:, None], df[None, :])
+    lower = mean[None] - z[:, :, None] * sd[None]
+    upper = mean[None] + z[:, :, None] * sd[None]
     return Forecasts(mean, sd, cov, lower, upper)
+
+
+def parameter_variance(
+    src: np.ndarray, intercept: np.ndarray, phi: np.ndarray, coef_cov: np.ndarray, horizon: int, diff: np.ndarray
+) -> np.ndarray:
+    """The delta-method term ``g_h' V g_h`` (G, H) of the forecast-error variance (module notes).
+
+    ``src`` (G, >= L) is the modelled history (differences where ``diff``).
+    The derivatives of the chain forecast follow its own recursion:
+    ``d yhat_h / d b0 = 1 + sum_j phi_j d yhat_(h-j) / d b0`` and
+    ``d yhat_h / d phi_i = yhat_(h-i) + sum_j phi_j d yhat_(h-j) / d phi_i``
+    (observed values have zero derivative). Only the last L derivatives are
+    kept, so memory is (G, L, L+1) whatever the horizon.
+    """
+    G, L = phi.shape
+    out = np.zeros((G, horizon))
+    V = np.nan_to_num(np.asarray(coef_cov, dtype=np.float64))
+    # only the lags some series uses (phi or V nonzero): a compact parameter vector
+    diagv = np.diagonal(V, axis1=1, axis2=2)[:, 1:]
+    used = np.flatnonzero(np.any(diagv != 0, axis=0) | np.any(phi != 0, axis=0)) + 1
+    K = len(used)
+    P = K + 1
+    sel = np.concatenate([[0], used])
+    Vc = V[:, sel][:, :, sel]
+    phic = phi[:, used - 1]
+    buf = np.zeros((G, L + horizon))
+    if L:
+        buf[:, :L] = src[:, src.shape[1] - L :]
+    R = max(L, 1)
+    ring = np.zeros((R, G, P))  # derivatives of positions p - R .. p - 1, at index p % R
+    cum = np.zeros((G, P))
+    CH = 64  # steps per batched quadratic form (bounds memory at long horizons)
+    grads = np.zeros((G, min(horizon, CH), P))
+    for h in range(horizon):
+        p = L + h
+        past = buf[:, p - used] if K else np.zeros((G, 0))  # y at lags used
+        buf[:, p] = intercept + (phic * past).sum(axis=1)
+        g = np.zeros((G, P))
+        g[:, 0] = 1.0
+        g[:, 1:] = past
+        for k in range(K):
+            g += phic[:, k : k + 1] * ring[(p - used[k]) % R]
+        ring[p % R] = g
+        cum = np.where(diff[:, None], cum + g, g)
+        grads[:, h % CH] = cum
+        if h % CH == CH - 1 or h == horizon - 1:
+            h0 = h - h % CH
+            gm = grads[:, : h - h0 + 1]
+            out[:, h0 : h + 1] = (np.matmul(gm, Vc) * gm).sum(axis=2)
+    return np.maximum(out, 0.0)
+
+
+def coef_covariance(X: np.ndarray, w: np.ndarray, mask: np.ndarray, lags: np.ndarray, sigma: np.ndarray) -> np.ndarray:
+    """OLS covariance (G, L+1, L+1) of ``[intercept, phi_1..phi_L]`` in the dense lag layout.
+
+    ``X`` (G, T, K) lag design of the modelled series (finite where ``w`` > 0),
+    ``w`` (G, T) the fitted sample's 0/1 row weights, ``mask`` (G, K) each
+    series' lags among ``lags`` (K,), ``sigma`` (G,) the residual standard
+    deviation (RSS / (n - k)). ``s^2 (Z'Z)^-1`` with ``Z = [1, X_used]``:
+    slopes from the centred Gram matrix, ``Var(b0) = s^2/n + xbar' V xbar``
+    and ``Cov(b0, b) = -V xbar``. Zero rows for lags a series does not use.
+    """
+    from . import ols
+
+    G, T, K = X.shape
+    L = int(lags.max()) if len(lags) else 0
+    if G == 0 or K == 0:
+        return np.zeros((G, L + 1, L + 1))
+    X = np.where(w[:, :, None] > 0, np.nan_to_num(X), 0.0)
+    return cov_from_gram(ols.gram(X, np.zeros((G, T)), w), mask, lags, sigma)
+
+
+def cov_from_gram(g, mask: np.ndarray, lags: np.ndarray, sigma: np.ndarray, shift: np.ndarray | None = None) -> np.ndarray:
+    """:func:`coef_covariance` from an :class:`arflow.core.ols.Gram` of the lag columns.
+
+    ``shift`` (G,): the series were shifted by this before the Gram was formed
+    (``b0 = a + m (1 - sum b)``), so the lag columns' own means are ``xmean + m``.
+    """
+    from . import ols
+
+    G = g.xty.shape[0]
+    L = int(lags.max()) if len(lags) else 0
+    out = np.zeros((G, L + 1, L + 1))
+    A, _, m = ols._masked(g, mask)
+    Ainv = ols._inv(A, m)
+    sc = m.astype(np.float64) / g.scale
+    s2 = np.asarray(sigma, dtype=np.float64) ** 2
+    Vb = Ainv * (sc[:, :, None] * sc[:, None, :]) * s2[:, None, None]
+    xbar = g.xmean if shift is None else g.xmean + np.asarray(shift, dtype=np.float64)[:, None]
+    xbar = xbar * m
+    Vx = np.einsum("gij,gj->gi", Vb, xbar)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        v0 = s2 / np.where(g.nobs > 0, g.nobs, np.nan) + np.einsum("gi,gi->g", xbar, Vx)
+    idx = np.asarray(lags, dtype=np.int64)  # lag j -> dense position j
+    out[:, 0, 0] = v0
+    out[:, 0, idx] = -Vx
+    out[:, idx, 0] = -Vx
+    out[:, idx[:, None], idx[None, :]] = Vb
+    return out

@@ -34,6 +34,8 @@ REASONS = (
     "residual_arch",
     "forecast_out_of_bounds",
     "worse_than_naive",
+    "outlier",
+    "interval_undercoverage",
     # added later; appended so the order of the codes above never changes
     "check_not_computed",
     "degenerate_interval",
@@ -132,6 +134,12 @@ class GateInputs:
     arch_pvalue: np.ndarray | None = None
     naive_statistic: np.ndarray | None = None  # model RMSE / naive RMSE
     naive_threshold: float | None = None
+    outlier_statistic: np.ndarray | None = None  # largest robust AO statistic |lambda|
+    outlier_threshold: np.ndarray | None = None  # its critical value c(n)
+    outlier_passed: np.ndarray | None = None  # False: outliers held back (policy) or untreatable
+    coverage_statistic: np.ndarray | None = None  # backtest interval coverage (worst level)
+    coverage_pvalue: np.ndarray | None = None  # one-sided binomial p-value of under-coverage
+    coverage_alpha: float | None = None
     #: smallest relative half-width of the forecast intervals over steps and
     #: levels (half-width / scale of the series); None: not checked
     interval_relative_width: np.ndarray | None = None
@@ -151,13 +159,14 @@ def _finite(*arrays: np.ndarray | None) -> np.ndarray:
     return np.asarray(ok, dtype=bool)
 
 
-def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off") -> GateOutcome:
+def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off", coverage_mode: str = "off") -> GateOutcome:
     """Decide publish or quarantine for every series.
 
     ``gates`` is a :class:`arflow.settings.GateSettings`. ``unit_root_policy``
     is the model setting (``"difference"``, ``"quarantine"``, ``"ignore"``).
     ``naive_mode``: ``"off"``, ``"warn"`` (recorded, never quarantines) or
-    ``"enforce"``.
+    ``"enforce"``. ``coverage_mode``: the same three modes for the
+    ``interval_calibration`` gate (backtest coverage of the prediction intervals).
     """
     from .panel import (
         CONFLICTING_DUPLICATES,
@@ -290,4 +299,25 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off")
             # "warn" records the outcome in the gates table but never holds a series back
             b.add("beats_naive", ok, statistic=x.naive_statistic, threshold=x.naive_threshold,
                   applies=fitted & computed)
+    if x.outlier_passed is not None:
+        b.add(
+            "outliers",
+            x.outlier_passed,
+            statistic=x.outlier_statistic,
+            threshold=x.outlier_threshold,
+            applies=fitted & np.isfinite(x.outlier_statistic),
+            reason="outlier",
+        )
+    if coverage_mode != "off" and x.coverage_pvalue is not None:
+        p = x.coverage_pvalue
+        # "warn" records the outcome in the gates table but never holds a series back
+        b.add(
+            "interval_calibration",
+            ~(p < x.coverage_alpha),
+            statistic=x.coverage_statistic,
+            pvalue=p,
+            threshold=x.coverage_alpha,
+            applies=fitted & np.isfinite(p),
+            reason="interval_undercoverage" if coverage_mode == "enforce" else None,
+        )
     return b.outcome()

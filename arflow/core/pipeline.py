@@ -6,13 +6,13 @@ columns. Everything is batched over series.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
 from ..settings import Settings
-from . import autoreg, backtest, diagnostics, gates, unitroot
-from .forecast import Forecasts, forecast_ar
+from . import autoreg, backtest, diagnostics, gates, outliers, unitroot
+from .forecast import Forecasts, coef_covariance, forecast_ar
 from .panel import CONSTANT, NO_DATA, Panel
 
 
@@ -32,6 +32,20 @@ class CoreResult:
     forecasts: Forecasts
     outcome: gates.GateOutcome
     backtest: backtest.BacktestResult | None = None
+    outliers: "OutlierReport | None" = None
+
+
+@dataclass(frozen=True)
+class OutlierReport:
+    """Additive outliers per series: ``statistic``/``threshold`` (G,) of the detector,
+    ``count`` (G,), ``passed`` (G,) for the gate, ``effect`` (G, T) the estimated effect
+    at each flagged period (panel column), NaN elsewhere."""
+
+    statistic: np.ndarray
+    threshold: np.ndarray
+    count: np.ndarray
+    passed: np.ndarray
+    effect: np.ndarray
 
 
 def _diff_right_aligned(Y: np.ndarray) -> np.ndarray:
@@ -85,6 +99,23 @@ def adf_from_fit(fit: autoreg.ARFit) -> unitroot.AdfResult:
     return unitroot.AdfResult(stat, pval, used, np.where(fit.fitted, fit.n_obs, -1), crit[:, 0], crit[:, 1], crit[:, 2])
 
 
+def _interval_terms(fit: autoreg.ARFit, modelled: np.ndarray, fs, exclude: np.ndarray | None = None) -> dict:
+    """Keyword arguments of :func:`forecast_ar` for parameter-uncertainty intervals (empty when off).
+
+    ``exclude`` (G, T) bool: rows of the fitted sample taken out by intervention terms.
+    """
+    if not fs.parameter_uncertainty:
+        return {}
+    w = np.isfinite(fit.resid)
+    if exclude is not None:
+        w = w & ~exclude[:, -w.shape[1]:]
+    M = modelled[:, -w.shape[1]:]
+    X = autoreg.lag_design(M, fit.lags)
+    cov = coef_covariance(X, w.astype(np.float64), fit.lag_mask, fit.lags, np.nan_to_num(fit.sigma))
+    df = np.where(fit.fitted, fit.n_obs - fit.n_lags - 1, np.nan).astype(np.float64)
+    return dict(coef_cov=np.where(fit.fitted[:, None, None], np.nan_to_num(cov), 0.0), df_resid=df)
+
+
 # overflow and 0/0 in degenerate series (values near +-1e308, exact fits) become NaN/inf,
 # which the gates then fail closed on; numpy's floating-point warnings would only be noise
 @np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore")
@@ -123,6 +154,19 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         modelled = Y.copy()
         modelled[idx] = D
 
+    # ---- additive outliers (arflow.core.outliers) ----------------------------------------
+    Yf, excluded, orep = Y, None, None
+    if ms.outliers != "off":
+        found, tr = outliers.detect_and_treat(modelled, fit)
+        effect = np.where(found.flagged, found.size, np.nan)
+        passed = ~found.any & ~found.too_many
+        if ms.outliers == "treat" and tr is not None:
+            fit, excluded = tr.fit, tr.excluded
+            effect = np.where(tr.treated[:, None], tr.effect, effect)
+            passed = ~found.too_many & ~tr.failed
+            Yf = outliers.cleaned_levels(Y, tr.effect, differenced)
+        orep = OutlierReport(found.statistic, found.threshold, found.count, passed, effect)
+
     # ---- residual diagnostics -------------------------------------------------------------
     acf = diagnostics.residual_acf(fit.resid, gs.residual_lags)
     rtest = residual_test(fit, modelled, acf, settings)
@@ -130,7 +174,7 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
 
     # ---- forecasts -------------------------------------------------------------------------------
     width = max(int(fit.lags.max()), 1) + 1
-    hist = np.nan_to_num(Y[:, -width:]) if Y.shape[1] else np.zeros((G, 1))
+    hist = np.nan_to_num(Yf[:, -width:]) if Y.shape[1] else np.zeros((G, 1))
     if hist.shape[1] < width:  # a lag (e.g. a long seasonal one) reaches before every series: zeros, never used
         hist = np.concatenate([np.zeros((G, width - hist.shape[1])), hist], axis=1)
     fc = forecast_ar(
@@ -141,12 +185,13 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         fs.horizon,
         fs.coverage,
         differenced,
+        **_interval_terms(fit, modelled, fs, excluded),
     )
     bt = None
     bs = settings.backtest
     if bs.enabled:
         bt = backtest.rolling_origin(
-            Y,
+            Yf,
             fit.lag_mask,
             fit.lags,
             differenced,
@@ -155,9 +200,10 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
             coverage=fs.coverage,
             season=seasonal,
             min_train=gs.min_observations,
+            parameter_uncertainty=fs.parameter_uncertainty,
         )
     return dict(fit=fit, differenced=differenced, unit_root=unit_root, adf=adf, kpss=kp, acf=acf,
-                residual_test=rtest, arch=arch, forecasts=fc, backtest=bt)
+                residual_test=rtest, arch=arch, forecasts=fc, backtest=bt, outliers=orep)
 
 
 def _concat(objs: list, axis: int = 0):
@@ -268,6 +314,15 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         naive_threshold=1.0 + settings.backtest.naive_tolerance,
         interval_relative_width=interval_width,
     )
-    outcome = gates.decide(inputs, gs, ms.unit_root, settings.backtest.naive_gate if bt is not None else "off")
+    orep = parts["outliers"]
+    if orep is not None:
+        inputs = replace(inputs, outlier_statistic=orep.statistic, outlier_threshold=orep.threshold,
+                         outlier_passed=orep.passed)
+    bs = settings.backtest
+    cov_mode = bs.coverage_gate if bt is not None else "off"
+    if cov_mode != "off":
+        cstat, cp = bt.coverage_test(bs.coverage_steps)
+        inputs = replace(inputs, coverage_statistic=cstat, coverage_pvalue=cp, coverage_alpha=bs.coverage_alpha)
+    outcome = gates.decide(inputs, gs, ms.unit_root, settings.backtest.naive_gate if bt is not None else "off", cov_mode)
     return CoreResult(panel, fit, parts["differenced"], parts["unit_root"], parts["adf"], parts["kpss"],
-                      parts["acf"], rtest, arch, fc, outcome, bt)
+                      parts["acf"], rtest, arch, fc, outcome, bt, orep)

@@ -4,12 +4,20 @@ The source is opened read-only (parquet through an in-memory database),
 checked up front (columns, types, NULL keys, emptiness) with one-line
 errors, then streamed as Arrow ordered by keys and period and cut into
 chunks of whole series.
+
+The connection is a sandbox (:func:`lock_down`): once open it can read the
+source database, or exactly the Parquet files the job names, and nothing
+else. DuckDB's own settings do it: external access off (no other files, no
+folder listings, no ``COPY``/``ATTACH``/``EXPORT``, no network, no Python
+objects by name), no extension installing or loading, and the configuration
+locked for the session so a query cannot turn any of it back on.
 """
 
 from __future__ import annotations
 
 import datetime as dt
 import glob
+import os
 import re
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -19,7 +27,8 @@ import duckdb
 import numpy as np
 import polars as pl
 
-from ..errors import SchemaError, SettingsError, SourceError
+from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
+from ..runtime import fault_point, unwatch_connection, watch_connection
 from .identifiers import quote, quote_qualified
 
 _INTEGER_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "HUGEINT", "UHUGEINT"}
@@ -40,6 +49,40 @@ def engine_config() -> dict[str, str]:
     import tempfile
 
     return {"memory_limit": MEMORY_LIMIT, "temp_directory": tempfile.gettempdir() + "/arflow-duckdb-spill"}
+
+
+#: settings applied in this order, after ``allowed_paths``; the last one locks them all
+_SANDBOX_SETTINGS = (
+    ("autoinstall_known_extensions", "false"),
+    ("autoload_known_extensions", "false"),
+    ("allow_community_extensions", "false"),
+    ("enable_external_access", "false"),
+    ("lock_configuration", "true"),
+)
+
+
+def _sql_literal(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+def lock_down(con: duckdb.DuckDBPyConnection, allowed_files: tuple[str, ...] = ()) -> None:
+    """Close ``con`` to everything but its database and ``allowed_files``, for the rest of the session.
+
+    DuckDB still spills to its own temp folder (set before this call).
+    """
+    if allowed_files:
+        con.execute(f"SET allowed_paths = [{', '.join(_sql_literal(f) for f in allowed_files)}]")
+    for name, value in _SANDBOX_SETTINGS:
+        con.execute(f"SET {name} = {value}")
+
+
+def access_message(exc: BaseException) -> str:
+    """The one message for a source (its query, or a view in it) that reached outside the job's source."""
+    return (
+        f"the source tried to reach something outside the job's source ({first_line(exc)}); "
+        "a source may read only its source.database or the source.parquet files, with no other files, "
+        "folder listings, network or extensions"
+    )
 
 
 def lock_message(path: object) -> str:
@@ -89,22 +132,35 @@ class DuckDBSource:
                 if is_lock_error(exc):
                     raise SourceError(lock_message(spec.database)) from None
                 raise SourceError(f"cannot open source database {spec.database} ({first_line(exc)}); check it is a DuckDB file") from None
+            self._lock_down(())
         else:
-            if not glob.glob(spec.parquet, recursive=True):
+            files = tuple(sorted(f for f in glob.glob(spec.parquet, recursive=True) if not os.path.isdir(f)))
+            if not files:
                 raise SourceError(f"no parquet files match {spec.parquet}; check source.parquet in the job file")
             self._con = duckdb.connect(":memory:", config=engine_config())
-            literal = "'" + spec.parquet.replace("'", "''") + "'"
+            self._lock_down(files)
+            listed = ", ".join(_sql_literal(f) for f in files)
             try:
-                self._con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet({literal})")
+                self._con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet([{listed}])")
             except duckdb.Error as exc:
                 raise SourceError(f"cannot read parquet {spec.parquet} ({first_line(exc)}); check the files") from None
+        watch_connection(self.con)  # a stop signal interrupts the statement running on it
+        fault_point("source-open")
         return self
+
+    def _lock_down(self, files: tuple[str, ...]) -> None:
+        try:
+            lock_down(self.con, files)
+        except duckdb.Error:
+            self.close()
+            raise
 
     def __exit__(self, *exc: object) -> None:
         self.close()
 
     def close(self) -> None:
         if self._con is not None:
+            unwatch_connection(self._con)
             self._con.close()
             self._con = None
 
@@ -137,6 +193,8 @@ class DuckDBSource:
             return self.con.execute(sql, params or []).fetchall()
         except duckdb.CatalogException as exc:
             raise self._catalog_error(exc) from None
+        except duckdb.PermissionException as exc:
+            raise SourceAccessError(access_message(exc)) from None
         except duckdb.Error as exc:
             raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None
 
@@ -306,5 +364,7 @@ class DuckDBSource:
                         pending, held = [], 0
             if pending:
                 yield pl.concat(pending).explode([spec.period, spec.value])
+        except duckdb.PermissionException as exc:
+            raise SourceAccessError(access_message(exc)) from None
         except duckdb.Error as exc:
             raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None

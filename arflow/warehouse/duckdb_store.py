@@ -29,6 +29,7 @@ import duckdb
 import polars as pl
 
 from ..errors import PublishError
+from ..runtime import hold_signals, release_signals, unwatch_connection, watch_connection
 from ..settings import MAX_COVERAGE_LEVELS
 from .duckdb_source import engine_config, first_line, is_lock_error, lock_message
 from .identifiers import quote
@@ -435,6 +436,7 @@ class DuckDBStore:
         """
         tables = tables if tables is not None else FrameTables(frames)
         con = _open(self.database)
+        watch_connection(con)  # a stop signal before COMMIT interrupts the running statement (then rolls back)
         try:
             con.execute("BEGIN TRANSACTION")
             self._ensure_tables(con, coverage_labels)
@@ -463,9 +465,12 @@ class DuckDBStore:
             _fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
             con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
+            hold_signals()  # from here a stop signal waits: a committed run exits with its real status
             con.execute("COMMIT")
+            _fault_point("commit")
             return attempt
         except BaseException as exc:
+            release_signals()
             try:
                 con.execute("ROLLBACK")
             except duckdb.Error:
@@ -476,6 +481,7 @@ class DuckDBStore:
                 ) from None
             raise
         finally:
+            unwatch_connection(con)
             tables.release(con)
             con.close()
 
