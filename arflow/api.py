@@ -9,7 +9,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -128,8 +128,6 @@ def forecast(
     else:
         settings = settings or Settings()
         if frequency is not None:
-            from dataclasses import replace
-
             settings = replace(settings, frequency=frequency)
     if _is_spark_frame(frame):  # computed by Spark tasks, each calling this function on whole series
         from .spark_engine import forecast_spark_frame
@@ -145,6 +143,8 @@ def forecast(
         as_of=as_of_ord,
         min_observations=settings.gates.min_observations,
     )
+    if inp.flags is not None:  # what only the frame adapter can see (resolved duplicates, off-calendar labels)
+        panel = replace(panel, flags=panel.flags | inp.flags)
     core = run_core(panel, settings, workers=workers)
     frames = result_frames(inp, core, settings)
     as_of_label = inp.codec.decode(np.array([panel.as_of])).item()
@@ -207,8 +207,6 @@ def _settings_with_frequency(
     frame: Any, keys: list[str], period: str, value: str, frequency: str | None, settings: Settings | None
 ) -> Settings:
     """The settings to run with: an explicit ``frequency`` wins; the period column must not contradict it."""
-    from dataclasses import replace
-
     from .errors import SchemaError
     from .settings import FREQUENCIES
 

@@ -291,6 +291,9 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
     except Exception as exc:  # noqa: BLE001 - last line of defence
         if _interrupted_by_signal():  # e.g. DuckDB's RuntimeError('Query interrupted')
             return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
+        full = _disk_full(exc)
+        if full:
+            return _fail(reporter, EXIT_DATA, "DiskFull", full)
         if os.environ.get("ARFLOW_DEBUG"):
             traceback.print_exc(file=err)
         message = f"internal error ({type(exc).__name__}: {_one_line(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
@@ -447,6 +450,28 @@ def _cmd_retract(args: argparse.Namespace, reporter: _Reporter) -> int:
                  else f"  recorded in vintage_removals (by {report.removed_by})")
     reporter.out.write("\n".join(lines) + "\n")
     return EXIT_OK
+
+
+def _disk_full(exc: BaseException) -> str | None:
+    """The one-line message for a full disk (temporary folder or target), else None.
+
+    Writers report it in their own ways (OSError ENOSPC, polars and DuckDB
+    errors carrying the system's text), so the text is matched too.
+    """
+    import errno
+    import tempfile
+
+    text = str(exc)
+    if not (
+        (isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT))
+        or "No space left on device" in text
+        or "Disk quota exceeded" in text
+    ):
+        return None
+    return (
+        f"a disk is full (No space left on device) while writing the run's temporary files under "
+        f"{tempfile.gettempdir()}; free space there or point TMPDIR to a larger folder; nothing was published by this run"
+    )
 
 
 def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:

@@ -22,9 +22,9 @@ import polars as pl
 import pyarrow as pa
 
 from .core import gates as core_gates
-from .core.panel import QUALITY_FLAG_NAMES
+from .core.panel import CONFLICTING_DUPLICATES, DUPLICATE_PERIODS, OFF_CALENDAR, QUALITY_FLAG_NAMES
 from .core.pipeline import CoreResult
-from .errors import SchemaError, SourceError
+from .errors import SchemaError, SettingsError, SourceError
 from .settings import coverage_label
 
 _EPOCH = _dt.date(1970, 1, 1)
@@ -88,6 +88,8 @@ class PanelInputs:
     ordinals: np.ndarray
     values: np.ndarray
     codec: PeriodCodec
+    #: (G,) data-quality bits the panel cannot see (duplicates resolved here, off-calendar labels)
+    flags: np.ndarray | None = None
 
 
 def _as_polars(frame: Any) -> pl.DataFrame:
@@ -143,13 +145,11 @@ def _codec_for(s: pl.Series, frequency: str) -> PeriodCodec:
     if frequency == "day":
         return PeriodCodec("day")
     if frequency == "week":
-        rem = (s.unique().cast(pl.Int32).cast(pl.Int64) % 7).unique()
-        if len(rem) > 1:
-            raise SchemaError(
-                "weekly periods fall on different weekdays; label each week by the same weekday "
-                "(e.g. its Monday) or use frequency 'day'"
-            )
-        return PeriodCodec("week", weekday_offset=int(rem[0]) if len(rem) else 0)
+        # the weekday most rows use labels the weeks (ties: the earliest weekday number, so
+        # the choice never depends on row order); rows on another weekday are off the calendar
+        rem = s.cast(pl.Int32).cast(pl.Int64) % 7
+        counts = np.bincount(rem.drop_nulls().to_numpy(), minlength=7)
+        return PeriodCodec("week", weekday_offset=int(np.argmax(counts)) if counts.sum() else 0)
     s = s.unique()  # a few hundred distinct periods at most: check the labels on those
     is_end = s.dt.month_end() == s if frequency == "month" else None
     if frequency == "quarter":
@@ -160,15 +160,34 @@ def _codec_for(s: pl.Series, frequency: str) -> PeriodCodec:
     return PeriodCodec(frequency, anchor=anchor)
 
 
+#: Integer ('step') periods and as-of values must lie within +-2**53: exact in
+#: float64 (JSON, Spark, Arrow casts) and far from int64 wrap-around when the
+#: forecast steps (at most 1,000) are added.
+STEP_PERIOD_LIMIT = 2**53
+
+
+def check_step_range(lo: int, hi: int, what: str) -> None:
+    """Raise a one-line error when integer periods fall outside +-:data:`STEP_PERIOD_LIMIT`."""
+    if lo < -STEP_PERIOD_LIMIT or hi > STEP_PERIOD_LIMIT:
+        bad = lo if lo < -STEP_PERIOD_LIMIT else hi
+        cls = SettingsError if what.startswith("as-of") else SchemaError
+        raise cls(
+            f"{what} {bad} is out of range for integer periods (at most +-2**53 = {STEP_PERIOD_LIMIT}); "
+            "renumber the periods (e.g. subtract a base period)"
+        )
+
+
 def encode_as_of(as_of: Any, codec: PeriodCodec) -> int | None:
     """The as-of period (a date, ISO text, or an int for 'step') as an ordinal."""
     if as_of is None:
         return None
     if codec.frequency == "step":
         try:
-            return int(as_of)
-        except (TypeError, ValueError):
+            value = int(as_of)
+        except (TypeError, ValueError, OverflowError):
             raise SchemaError(f"as-of {as_of!r} must be an integer period for frequency 'step'") from None
+        check_step_range(value, value, "as-of period")
+        return value
     if isinstance(as_of, _dt.datetime):
         as_of = as_of.date()
     if isinstance(as_of, str):
@@ -209,9 +228,65 @@ def to_panel_inputs(frame: Any, keys: list[str], period: str, value: str, freque
         raise SourceError(f"period column {period!r} has {ps.null_count()} NULL value(s); filter them in the source")
     codec = _codec_for(ps, frequency)
     ordinals = codec.encode(ps)
+    if frequency == "step" and len(ordinals):
+        check_step_range(int(ordinals.min()), int(ordinals.max()), f"period column {period!r} holds")
     values = df.get_column(value).cast(pl.Float64).fill_null(float("nan")).to_numpy()
     codes, uniq = _series_codes(df.select(keys))
-    return PanelInputs(uniq, codes, ordinals, values, codec)
+    flags = np.zeros(len(uniq), dtype=np.int64)
+    off = _off_calendar(ps, codec)
+    if off is not None:
+        flags[np.unique(codes[off])] |= OFF_CALENDAR
+    codes, ordinals, values = _resolve_duplicates(codes, ordinals, values, flags)
+    return PanelInputs(uniq, codes, ordinals, values, codec, flags)
+
+
+def _off_calendar(ps: pl.Series, codec: PeriodCodec) -> np.ndarray | None:
+    """Rows whose period label is not the label of its period on the frequency's calendar.
+
+    A mid-month date under "month" (labels are first or last days), a
+    Wednesday among Monday weeks: such rows would be binned silently and their
+    forecasts would never meet their actuals. None when every row is on it.
+    """
+    if codec.frequency in ("step", "day"):
+        return None
+    uniq = ps.unique().drop_nulls()
+    label = codec.decode(codec.encode(uniq))
+    bad = uniq.filter(label.cast(pl.Date) != uniq.cast(pl.Date))
+    if bad.len() == 0:
+        return None
+    return ps.is_in(bad.implode()).to_numpy()
+
+
+def _resolve_duplicates(
+    codes: np.ndarray, ordinals: np.ndarray, values: np.ndarray, flags: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """One row per (series, period), by a rule that does not depend on row order.
+
+    Repeated rows with equal values are one observation (flag
+    ``duplicate_periods``). When the values differ no rule can know which is
+    right: the series is flagged ``conflicting_duplicates`` too (quarantined
+    even with ``gates.allow_duplicates``), and its diagnostics use the
+    smallest value (missing values last). Rows are left as they are when no
+    period repeats (the common case costs one pass).
+    """
+    if len(codes) < 2:
+        return codes, ordinals, values
+    dc, do = np.diff(codes), np.diff(ordinals)
+    if np.all((dc > 0) | ((dc == 0) & (do > 0))):
+        return codes, ordinals, values  # ordered without repeats
+    # NaN sorts last; the bit pattern breaks ties between equal values (-0.0 and 0.0)
+    order = np.lexsort((values.view(np.int64), values, ordinals, codes))
+    c, o, v = codes[order], ordinals[order], values[order]
+    same = (c[1:] == c[:-1]) & (o[1:] == o[:-1])
+    if not same.any():
+        return c, o, v
+    flags[np.unique(c[1:][same])] |= DUPLICATE_PERIODS
+    both_nan = np.isnan(v[1:]) & np.isnan(v[:-1])
+    differ = same & ~((v[1:] == v[:-1]) | both_nan)
+    if differ.any():
+        flags[np.unique(c[1:][differ])] |= CONFLICTING_DUPLICATES
+    keep = np.r_[True, ~same]  # the first row of each (series, period)
+    return c[keep], o[keep], v[keep]
 
 
 def _series_codes(key_df: pl.DataFrame) -> tuple[np.ndarray, pl.DataFrame]:

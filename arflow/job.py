@@ -26,7 +26,7 @@ from .job_file import JobSpec, load_job
 from .runtime import bind_to_parent, stop_pool
 from .settings import coverage_label
 from .warehouse.duckdb_source import DuckDBSource
-from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, run_id_for
+from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, preflight_target, run_id_for
 from .warehouse.parquet_store import ParquetStore
 from .warehouse.stage import RunStage
 
@@ -229,6 +229,8 @@ def run_job(
     settings = spec.settings
     notes: list[str] = []
     spark = spec.source.engine == "spark"
+    if spec.publish.database is not None and not dry_run:
+        preflight_target(spec.publish.database)  # writable and not held by another program, before any work
     previous = _previous_vintage(spec, strict=not dry_run)
     with _open_source(spec) as source:
         source.layout()
@@ -246,6 +248,8 @@ def run_job(
             notes.append("gates.series_fdr adjusts across all series of a run, so the run used one chunk")
         n_chunks = source.task_count(series, chunk_series) if spark else -(-series // chunk_series)
         layout = _layout(spec, source)
+        # before any fitting: the target's schema is arflow's, with this job's layout
+        target_note = check_target(spec.publish.database, layout) if spec.publish.database is not None else None
         run_id = run_id_for(spec.name, as_of_value)
         emit({
             "event": "start", "job": spec.name, "run_id": run_id, "as_of": as_of_value, "dry_run": dry_run,
@@ -279,7 +283,7 @@ def run_job(
     attempt: int | None = None
     try:
         if dry_run:
-            status_note = check_target(spec.publish.database, layout) if spec.publish.database else "lakehouse only"
+            status_note = target_note or "lakehouse only"
             notes.append(f"dry run: nothing was written; target {status_note}")
         else:
             t_pub = time.perf_counter()

@@ -24,15 +24,23 @@ from .warehouse.identifiers import check_identifier, check_qualified, is_identif
 ON_FAILURE_POLICIES = ("keep-previous", "withdraw")
 JOB_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
 
-#: Column names of the output tables; a key column may not reuse one.
-RESERVED_COLUMNS = frozenset(
-    """run_id job as_of stale attempt started_at finished_at status series_total
-    series_published series_quarantined config_sha256 arflow_version on_failure
-    period step forecast transform lags intercept intercept_std_error coefficients
-    std_errors t_stats sigma n_obs r_squared aic bic hqic max_root_modulus stationary
-    mean_reverting_level adf_statistic adf_p_value kpss_statistic kpss_p_value
-    first_period last_period quality_flags decision reasons gate statistic p_value
-    threshold passed lag autocorrelation t_stat""".split()
+
+
+def reserved_columns() -> frozenset[str]:
+    """Column names of arflow's output tables (lower-case); a key column may not reuse one.
+
+    Read off the table definitions themselves
+    (:func:`arflow.warehouse.duckdb_store.output_columns`), so the two never drift apart.
+    """
+    from .warehouse.duckdb_store import output_columns
+
+    return output_columns()
+
+
+#: Functions whose result changes from run to run: a source query using one would
+#: publish different numbers for the same vintage, so it is refused.
+NONDETERMINISTIC_FUNCTIONS = frozenset(
+    {"random", "gen_random_uuid", "uuid", "uuidv4", "uuidv7", "setseed"}
 )
 
 _SOURCE_KEYS = ("engine", "database", "parquet", "table", "query", "keys", "period", "value", "frequency")
@@ -150,13 +158,16 @@ def load_job(path: str | Path) -> JobSpec:
     if not path.is_file():
         raise SettingsError(f"job file {path} not found; check the path")
     try:
-        text = path.read_text(encoding="utf-8")
+        # utf-8-sig: a byte-order mark (some editors write one) is accepted and dropped
+        text = path.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
         raise SettingsError(f"job file {path} cannot be read ({exc}); save it as UTF-8 text") from None
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise SettingsError(f"job file {path} is not valid TOML ({exc}); fix the syntax") from None
+    except RecursionError:
+        raise SettingsError(f"job file {path} nests arrays or tables too deeply; a job file needs two levels at most") from None
     return parse_job(data, base_dir=path.resolve().parent, path=path)
 
 
@@ -242,6 +253,7 @@ def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
             raise SettingsError("source.query must be a non-empty string holding one SELECT statement")
         if table is not None:
             raise SettingsError("[source] takes either table or query, not both; remove one")
+        _check_deterministic(query)
     if has_db and table is None and query is None:
         raise SettingsError("[source] needs table (e.g. table = \"sales\") or query (one SELECT statement)")
     keys_t, period, value, frequency = _parse_columns(section)
@@ -295,8 +307,11 @@ def _parse_columns(section: dict[str, Any]) -> tuple[tuple[str, ...], str, str, 
     lowered = [c.lower() for c in (*keys_t, period, value)]
     if len(set(lowered)) != len(lowered):
         raise SettingsError("source.keys, source.period and source.value must name different columns")
+    from .warehouse.duckdb_store import output_column_prefixes
+
+    reserved, prefixes = reserved_columns(), output_column_prefixes()
     for k in keys_t:
-        if k.lower() in RESERVED_COLUMNS or k.lower().startswith(("lower_", "upper_")):
+        if k.lower() in reserved or k.lower().startswith(prefixes):
             raise SettingsError(
                 f"source.keys: column name {k!r} is used by arflow's output tables; rename it in a [source] query (e.g. SELECT {k} AS {k}_key ...)"
             )
@@ -379,3 +394,47 @@ def _parse_spark(section: dict[str, Any] | None, source: SourceSpec) -> SparkOpt
             )
         pairs.append((key, str(value).lower() if isinstance(value, bool) else str(value)))
     return SparkOptions(master=master.strip() if master else None, partitions=partitions, config=tuple(pairs))
+
+
+def _check_deterministic(query: str) -> None:
+    """Refuse a source query whose rows change from run to run (random numbers, random samples).
+
+    The query is parsed by DuckDB (comments and string literals are not
+    mistaken for calls); a query that does not parse is left for the source
+    to report.
+    """
+    import duckdb
+
+    con = duckdb.connect(":memory:")
+    try:
+        (tree,) = con.execute("SELECT json_serialize_sql(?)", [query]).fetchone()
+    except duckdb.Error:
+        return
+    finally:
+        con.close()
+    try:
+        doc = json.loads(tree)
+    except (TypeError, ValueError):
+        return
+    found: list[str] = []
+
+    def walk(node: Any) -> None:
+        if isinstance(node, dict):
+            name = node.get("function_name")
+            if isinstance(name, str) and name.lower() in NONDETERMINISTIC_FUNCTIONS:
+                found.append(f"{name}()")
+            sample = node.get("sample")
+            if isinstance(sample, dict) and not sample.get("repeatable", False):
+                found.append("USING SAMPLE")
+            for v in node.values():
+                walk(v)
+        elif isinstance(node, list):
+            for v in node:
+                walk(v)
+
+    walk(doc)
+    if found:
+        raise SettingsError(
+            f"source.query uses {found[0]}, which gives different rows on every run (results must be "
+            "reproducible); remove it or use a fixed rule (e.g. hash() of the keys, or USING SAMPLE ... REPEATABLE (seed))"
+        )

@@ -19,6 +19,9 @@ OUTLIER_POLICIES = ("treat", "quarantine", "off")
 RESIDUAL_TESTS = ("ljung-box", "breusch-godfrey", "lag-t")
 MULTIPLE_LAGS = ("holm", "none")
 
+#: Most coverage levels a job may ask for: each level adds columns to three output tables for good.
+MAX_COVERAGE_LEVELS = 6
+
 #: Seasonal lag used when ``seasonal_lag = "auto"``.
 SEASONAL_PERIOD = {"day": 7, "week": 52, "month": 12, "quarter": 4, "year": None, "step": None}
 
@@ -148,6 +151,8 @@ class ForecastSettings:
         for c in cov:
             if not (_is_num(c) and 0 < c < 1):
                 _fail("forecast.coverage", c, "levels strictly between 0 and 1, e.g. [0.8, 0.95]")
+        if len(cov) > MAX_COVERAGE_LEVELS:
+            _fail("forecast.coverage", f"{len(cov)} levels", f"at most {MAX_COVERAGE_LEVELS} levels (each adds interval columns to the output tables for good)")
         labels = [coverage_label(c) for c in cov]
         if len(set(labels)) != len(labels):
             _fail("forecast.coverage", list(cov), "distinct levels (each names lower_NN / upper_NN columns)")

@@ -69,8 +69,10 @@ def test_datetime_periods_and_mixed_weekdays():
     assert _first_forecasts(stamps, "day")[0] == dt.date(2020, 4, 10)
     mixed = [dt.date(2020, 1, 6) + dt.timedelta(weeks=i) for i in range(60)]
     mixed[10] += dt.timedelta(days=1)
-    with pytest.raises(arflow.SchemaError, match="different weekdays"):
-        _first_forecasts(mixed, "week")
+    # a Tuesday among Monday weeks is not binned silently: the series is held back with a reason
+    run = arflow.forecast(_frame(mixed), keys="unit", period="p", value="v", settings=Settings(frequency="week"))
+    assert run.models["decision"][0] == "quarantined"
+    assert "off_calendar_periods" in run.models["reasons"][0]
 
 
 def test_integer_periods_must_use_step():

@@ -4,6 +4,12 @@ Each gate gives, per series, a statistic, a p-value (where it is a test), the
 threshold it was held to and whether it passed. A series is published only if
 every gate passed; otherwise it is quarantined with one reason code per
 failure. Nothing here computes statistics: it only compares.
+
+Fail closed: a gate whose statistic (or p-value, for a test) is not finite
+cannot vouch for a series, so it fails with reason ``check_not_computed``
+(a NaN compared with a threshold would otherwise count as a pass). A forecast
+whose prediction interval is not finite or has (numerically) zero width is
+never published: reason ``degenerate_interval``.
 """
 
 from __future__ import annotations
@@ -31,6 +37,11 @@ REASONS = (
     "outlier",
     "interval_undercoverage",
     "order_not_supported",
+    # added later; appended so the order of the codes above never changes
+    "check_not_computed",
+    "degenerate_interval",
+    "conflicting_duplicates",
+    "off_calendar_periods",
 )
 REASON_INDEX = {r: i for i, r in enumerate(REASONS)}
 
@@ -82,14 +93,18 @@ class GateBuilder:
         threshold=np.nan,
         applies=True,
         reason: str | None = None,
+        computed=True,
     ) -> None:
-        passed = self._full(passed, bool)
+        """Record a gate; where it applies but was not ``computed`` it fails with ``check_not_computed``."""
+        computed = self._full(computed, bool)
+        passed = self._full(passed, bool) & computed
         applies = self._full(applies, bool)
         self.rows[gate] = GateRow(
             self._full(statistic), self._full(pvalue), self._full(threshold), passed | ~applies, applies
         )
         if reason is not None:
-            self.flag(reason, applies & ~passed)
+            self.flag(reason, applies & ~passed & computed)
+        self.flag("check_not_computed", applies & ~computed)
 
     def flag(self, reason: str, where: np.ndarray) -> None:
         self.reasons[:, REASON_INDEX[reason]] |= np.asarray(where, dtype=bool)
@@ -130,6 +145,23 @@ class GateInputs:
     selection_cut: np.ndarray | None = None  # fitted on fewer candidate orders than configured
     order_cap: np.ndarray | None = None  # the largest order the series' sample could carry
     max_order: int | None = None
+    #: smallest relative half-width of the forecast intervals over steps and
+    #: levels (half-width / scale of the series); None: not checked
+    interval_relative_width: np.ndarray | None = None
+
+
+#: A prediction interval narrower than this share of the series' scale is
+#: numerically zero: an exact fit (a ramp, a polynomial) whose residuals are
+#: rounding noise, not a forecast anyone can rely on.
+MIN_RELATIVE_INTERVAL = 1e-9
+
+
+def _finite(*arrays: np.ndarray | None) -> np.ndarray:
+    ok = True
+    for a in arrays:
+        if a is not None:
+            ok = ok & np.isfinite(np.asarray(a, dtype=np.float64))
+    return np.asarray(ok, dtype=bool)
 
 
 def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off", coverage_mode: str = "off") -> GateOutcome:
@@ -142,11 +174,13 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
     ``interval_calibration`` gate (backtest coverage of the prediction intervals).
     """
     from .panel import (
+        CONFLICTING_DUPLICATES,
         CONSTANT,
         DUPLICATE_PERIODS,
         INTERNAL_GAPS,
         NO_DATA,
         NON_FINITE_VALUES,
+        OFF_CALENDAR,
     )
 
     G = len(x.n)
@@ -154,17 +188,22 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
     f = x.flags
     no_data = (f & NO_DATA) != 0
     dup = ((f & DUPLICATE_PERIODS) != 0) & (not gates.allow_duplicates)
+    # allowed duplicates must agree: which of two different values is right cannot be known
+    conflict = ((f & CONFLICTING_DUPLICATES) != 0) & gates.allow_duplicates
     gaps = ((f & INTERNAL_GAPS) != 0) & (not gates.allow_gaps)
     nonfin = ((f & NON_FINITE_VALUES) != 0) & (not gates.allow_gaps)
     const = (f & CONSTANT) != 0
+    off_calendar = (f & OFF_CALENDAR) != 0
     stale = x.stale_periods > gates.max_stale_periods
     b.flag("no_data", no_data)
     b.flag("duplicate_periods", dup)
+    b.flag("conflicting_duplicates", conflict)
     b.flag("data_gaps", gaps)
     b.flag("non_finite_values", nonfin)
     b.flag("constant_series", const)
     b.flag("stale_series", stale & ~no_data)
-    problems = no_data.astype(int) + dup + gaps + nonfin + const + (stale & ~no_data)
+    b.flag("off_calendar_periods", off_calendar)
+    problems = no_data.astype(int) + dup + conflict + gaps + nonfin + const + (stale & ~no_data) + off_calendar
     b.add("data_quality", problems == 0, statistic=problems, threshold=0)
 
     short = (x.n < gates.min_observations) & ~no_data
@@ -180,6 +219,7 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
               threshold=np.nan if x.max_order is None else x.max_order, applies=x.fitted)
 
     fitted = x.fitted
+    adf_ok = _finite(x.adf_statistic, x.adf_pvalue)
     if unit_root_policy == "quarantine":
         ur_pass = ~x.unit_root
     else:
@@ -190,7 +230,10 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
         statistic=x.adf_statistic,
         pvalue=x.adf_pvalue,
         threshold=np.nan,
-        applies=fitted & np.isfinite(x.adf_statistic),
+        # the unit-root judgment chooses levels or differences (or quarantines): when the
+        # ADF test cannot be computed that choice is a guess, so the gate fails closed
+        applies=fitted if unit_root_policy != "ignore" else fitted & adf_ok,
+        computed=adf_ok,
         reason="unit_root",
     )
     if gates.require_stationary:
@@ -200,77 +243,95 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
             statistic=x.max_root_modulus,
             threshold=1.0,
             applies=fitted,
+            computed=_finite(x.max_root_modulus),
             reason="not_stationary",
         )
     p = x.residual_pvalue
     b.add(
         "residual_autocorrelation",
-        ~(p < gates.alpha),
+        p >= gates.alpha,
         statistic=x.residual_statistic,
         pvalue=p,
         threshold=gates.alpha,
         applies=fitted,
+        computed=_finite(x.residual_statistic, p),
         reason="residual_autocorrelation",
     )
     if gates.arch_test and x.arch_pvalue is not None:
         b.add(
             "residual_arch",
-            ~(x.arch_pvalue < gates.alpha),
+            x.arch_pvalue >= gates.alpha,
             statistic=x.arch_statistic,
             pvalue=x.arch_pvalue,
             threshold=gates.alpha,
             applies=fitted,
+            computed=_finite(x.arch_statistic, x.arch_pvalue),
             reason="residual_arch",
         )
     b.flag("fit_failed", fitted & ~x.forecast_finite)
+    if x.interval_relative_width is not None:
+        w = x.interval_relative_width
+        b.add(
+            "forecast_interval",
+            w > MIN_RELATIVE_INTERVAL,
+            statistic=w,
+            threshold=MIN_RELATIVE_INTERVAL,
+            applies=fitted & x.forecast_finite,
+            computed=_finite(w),
+            reason="degenerate_interval",
+        )
     if gates.lower_bound is not None:
         b.add(
             "forecast_lower_bound",
-            ~(x.forecast_min < gates.lower_bound),
+            x.forecast_min >= gates.lower_bound,
             statistic=x.forecast_min,
             threshold=gates.lower_bound,
-            applies=fitted,
+            applies=fitted & x.forecast_finite,
+            computed=_finite(x.forecast_min),
             reason="forecast_out_of_bounds",
         )
     if gates.upper_bound is not None:
         b.add(
             "forecast_upper_bound",
-            ~(x.forecast_max > gates.upper_bound),
+            x.forecast_max <= gates.upper_bound,
             statistic=x.forecast_max,
             threshold=gates.upper_bound,
-            applies=fitted,
+            applies=fitted & x.forecast_finite,
+            computed=_finite(x.forecast_max),
             reason="forecast_out_of_bounds",
         )
     if naive_mode != "off" and x.naive_statistic is not None:
-        ok = ~(x.naive_statistic > x.naive_threshold)
-        # "warn" records the outcome in the gates table but never holds a series back
-        b.add(
-            "beats_naive",
-            ok,
-            statistic=x.naive_statistic,
-            threshold=x.naive_threshold,
-            applies=fitted & np.isfinite(x.naive_statistic),
-            reason="worse_than_naive" if naive_mode == "enforce" else None,
-        )
+        ok = x.naive_statistic <= x.naive_threshold
+        computed = _finite(x.naive_statistic)
+        if naive_mode == "enforce":
+            # enforced: a series the backtest could not score has not shown it beats naive
+            b.add("beats_naive", ok, statistic=x.naive_statistic, threshold=x.naive_threshold,
+                  applies=fitted, computed=computed, reason="worse_than_naive")
+        else:
+            # "warn" records the outcome in the gates table but never holds a series back
+            b.add("beats_naive", ok, statistic=x.naive_statistic, threshold=x.naive_threshold,
+                  applies=fitted & computed)
     if x.outlier_passed is not None:
+        # fail closed: a fitted series whose outlier statistic could not be computed is not vouched for
         b.add(
             "outliers",
             x.outlier_passed,
             statistic=x.outlier_statistic,
             threshold=x.outlier_threshold,
-            applies=fitted & np.isfinite(x.outlier_statistic),
+            applies=fitted,
+            computed=_finite(x.outlier_statistic),
             reason="outlier",
         )
     if coverage_mode != "off" and x.coverage_pvalue is not None:
         p = x.coverage_pvalue
-        # "warn" records the outcome in the gates table but never holds a series back
-        b.add(
-            "interval_calibration",
-            ~(p < x.coverage_alpha),
-            statistic=x.coverage_statistic,
-            pvalue=p,
-            threshold=x.coverage_alpha,
-            applies=fitted & np.isfinite(p),
-            reason="interval_undercoverage" if coverage_mode == "enforce" else None,
-        )
+        ok = p >= x.coverage_alpha
+        computed = _finite(x.coverage_statistic, p)
+        if coverage_mode == "enforce":
+            # enforced: a series the backtest could not score has not shown its intervals cover
+            b.add("interval_calibration", ok, statistic=x.coverage_statistic, pvalue=p,
+                  threshold=x.coverage_alpha, applies=fitted, computed=computed, reason="interval_undercoverage")
+        else:
+            # "warn" records the outcome in the gates table but never holds a series back
+            b.add("interval_calibration", ok, statistic=x.coverage_statistic, pvalue=p,
+                  threshold=x.coverage_alpha, applies=fitted & computed)
     return b.outcome()

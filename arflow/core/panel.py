@@ -26,6 +26,11 @@ TOO_SHORT = 8
 CONSTANT = 16
 ENDS_BEFORE_AS_OF = 32
 NO_DATA = 64
+#: set by the frame adapter (the panel sees ordinals only): duplicated periods whose values differ
+CONFLICTING_DUPLICATES = 128
+#: set by the frame adapter: a period label that is not on the frequency's calendar
+#: (a mid-month date under "month", a Wednesday among Monday weeks, a time of day)
+OFF_CALENDAR = 256
 
 #: a series whose range is at most this share of its largest absolute value is constant
 #: (about 4,500 float64 rounding units: only rounding noise, at any scale)
@@ -39,6 +44,8 @@ QUALITY_FLAG_NAMES: dict[int, str] = {
     CONSTANT: "constant_series",
     ENDS_BEFORE_AS_OF: "ends_before_as_of",
     NO_DATA: "no_data",
+    CONFLICTING_DUPLICATES: "conflicting_duplicates",
+    OFF_CALENDAR: "off_calendar_periods",
 }
 
 
@@ -190,6 +197,7 @@ def build_panel(
             hi = np.nanmax(np.where(np.isnan(panel), -np.inf, panel), axis=1)
             lo = np.nanmin(np.where(np.isnan(panel), np.inf, panel), axis=1)
         # scale-free: the range relative to the series' magnitude (an all-zero series is constant)
-        const = has_f & (n >= 2) & (hi - lo <= CONSTANT_RELATIVE_RANGE * np.maximum(np.abs(hi), np.abs(lo)))
+        with np.errstate(over="ignore", invalid="ignore"):  # +-1e308 ranges overflow to inf: not constant
+            const = has_f & (n >= 2) & (hi - lo <= CONSTANT_RELATIVE_RANGE * np.maximum(np.abs(hi), np.abs(lo)))
         flags[const] |= CONSTANT
     return Panel(panel, n, first, last, flags, int(as_of))

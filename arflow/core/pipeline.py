@@ -327,9 +327,14 @@ def _interval_terms(fit: autoreg.ARFit, modelled: np.ndarray, fs, exclude: np.nd
     return dict(coef_cov=np.where(fit.fitted[:, None, None], np.nan_to_num(cov), 0.0), df_resid=df)
 
 
+# overflow and 0/0 in degenerate series (values near +-1e308, exact fits) become NaN/inf,
+# which the gates then fail closed on; numpy's floating-point warnings would only be noise
+@np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore")
 def _run_block(panel: Panel, settings: Settings) -> dict:
     ms, gs, fs = settings.model, settings.gates, settings.forecast
     Y = panel.values
+    if Y.shape[1] < 2:  # no series has two values (e.g. all NULL): NaN columns keep every shape valid
+        Y = np.concatenate([np.full((Y.shape[0], 2 - Y.shape[1]), np.nan), Y], axis=1)
     G = Y.shape[0]
     seasonal = ms.seasonal_for(settings.frequency)
     usable = (panel.n >= max(gs.min_observations, 3)) & ((panel.flags & (NO_DATA | CONSTANT)) == 0)
@@ -462,6 +467,26 @@ def _in_processes(pieces: list[Panel], settings: Settings, workers: int) -> list
         return list(pool.map(_run_block, pieces, [settings] * len(pieces)))
 
 
+def _relative_interval_width(panel: Panel, fc: Forecasts) -> np.ndarray:
+    """Narrowest published interval half-width (any step, any level) over the series' standard deviation.
+
+    Computed from the published bounds themselves, so an interval that
+    rounding collapsed to a point shows as zero; NaN where it cannot be computed
+    (the gate then fails closed).
+    """
+    G = panel.n_series
+    if fc.lower.size == 0 or panel.values.shape[1] < 2:
+        return np.full(G, np.nan)
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        half = np.min(fc.upper - fc.lower, axis=(0, 2)) / 2.0
+        Y = panel.values
+        m = np.isfinite(Y).sum(axis=1)
+        mean = np.nansum(Y, axis=1) / m
+        scale = np.sqrt(np.nansum((Y - mean[:, None]) ** 2, axis=1) / np.maximum(m - 1, 1))
+        rel = half / scale
+    return np.where(np.isfinite(rel), rel, np.nan)
+
+
 def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
     """Run the statistical core on a panel with the given settings.
 
@@ -489,6 +514,9 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         rp = diagnostics.benjamini_hochberg(np.where(fit.fitted, rp, np.nan))
         rtest = diagnostics.TestResult(rtest.statistic, rp, rtest.df)
     finite = np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
+    interval_width = _relative_interval_width(panel, fc)
+    with np.errstate(over="ignore", invalid="ignore"):  # overflowing errors give inf/NaN: the gate fails closed
+        naive_stat = None if bt is None else bt.relative_rmse_over(settings.backtest.naive_steps)
     inputs = gates.GateInputs(
         flags=panel.flags,
         n=panel.n,
@@ -506,12 +534,13 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
         forecast_finite=finite,
         arch_statistic=None if arch is None else arch.statistic,
         arch_pvalue=None if arch is None else arch.pvalue,
-        naive_statistic=None if bt is None else bt.relative_rmse_over(settings.backtest.naive_steps),
+        naive_statistic=naive_stat,
         naive_threshold=1.0 + settings.backtest.naive_tolerance,
         order_unsupported=fit.order_unsupported,
         selection_cut=fit.selection_cut,
         order_cap=autoreg.candidate_limits(panel.n, ms.order, ms.max_order, None)[0].astype(np.float64),
         max_order=ms.max_order if ms.order == "auto" else int(ms.order),
+        interval_relative_width=interval_width,
     )
     orep = parts["outliers"]
     if orep is not None:

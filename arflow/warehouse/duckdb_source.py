@@ -355,11 +355,16 @@ class DuckDBSource:
         """Row count; rejects an empty source and rows with NULL keys or periods."""
         spec = self.spec
         null_key = " OR ".join(f"{quote(k)} IS NULL" for k in spec.keys)
-        total, null_keys, null_periods = self._sql(
-            f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL) FROM {self._from()}"
+        total, null_keys, null_periods, values = self._sql(
+            f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL), "
+            f"count({quote(spec.value)}) FROM {self._from()}"
         )[0]
         if total == 0:
             raise SourceError("the source has no rows; check source.table / source.query (or the parquet files)")
+        if values == 0:
+            raise SourceError(
+                f"the value column {spec.value} is NULL in all {total} row(s); check source.value or the [source] query"
+            )
         if null_keys:
             raise SourceError(
                 f"the source has {null_keys:,} row(s) with a NULL key ({', '.join(spec.keys)}), e.g. "

@@ -15,7 +15,9 @@ from __future__ import annotations
 import datetime as dt
 import json
 import os
+import re
 import sys
+import tempfile
 import time
 from dataclasses import dataclass, field
 from importlib import resources
@@ -28,6 +30,7 @@ import polars as pl
 
 from ..errors import PublishError
 from ..runtime import hold_signals, release_signals, unwatch_connection, watch_connection
+from ..settings import MAX_COVERAGE_LEVELS
 from .duckdb_source import engine_config, first_line, is_lock_error, lock_message
 from .identifiers import quote
 
@@ -162,7 +165,7 @@ def _open(database: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection:
 def _existing_layout(con: duckdb.DuckDBPyConnection, schema: str) -> tuple[list[str], str] | None:
     rows = con.execute(
         "SELECT column_name, data_type FROM information_schema.columns "
-        "WHERE table_schema = ? AND table_name = 'series_status' ORDER BY ordinal_position",
+        "WHERE lower(table_schema) = lower(?) AND table_name = 'series_status' ORDER BY ordinal_position",
         [schema],
     ).fetchall()
     if not rows:
@@ -191,20 +194,241 @@ def check_layout(con: duckdb.DuckDBPyConnection, layout: TableLayout, database: 
 
 
 def check_target(database: Path, layout: TableLayout) -> str:
-    """Read-only look at the target for ``validate`` and dry runs; returns a status note."""
+    """Read-only look at the target for ``validate`` and dry runs; returns a status note.
+
+    Raises :class:`PublishError` when a run could not write there (missing or
+    read-only folder or file) or the schema is not one arflow can write into.
+    """
+    check_writable(database)
     if not database.exists():
         return "will be created"
     try:
-        con = duckdb.connect(str(database), read_only=True)
+        # the source's settings: a source in the same file is then the same database instance
+        con = duckdb.connect(str(database), read_only=True, config=engine_config())
     except duckdb.Error as exc:
         if is_lock_error(exc):
-            return "in use by another process right now (not checked)"
+            return f"in use by another process right now (not checked: {_lock_holder(exc)})"
         raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
     try:
         check_layout(con, layout, database)
+        check_ownership(con, layout, database)
         return "tables exist" if _existing_layout(con, layout.schema) else "tables will be created"
     finally:
         con.close()
+
+
+# -- ownership of the target schema -------------------------------------------------------
+
+#: The marker table: one row per table arflow created in the schema (``sql/layout_marker.sql``).
+MARKER_TABLE = "arflow_tables"
+MARKER_FILE = "layout_marker"
+#: At most this many coverage levels: each adds columns to three tables for good.
+#: Columns of the run's staged frames that are not table columns (``actuals`` carries keys, period, value).
+_STAGED_COLUMNS = ("period", "value")
+_PROBE_SCHEMA = "arflow_probe"
+_PROBE_KEY = "arflow_probe_key"
+_COVERAGE_TYPES = {"forecasts": "DOUBLE", "backtests": "DOUBLE", "accuracy": "BOOLEAN"}
+
+
+def _expected_columns(layout: TableLayout) -> dict[str, list[tuple[str, str]]]:
+    """table -> [(column, type)] as the DDL files create them for ``layout`` (an in-memory probe)."""
+    return _expected_cached(layout.keys, layout.key_types, layout.period_type)
+
+
+_EXPECTED: dict[tuple, dict[str, list[tuple[str, str]]]] = {}
+
+
+def _expected_cached(keys: tuple[str, ...], key_types: tuple[str, ...], period_type: str) -> dict[str, list[tuple[str, str]]]:
+    cache_key = (keys, key_types, period_type)
+    if cache_key not in _EXPECTED:
+        probe = TableLayout(_PROBE_SCHEMA, keys, key_types, period_type)
+        con = duckdb.connect(":memory:")
+        try:
+            con.execute(f"CREATE SCHEMA {quote(_PROBE_SCHEMA)}")
+            for name in (*DDL_FILES, MARKER_FILE):
+                con.execute(render_sql(name, probe))
+            con.execute(render_sql(VIEW_FILE, probe))
+            con.execute(render_sql(ACCURACY_VIEW, probe))
+            rows = con.execute(
+                "SELECT table_name, column_name, data_type FROM information_schema.columns "
+                "WHERE table_schema = ? ORDER BY table_name, ordinal_position",
+                [_PROBE_SCHEMA],
+            ).fetchall()
+        finally:
+            con.close()
+        out: dict[str, list[tuple[str, str]]] = {}
+        for table, column, typ in rows:
+            out.setdefault(str(table), []).append((str(column), str(typ).upper()))
+        _EXPECTED[cache_key] = out
+    return _EXPECTED[cache_key]
+
+
+def output_columns() -> frozenset[str]:
+    """Lower-cased names of every column of arflow's tables and views, read off the DDL files.
+
+    A key column may not use one of these names (nor a coverage prefix, see
+    :func:`output_column_prefixes`): the key columns are copied into every result table.
+    """
+    tables = _expected_cached((_PROBE_KEY,), ("VARCHAR",), "DATE")
+    names = {c.lower() for t, cols in tables.items() if t != MARKER_TABLE for c, _ in cols if c != _PROBE_KEY}
+    return frozenset(names | set(_STAGED_COLUMNS))
+
+
+def output_column_prefixes() -> tuple[str, ...]:
+    """Prefixes of the per-coverage-level columns (``lower_80``, ``coverage_95``, ``hit_rate_80``, ...)."""
+    return tuple(f"{p}_" for prefixes in COVERAGE_COLUMNS.values() for p in prefixes) + ("hit_rate_",)
+
+
+def _table_columns(con: duckdb.DuckDBPyConnection, schema: str) -> dict[str, dict[str, str]]:
+    """table (lower-cased) -> {column (lower-cased): type} of the base tables in ``schema`` (any case)."""
+    rows = con.execute(
+        "SELECT c.table_name, c.column_name, c.data_type FROM information_schema.columns AS c "
+        "JOIN information_schema.tables AS t ON t.table_schema = c.table_schema AND t.table_name = c.table_name "
+        "WHERE lower(c.table_schema) = lower(?) AND t.table_type = 'BASE TABLE'",
+        [schema],
+    ).fetchall()
+    out: dict[str, dict[str, str]] = {}
+    for table, column, typ in rows:
+        out.setdefault(str(table).lower(), {})[str(column).lower()] = str(typ).upper()
+    return out
+
+
+def check_ownership(
+    con: duckdb.DuckDBPyConnection, layout: TableLayout, database: Path
+) -> tuple[list[str], list[tuple[str, str, str]]]:
+    """Refuse a schema whose arflow-named tables arflow did not create, or whose columns were altered.
+
+    Returns the arflow tables still to be created and the (table, column,
+    type) columns this arflow version defines that the schema's tables never
+    had (to be added). A schema written before the marker table existed is
+    adopted when every table has exactly the columns arflow would create.
+    """
+    expected = _expected_columns(layout)
+    present = _table_columns(con, layout.schema)
+    where = f"schema {layout.schema} in {database}"
+    fix = "publish this job to another schema with [publish] schema"
+    ours = [t for t in DDL_FILES if t in present]
+    recorded: dict[str, set[str]] = {}
+    if MARKER_TABLE in present:
+        recorded = {str(t).lower(): {str(c).lower() for c in cols} for t, cols in con.execute(
+            f"SELECT table_name, columns FROM {quote(layout.schema)}.{MARKER_TABLE}").fetchall()}
+    elif ours and _all_match(ours, expected, present):
+        recorded = {t: set(present[t]) for t in ours}
+    for table in ours:
+        if table not in recorded:
+            raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
+    for table in sorted(set(recorded) - set(present)):
+        if table in DDL_FILES:
+            raise PublishError(f"{where}: arflow's table {table} was dropped; {fix} (or restore the table)")
+    new_columns: list[tuple[str, str, str]] = []
+    for table in ours:
+        problem, new = _column_difference(expected[table], present[table], table, recorded[table])
+        if problem:
+            raise PublishError(f"{where}: {problem}; {fix} (or restore the column)")
+        new_columns.extend((table, c, t) for c, t in new)
+    # a coverage level has its columns in every table that carries levels
+    labels = {c[len(p) + 1:] for t, prefixes in COVERAGE_COLUMNS.items() if t in present
+              for p in prefixes for c in present[t] if c.startswith(p + "_")}
+    for label in sorted(labels):
+        for table, prefixes in COVERAGE_COLUMNS.items():
+            for prefix in prefixes:
+                if table in present and f"{prefix}_{label}" not in present[table]:
+                    raise PublishError(
+                        f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)"
+                    )
+    return [t for t in DDL_FILES if t not in present], new_columns
+
+
+def _all_match(tables: list[str], expected: dict, present: dict) -> bool:
+    return len(tables) == len(DDL_FILES) and all(
+        _column_difference(expected[t], present[t], t, None) == (None, []) for t in tables)
+
+
+def _column_difference(
+    expected: list[tuple[str, str]], actual: dict[str, str], table: str, recorded: set[str] | None
+) -> tuple[str | None, list[tuple[str, str]]]:
+    """(what differs between a table's columns and arflow's definition or None, columns new in this version).
+
+    ``recorded``: the columns arflow created the table with (None: every
+    defined column must be there). A defined column missing from the table
+    and from ``recorded`` is new in this version, not dropped.
+    """
+    want = {c.lower(): t for c, t in expected}
+    new: list[tuple[str, str]] = []
+    for column, typ in want.items():
+        if column not in actual:
+            if recorded is not None and column not in recorded:
+                new.append((column, typ))
+                continue
+            return f"column {table}.{column} was dropped", []
+        if actual[column] != typ:
+            return f"column {table}.{column} is {actual[column]}, arflow writes {typ}", []
+    prefixes = tuple(f"{p}_" for p in COVERAGE_COLUMNS.get(table, ()))
+    for column, typ in actual.items():
+        if column in want:
+            continue
+        if prefixes and column.startswith(prefixes):
+            if typ != _COVERAGE_TYPES[table]:
+                return f"column {table}.{column} is {typ}, arflow writes {_COVERAGE_TYPES[table]}", []
+            continue
+        return f"table {table} has a column {column} that arflow did not create", []
+    return None, new
+
+
+def _arflow_version() -> str:
+    from importlib import metadata
+
+    try:
+        return metadata.version("arflow")
+    except metadata.PackageNotFoundError:
+        return "0+unknown"
+
+
+def _lock_holder(exc: BaseException) -> str:
+    """'held by <program> (PID n)' from DuckDB's lock error, or a generic phrase."""
+    m = re.search(r"lock is held in (.+?) \(PID (\d+)\)", str(exc))
+    return f"held by {m.group(1)} (PID {m.group(2)})" if m else "held by another process"
+
+
+def check_writable(database: Path) -> None:
+    """Raise a one-line :class:`PublishError` when a run could not write ``database``."""
+    folder = database.parent
+    if not folder.is_dir():
+        raise PublishError(f"folder {folder} of publish.database does not exist; create it or fix the path")
+    if database.exists() and not database.is_file():
+        raise PublishError(f"publish.database {database} is not a file; fix the path")
+    if database.exists() and not os.access(database, os.W_OK):
+        raise PublishError(f"target database {database} is read-only; make it writable or publish elsewhere")
+    try:  # DuckDB writes a .wal file next to the database
+        fd, probe = tempfile.mkstemp(prefix=".arflow-write-probe-", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise PublishError(
+            f"folder {folder} of publish.database is not writable ({exc.strerror or exc}); "
+            "make it writable or publish elsewhere"
+        ) from None
+
+
+def preflight_target(database: Path) -> None:
+    """Before reading or fitting anything: the target is writable and no other program holds it.
+
+    Opens the database for writing for a moment (and closes it), so a program
+    holding it (a dashboard, a notebook, another run) is named now rather than
+    after all the compute. The schema itself is checked by :func:`check_target`.
+    """
+    check_writable(database)
+    if not database.exists():
+        return
+    try:
+        duckdb.connect(str(database), config=engine_config()).close()
+    except duckdb.Error as exc:
+        if is_lock_error(exc):
+            raise PublishError(
+                f"target database {database} is in use by another process ({_lock_holder(exc)}: a dashboard, "
+                "a notebook or another arflow run); close it or retry when it finishes; nothing was computed"
+            ) from None
+        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
 
 
 class DuckDBStore:
@@ -349,9 +573,32 @@ class DuckDBStore:
 
     def _ensure_tables(self, con: duckdb.DuckDBPyConnection, coverage_labels: tuple[str, ...]) -> None:
         check_layout(con, self.layout, self.database)
+        missing, new_columns = check_ownership(con, self.layout, self.database)
         con.execute(f"CREATE SCHEMA IF NOT EXISTS {self._schema}")
+        con.execute(render_sql(MARKER_FILE, self.layout))
+        marked = {str(r[0]) for r in con.execute(f"SELECT table_name FROM {self._schema}.{MARKER_TABLE}").fetchall()}
         for name in DDL_FILES:
             con.execute(render_sql(name, self.layout))
+        for table, column, kind in new_columns:  # defined by this arflow version after the table was made
+            con.execute(f"ALTER TABLE {self._schema}.{quote(table)} ADD COLUMN {quote(column)} {kind}")
+        expected = _expected_columns(self.layout)
+        for name in DDL_FILES:
+            columns = [c.lower() for c, _ in expected[name]]
+            if name in missing or name not in marked:  # created now, or adopted from a schema that matched exactly
+                con.execute(
+                    f"INSERT INTO {self._schema}.{MARKER_TABLE} VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    [name, dt.datetime.now(dt.timezone.utc).replace(tzinfo=None), "arflow", _arflow_version(),
+                     list(self.layout.keys), self.layout.period_type, columns],
+                )
+            elif any(t == name for t, _, _ in new_columns):
+                con.execute(f"UPDATE {self._schema}.{MARKER_TABLE} SET columns = ? WHERE table_name = ?", [columns, name])
+        have_levels = {c[len("lower_"):] for c in self._columns(con, "forecasts") if c.startswith("lower_")}
+        if len(have_levels | set(coverage_labels)) > MAX_COVERAGE_LEVELS:
+            raise PublishError(
+                f"schema {self.layout.schema} in {self.database} would hold {len(have_levels | set(coverage_labels))} "
+                f"coverage levels, at most {MAX_COVERAGE_LEVELS} are allowed (each adds columns for good); "
+                "reuse the levels already there or publish to another schema"
+            )
         for table, prefixes in COVERAGE_COLUMNS.items():
             have = self._columns(con, table)
             kind = "BOOLEAN" if table == "accuracy" else "DOUBLE"
@@ -366,7 +613,7 @@ class DuckDBStore:
 
     def _columns(self, con: duckdb.DuckDBPyConnection, table: str) -> set[str]:
         rows = con.execute(
-            "SELECT column_name FROM information_schema.columns WHERE table_schema = ? AND table_name = ?",
+            "SELECT column_name FROM information_schema.columns WHERE lower(table_schema) = lower(?) AND table_name = ?",
             [self.layout.schema, table],
         ).fetchall()
         return {r[0] for r in rows}
