@@ -235,7 +235,7 @@ def stop_pool(pool: Any, timeout: float = 5.0) -> None:
 # -- test hooks ---------------------------------------------------------------
 
 def fault_point(name: str) -> None:
-    """Test-only hook at a named point of a run (same switches as the publisher's hooks).
+    """Test-only hook at a named point of a run (source open, after writing a table, before commit).
 
     ``ARFLOW_TEST_FAIL_AFTER=name`` raises; ``ARFLOW_TEST_PAUSE_AFTER=name``
     prints a marker line on stderr and waits (at most 60 s) until the file

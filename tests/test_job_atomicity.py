@@ -51,7 +51,7 @@ def test_fault_mid_publish_leaves_tables_as_before(job: Path, capsys, monkeypatc
     err = capsys.readouterr().err
     assert code == 1
     assert err.startswith("arflow: error: internal error") and err.count("\n") == 1
-    assert f"test fault injected after writing {table}" in err
+    assert f"test fault injected after {table}" in err
     assert warehouse_state(_db(job)) == before
     monkeypatch.delenv("ARFLOW_TEST_FAIL_AFTER")
     assert main(["run", str(job)]) == 0

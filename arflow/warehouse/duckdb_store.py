@@ -16,9 +16,7 @@ import datetime as dt
 import json
 import os
 import re
-import sys
 import tempfile
-import time
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
@@ -29,7 +27,7 @@ import duckdb
 import polars as pl
 
 from ..errors import PublishError
-from ..runtime import hold_signals, release_signals, unwatch_connection, watch_connection
+from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
 from ..settings import MAX_COVERAGE_LEVELS
 from .duckdb_source import engine_config, first_line, is_lock_error, lock_message
 from .identifiers import quote
@@ -89,24 +87,6 @@ class RunRecord:
     stale_after_periods: int | None = None
     #: refuse (inside the transaction) a vintage more than this many periods after the job's latest one (None: no check)
     jump_limit: int | None = None
-
-
-def _fault_point(name: str) -> None:
-    """Test-only hooks, inside the transaction after writing ``name``.
-
-    ``ARFLOW_TEST_FAIL_AFTER=name`` raises; ``ARFLOW_TEST_PAUSE_AFTER=name``
-    prints a marker line on stderr and waits (at most 60 s) until the file
-    named by ``ARFLOW_TEST_RESUME_FILE`` exists.
-    """
-    if os.environ.get("ARFLOW_TEST_FAIL_AFTER") == name:
-        raise RuntimeError(f"test fault injected after writing {name}")
-    if os.environ.get("ARFLOW_TEST_PAUSE_AFTER") == name:
-        sys.stderr.write(f"arflow-test: paused after {name}\n")
-        sys.stderr.flush()
-        resume = os.environ.get("ARFLOW_TEST_RESUME_FILE")
-        deadline = time.monotonic() + 60.0
-        while time.monotonic() < deadline and not (resume and Path(resume).exists()):
-            time.sleep(0.02)
 
 
 def load_sql(name: str) -> str:
@@ -492,21 +472,21 @@ class DuckDBStore:
                     self._record_accuracy(con, tables, record, coverage_labels)
                 else:
                     self._insert(con, table, tables, record)
-                _fault_point(table)
+                fault_point(table)
             self._insert_run(con, record, attempt)
-            _fault_point("runs")
+            fault_point("runs")
             if not held:
                 con.execute(
                     f"INSERT INTO {self._schema}.vintages VALUES (?, ?, ?, ?, ?)",
                     [record.job, record.as_of, record.run_id, attempt, record.finished_at],
                 )
                 self._write_policy(con, record)
-            _fault_point("vintages")
+            fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
             con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
             hold_signals()  # from here a stop signal waits: a committed run exits with its real status
             con.execute("COMMIT")
-            _fault_point("commit")
+            fault_point("commit")
             return attempt
         except BaseException as exc:
             release_signals()

@@ -47,7 +47,8 @@ import duckdb
 import polars as pl
 
 from ..errors import PublishError, SourceError
-from .duckdb_store import VIEW_FILE, RunRecord, TableLayout, _fault_point, render_sql
+from ..runtime import fault_point
+from .duckdb_store import VIEW_FILE, RunRecord, TableLayout, render_sql
 from .identifiers import check_identifier
 
 FORMAT_VERSION = 1
@@ -123,7 +124,7 @@ class StagedRun:
 
     def commit(self) -> int:
         """Write the commit marker (the run becomes visible), then tidy old attempts; returns the attempt."""
-        _fault_point("lakehouse:commit")
+        fault_point("lakehouse:commit")
         rec = self.record
         marker = {
             "format": FORMAT_VERSION,
@@ -245,9 +246,9 @@ class ParquetStore:
                 if frame is None or frame.width == 0:
                     continue
                 self._write(staged, table, frame)
-                _fault_point(f"lakehouse:{table}")
+                fault_point(f"lakehouse:{table}")
             self._write(staged, "runs", _runs_frame(record, attempt))
-            _fault_point("lakehouse:runs")
+            fault_point("lakehouse:runs")
         except BaseException as exc:
             staged.abort()
             if isinstance(exc, OSError):
