@@ -324,27 +324,24 @@ class _PipeSafe:
         self.closed_by_reader = False
 
     def write(self, text: str) -> int:
-        if not self.closed_by_reader:
-            try:
-                return self._stream.write(text)
-            except (BrokenPipeError, ValueError):
-                self._gone()
-            except OSError as exc:
-                if exc.errno not in (errno.EPIPE, errno.EINVAL):
-                    raise
-                self._gone()
+        self._guarded(self._stream.write, text)
         return len(text)
 
     def flush(self) -> None:
-        if not self.closed_by_reader:
-            try:
-                self._stream.flush()
-            except (BrokenPipeError, ValueError):
-                self._gone()
-            except OSError as exc:
-                if exc.errno not in (errno.EPIPE, errno.EINVAL):
-                    raise
-                self._gone()
+        self._guarded(self._stream.flush)
+
+    def _guarded(self, call: Any, *args: Any) -> None:
+        """Run a write or flush unless the reader is gone; a broken pipe marks it gone."""
+        if self.closed_by_reader:
+            return
+        try:
+            call(*args)
+        except (BrokenPipeError, ValueError):
+            self._gone()
+        except OSError as exc:
+            if exc.errno not in (errno.EPIPE, errno.EINVAL):
+                raise
+            self._gone()
 
     def isatty(self) -> bool:
         try:
