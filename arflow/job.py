@@ -23,7 +23,7 @@ from . import api
 from .allocator import tune_for_batch
 from .errors import SettingsError, SourceError
 from .job_file import JobSpec, load_job
-from .runtime import bind_to_parent, stop_pool
+from .runtime import bind_to_parent, stop_pool, worker_context
 from .settings import coverage_label
 from .warehouse.duckdb_source import DuckDBSource
 from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, preflight_target, run_id_for
@@ -216,13 +216,16 @@ def _sql_literal(value: Any) -> str:
 
 def run_job(
     spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: EventSink | None = None, *,
-    allow_beyond_data: bool = False, allow_jump: bool = False,
+    allow_beyond_data: bool = False, allow_jump: bool = False, tune_allocator: bool = True,
 ) -> JobOutcome:
     """Run a job: read, forecast chunk by chunk, publish everything in one transaction.
 
     ``allow_beyond_data`` / ``allow_jump`` lift the as-of guards (see :func:`place_as_of`).
+    ``tune_allocator=False`` leaves this process's allocator as it is (worker processes are tuned
+    either way): the typed run call in a long-lived process passes it.
     """
-    tune_for_batch()
+    if tune_allocator:
+        tune_for_batch()
     emit: EventSink = on_event or (lambda event: None)
     clock = time.perf_counter()
     started_at = _utcnow()
@@ -422,10 +425,9 @@ def _forecast_chunks(
         for i, frame in enumerate(source.chunks(as_of, chunk_series)):
             progress(_stage_chunk(frame, *args, i))
         return summary
-    import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor
 
-    ctx = mp.get_context("spawn")
+    ctx = worker_context()  # spawn, without re-running the caller's __main__ in the workers
     workers = min(spec.run.workers, n_chunks)
     # workers die with this process (kill -9 included) and do not hold its output open
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_start_worker, initargs=(os.getpid(),))
