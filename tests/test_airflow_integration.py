@@ -141,3 +141,16 @@ def test_job_file_error_fails_the_task_without_retries(dags) -> None:
     assert tis["forecast"].state == "failed" and tis["forecast"].try_number == 1
     assert tis["refresh_dashboard"].state == "upstream_failed"
     assert not (out / "broken.json").exists()
+
+
+def test_readme_example_defines_the_dag(dags) -> None:
+    import re
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    section = readme.split("### Apache Airflow", 1)[1]
+    code = re.search(r"```python\n(.*?)```", section, re.S).group(1)
+    namespace: dict = {}
+    exec(compile(code, "README-airflow", "exec"), namespace)  # noqa: S102 - the README's own example
+    forecast = namespace["forecast"]
+    assert forecast.dag.dag_id == "demand_forecasts" and set(forecast.dag.task_dict) == {"forecast", "announce"}
+    assert forecast.periods_back == 1 and "env" in forecast.template_fields

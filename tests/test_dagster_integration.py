@@ -125,3 +125,16 @@ def test_scheduled_dates_step_back_whole_periods() -> None:
     assert as_of_for_date(dt.date(2026, 3, 15), "quarter", 1) == dt.date(2025, 12, 1)
     assert as_of_for_date(dt.date(2026, 1, 5), "week", 2) == dt.date(2025, 12, 22)
     assert as_of_for_date(dt.date(2026, 1, 5), "day", 0) == dt.date(2026, 1, 5)
+
+
+def test_readme_example_defines_a_loadable_code_location() -> None:
+    import re
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    section = readme.split("### Dagster", 1)[1]
+    code = re.search(r"```python\n(.*?)```", section, re.S).group(1)
+    namespace: dict = {}
+    exec(compile(code, "README-dagster", "exec"), namespace)  # noqa: S102 - the README's own example
+    defs = namespace["defs"]
+    dg.Definitions.validate_loadable(defs)
+    assert defs.resolve_job_def("monthly_forecasts") is not None
