@@ -9,6 +9,7 @@ forecast task emits; each case checks the states Airflow records.
 
 from __future__ import annotations
 
+import atexit
 import importlib.util
 import json
 import os
@@ -19,6 +20,7 @@ from pathlib import Path
 import pytest
 
 _HOME = Path(tempfile.mkdtemp(prefix="arflow-airflow-home-"))
+atexit.register(shutil.rmtree, _HOME, True)  # also when Airflow is not installed and the module is skipped
 os.environ.update({
     "AIRFLOW_HOME": str(_HOME),
     "AIRFLOW__CORE__DAGS_FOLDER": str(_HOME / "dags"),
