@@ -78,10 +78,19 @@ def dags(tmp_path_factory: pytest.TempPathFactory):
 
 
 def _run(dag):
+    import signal
+
     import pendulum
 
-    # the January 2026 run forecasts from the month just ended (periods_back=1): as of 2025-12
-    run = dag.test(logical_date=pendulum.datetime(2026, 1, 1, tz="UTC"))
+    # Airflow's in-process task runner installs its own SIGTERM handler in this (the test) process and
+    # leaves it there; put the test session's handlers back so later tests get their signals as before
+    handlers = {s: signal.getsignal(s) for s in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        # the January 2026 run forecasts from the month just ended (periods_back=1): as of 2025-12
+        run = dag.test(logical_date=pendulum.datetime(2026, 1, 1, tz="UTC"))
+    finally:
+        for sig, handler in handlers.items():
+            signal.signal(sig, handler)
     return run, {ti.task_id: ti for ti in run.get_task_instances()}
 
 
