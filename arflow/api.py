@@ -15,7 +15,12 @@ from typing import Any
 import numpy as np
 import polars as pl
 
+from .machine import available_cpus
 from .settings import Settings
+
+#: series a frame needs before ``workers=None`` starts worker processes: four blocks of
+#: the core (below, starting the processes and copying results back cost more than they save)
+MIN_SERIES_FOR_WORKERS = 4096
 
 
 @dataclass(frozen=True)
@@ -85,7 +90,7 @@ def forecast(
     frequency: str | None = None,
     settings: Settings | None = None,
     as_of: Any = None,
-    workers: int = 1,
+    workers: int | None = None,
 ) -> ForecastRun:
     """Fit, check, gate and forecast every series of a long frame.
 
@@ -96,7 +101,10 @@ def forecast(
     series; ``period`` is a Date/Datetime/ISO-text column (or integers with
     ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
     or int) ignores later rows; by default it is the latest period present.
-    ``workers`` > 1 runs the statistical core in that many worker processes (blocks of series).
+    ``workers`` > 1 runs the statistical core in that many worker processes (blocks of series);
+    None (the default) uses the CPUs available to the process (affinity and container quota)
+    when the frame holds enough series for that to pay (:data:`MIN_SERIES_FOR_WORKERS`);
+    1 keeps everything in this process. The numbers do not depend on it.
 
     ``frequency`` ("day", "week", "month", "quarter", "year", "step") overrides
     ``settings.frequency``. Without it, the frequency is ``settings.frequency``
@@ -145,6 +153,8 @@ def forecast(
     )
     if inp.flags is not None:  # what only the frame adapter can see (resolved duplicates, off-calendar labels)
         panel = replace(panel, flags=panel.flags | inp.flags)
+    if workers is None:  # worker processes pay only from a few blocks of series on
+        workers = available_cpus() if panel.n_series >= MIN_SERIES_FOR_WORKERS else 1
     core = run_core(panel, settings, workers=workers)
     frames = result_frames(inp, core, settings)
     as_of_label = inp.codec.decode(np.array([panel.as_of])).item()

@@ -23,6 +23,7 @@ from . import api
 from .allocator import tune_for_batch
 from .errors import SettingsError, SourceError
 from .job_file import JobSpec, load_job
+from .machine import resolve_workers
 from .runtime import bind_to_parent, stop_pool
 from .settings import coverage_label
 from .warehouse.duckdb_source import DuckDBSource
@@ -254,7 +255,7 @@ def run_job(
         emit({
             "event": "start", "job": spec.name, "run_id": run_id, "as_of": as_of_value, "dry_run": dry_run,
             "source": spec.source.describe(), "target": _target_text(spec), "rows": rows, "series": series,
-            "chunks": n_chunks, "workers": spec.run.workers, "notes": notes,
+            "chunks": n_chunks, "workers": min(resolve_workers(spec.run.workers), max(n_chunks, 1)), "notes": notes,
         })
         stage = RunStage()
         summary = ChunkSummary()
@@ -391,7 +392,8 @@ def _stage_chunk(
     stage_dir: str, chunk_no: int,
 ) -> ChunkSummary:
     """Forecast one chunk of whole series and stage its rows (runs in a worker process too)."""
-    run = api.forecast(frame, keys=keys, period=period, value=value, settings=settings, as_of=as_of)
+    # one process per chunk: the job's workers are the parallelism
+    run = api.forecast(frame, keys=keys, period=period, value=value, settings=settings, as_of=as_of, workers=1)
     window = 2 * max(settings.forecast.horizon, settings.backtest.horizon or 0)
     return _stage_run(run, stage_dir, chunk_no, _actuals(frame, keys, period, value, window))
 
@@ -418,7 +420,8 @@ def _forecast_chunks(
         emit({"event": "chunk", "chunk": summary.chunks, "chunks": n_chunks, "series_done": summary.series_total,
               "series_total": series})
 
-    if spec.run.workers <= 1 or n_chunks <= 1:
+    wanted = resolve_workers(spec.run.workers)  # default: the CPUs this process may use
+    if wanted <= 1 or n_chunks <= 1:
         for i, frame in enumerate(source.chunks(as_of, chunk_series)):
             progress(_stage_chunk(frame, *args, i))
         return summary
@@ -426,7 +429,7 @@ def _forecast_chunks(
     from concurrent.futures import ProcessPoolExecutor
 
     ctx = mp.get_context("spawn")
-    workers = min(spec.run.workers, n_chunks)
+    workers = min(wanted, n_chunks)
     # workers die with this process (kill -9 included) and do not hold its output open
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_start_worker, initargs=(os.getpid(),))
     try:
@@ -436,7 +439,7 @@ def _forecast_chunks(
         pending: list[Future[ChunkSummary]] = []
         for i, frame in enumerate(source.chunks(as_of, chunk_series)):
             pending.append(pool.submit(_stage_chunk, frame, *args, i))
-            while len(pending) >= spec.run.workers * 2:
+            while len(pending) >= workers * 2:
                 progress(pending.pop(0).result())
         for fut in pending:
             progress(fut.result())

@@ -116,10 +116,14 @@ class PublishSpec:
 
 @dataclass(frozen=True)
 class RunOptions:
-    """How the work is cut up: series per chunk and parallel workers."""
+    """How the work is cut up: series per chunk and parallel workers.
+
+    ``workers`` None (the default, or ``"auto"`` in the job file): the CPUs
+    available to the process when the run starts (:func:`arflow.machine.available_cpus`).
+    """
 
     chunk_series: int = 20_000
-    workers: int = 1
+    workers: int | None = None
 
 
 @dataclass(frozen=True)
@@ -366,8 +370,10 @@ def _parse_run(section: dict[str, Any]) -> RunOptions:
     workers = section.get("workers", RunOptions.workers)
     if not (isinstance(chunk, int) and not isinstance(chunk, bool) and chunk >= 1):
         raise SettingsError(f"run.chunk_series = {chunk!r} is not allowed; use an integer of at least 1")
-    if not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
-        raise SettingsError(f"run.workers = {workers!r} is not allowed; use an integer from 1 to 256")
+    if workers == "auto":
+        workers = None
+    if workers is not None and not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
+        raise SettingsError(f'run.workers = {workers!r} is not allowed; use an integer from 1 to 256 or "auto"')
     return RunOptions(chunk_series=chunk, workers=workers)
 
 

@@ -249,6 +249,7 @@ def fit_bucket(job: TaskJob, table: pa.Table) -> pa.Table:
     try:
         run = api.forecast(
             data, keys=list(job.keys), period=job.period, value=job.value, settings=job.settings, as_of=job.as_of,
+            workers=1,  # Spark's tasks are the parallelism
         )
     except ArflowError as exc:
         rows.append((bucket, task, "__error", 0, 0, 0.0, f"{type(exc).__name__}\n{exc}".encode()))
