@@ -142,8 +142,11 @@ PROFILE_POINTS = [
     ("backtest", "arflow.core.backtest", "rolling_origin"),
     ("gates", "arflow.core.gates", "decide"),
     ("result frames", "arflow.frames", "result_frames"),
-    ("stage", "arflow.warehouse.stage", "RunStage.write_to"),
-    ("publish", "arflow.warehouse.duckdb_store", "DuckDBStore.publish"),
+    ("stage", "arflow.warehouse.stage", "RunStage.write_to"),  # before the seams refactor
+    ("stage", "arflow.warehouse.stage", "StagedRun.write_to"),
+    ("publish", "arflow.warehouse.duckdb_store", "DuckDBStore.publish"),  # before the seams refactor
+    ("publish", "arflow.warehouse.duckdb_target", "DuckDBTarget.prepare"),
+    ("publish", "arflow.warehouse.duckdb_target", "DuckDBPending.commit"),
 ]
 
 
@@ -204,7 +207,10 @@ def profile(db: str, workdir: str, frequency: str) -> dict:
             owner = getattr(owner, part, None)
         if owner is None or not hasattr(owner, name):
             continue
-        setattr(owner, name, wrap(phase, getattr(owner, name)))
+        wrapped = wrap(phase, getattr(owner, name))
+        if isinstance(inspect.getattr_static(owner, name), staticmethod):
+            wrapped = staticmethod(wrapped)
+        setattr(owner, name, wrapped)
     from arflow.job import run_job
     from arflow.job_file import load_job
 
