@@ -122,7 +122,7 @@ class RunOptions:
     available to the process when the run starts (:func:`arflow.machine.available_cpus`).
     """
 
-    chunk_series: int = 20_000
+    chunk_series: int = 10_000
     workers: int | None = None
 
 
