@@ -122,7 +122,15 @@ def task(kind: str, db: str, workdir: str, frequency: str) -> dict:
         outcome = run_job(load_job(job))
         extra = {"published": outcome.series_published, "series": outcome.series_total,
                  "phases": dict(getattr(outcome, "phase_seconds", {}) or {})}
-    return {"seconds": time.perf_counter() - t0, **extra}
+    return {"seconds": time.perf_counter() - t0, "cpu": _cpu_seconds(), **extra}
+
+
+def _cpu_seconds() -> float:
+    """User + system CPU seconds of this process and its reaped children (the workers)."""
+    import resource
+
+    own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own.ru_utime + own.ru_stime + kids.ru_utime + kids.ru_stime
 
 
 #: (phase, module, attribute) wrapped by the profile; a missing one is skipped
@@ -302,7 +310,7 @@ def main() -> None:
         for r in range(a.repeat):
             for kind in runs:
                 runs[kind].append(run_task(kind, db, tmp))
-            line = ", ".join(f"{k} {v[-1]['seconds']:.2f}s" for k, v in runs.items())
+            line = ", ".join(f"{k} {v[-1]['seconds']:.2f}s (cpu {v[-1]['cpu']:.1f}s)" for k, v in runs.items())
             print(f"  repeat {r + 1}: {line}")
         sec = {k: [x["seconds"] for x in v] for k, v in runs.items()}
         r_def = [d / s for d, s in zip(sec["defaults"], sec["sql"])]
@@ -317,6 +325,12 @@ def main() -> None:
             name = "arflow run, defaults (backtest on)" if kind == "defaults" else "arflow run, backtest off"
             print(f"| {name} | {spread(sec[kind])} | {spread(rat)}x | "
                   f"{max(x['peak_gib'] for x in runs[kind]):.2f} GiB | {statistics.median(sec[kind]) / G * 1e6:.0f} us |")
+        cpu = {k: [x["cpu"] for x in v] for k, v in runs.items()}
+        print(f"\nCPU seconds (all processes; less sensitive to other load than wall time): SQL {spread(cpu['sql'])}, "
+              f"defaults {spread(cpu['defaults'])} = {spread([d / s for d, s in zip(cpu['defaults'], cpu['sql'])])}x, "
+              f"backtest off {spread(cpu['no-backtest'])} = "
+              f"{spread([d / s for d, s in zip(cpu['no-backtest'], cpu['sql'])])}x; backtest share of CPU "
+              f"{spread([100 * (d - o) / d for d, o in zip(cpu['defaults'], cpu['no-backtest'])])} %")
         print(f"\nbacktest share of the defaults run (defaults - off) / defaults: {spread([100 * s for s in share])} %")
         med = sorted(runs["defaults"], key=lambda x: x["seconds"])[len(runs["defaults"]) // 2]
         if med.get("phases"):
@@ -339,7 +353,9 @@ def main() -> None:
             mo = run_task("defaults", db, tmp)  # the monthly run again, next to it
             mrow = min(mo["seconds"], statistics.median(sec["defaults"])) / (G * a.periods)
             wrow = wk["seconds"] / (a.weekly * 255)
-            print(f"\nweekly (lag 52): {a.weekly:,} x 255 in {wk['seconds']:.2f}s, {wrow * 1e9:.0f} ns per row; "
+            wcpu, mcpu = wk["cpu"] / (a.weekly * 255), mo["cpu"] / (G * a.periods)
+            print(f"\nweekly/monthly CPU per row: {wcpu / mcpu:.2f}x ({wcpu * 1e9:.0f} vs {mcpu * 1e9:.0f} ns)")
+            print(f"weekly (lag 52): {a.weekly:,} x 255 in {wk['seconds']:.2f}s, {wrow * 1e9:.0f} ns per row; "
                   f"monthly {mrow * 1e9:.0f} ns per row (this run {mo['seconds']:.2f}s); weekly/monthly "
                   f"{wrow / mrow:.2f}x (also {wrow / (mo['seconds'] / (G * a.periods)):.2f}x against the run beside it)")
             if wk.get("phases"):
