@@ -18,6 +18,7 @@ import pytest
 import arflow
 from arflow import machine
 from arflow.cli import main
+from arflow.run import MIN_SERIES_FOR_WORKERS
 from arflow.errors import SettingsError
 from arflow.job_file import load_job
 from arflow.sample.panels import default_job, job_toml, warehouse_state, write_table
@@ -96,7 +97,7 @@ def _frame(G: int, T: int) -> pl.DataFrame:
 
 
 def test_forecast_numbers_do_not_depend_on_the_number_of_workers() -> None:
-    frame = _frame(arflow.api.MIN_SERIES_FOR_WORKERS + 300, 48)  # five blocks: the default starts workers
+    frame = _frame(MIN_SERIES_FOR_WORKERS + 300, 48)  # five blocks: the default starts workers
     runs = [arflow.forecast(frame, keys="site", period="month", value="reading", workers=w) for w in (1, 2, None)]
     for name in ("models", "forecasts", "gates", "residual_acf", "backtests"):
         base = getattr(runs[0], name)
