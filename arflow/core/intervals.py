@@ -33,6 +33,8 @@ interval is the published model's own.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from . import autoreg, ols
@@ -58,6 +60,7 @@ def candidate_interval(
     criterion: str,
     seasonal_lag: int | None,
     differences: bool,
+    bias_correction: bool = True,
 ) -> Forecasts:
     """``fc`` with selection-aware bounds (module notes); ``mean`` unchanged.
 
@@ -89,80 +92,115 @@ def candidate_interval(
     transforms = [(Y, False)] + ([(D, True)] if differences else [])
     orders = np.arange(P + 1) if auto else np.array([P])
     C = len(transforms) * len(orders)
-    ic = np.full((G, C), np.inf)
-    fk = np.zeros((G, C, H))
-    vk = np.zeros((G, C, H))
-    is_sel = np.zeros((G, C), dtype=bool)
-    wf = w.astype(np.float64)
     L = int(lags.max()) if K else 0
+    wf = w.astype(np.float64)
+    # ---- pass 1: every candidate's OLS fit and criterion on the common sample
+    ic = np.full((G, C), np.inf)
+    phis = np.zeros((G, C, L))
+    b0s = np.zeros((G, C))
+    s2s = np.zeros((G, C))
+    ks = np.zeros((G, C))
+    ybar = np.zeros((G, C))
+    xbar = np.zeros((G, C, K))
+    c_dif = np.zeros(C, dtype=bool)
+    c_p = np.zeros(C, dtype=np.int64)
+    is_sel = np.zeros((G, C), dtype=bool)
     c = 0
     for M, dif in transforms:
-        X = np.nan_to_num(autoreg.lag_design(M, lags))
-        g = ols.gram(X, np.nan_to_num(M), wf)
-        hist = np.nan_to_num(M[:, max(T - L, 0):]) if L else np.zeros((G, 0))
-        if hist.shape[1] < L:
-            hist = np.concatenate([np.zeros((G, L - hist.shape[1])), hist], axis=1)
+        g = ols.gram(np.nan_to_num(autoreg.lag_design(M, lags)), np.nan_to_num(M), wf)
         for p in orders:
             mask = ((lags <= p)[None, :] | ((lags == s)[None, :] & has_s[:, None])) & ok[:, None]
-            valid = ok & (p <= p_cap) & (m > mask.sum(axis=1) + 1)
+            k = mask.sum(axis=1)
+            valid = ok & (p <= p_cap) & (m > k + 1)
             with np.errstate(divide="ignore", invalid="ignore"):
                 r = ols.solve(g, mask)
-                k = mask.sum(axis=1)
                 ic[:, c] = np.where(valid, autoreg.information_criteria(r.rss, m, k + 1)[criterion], np.inf)
-                s2 = r.rss / np.maximum(m - k - 1, 1)
-            phi = np.zeros((G, L))
+                s2s[:, c] = r.rss / np.maximum(m - k - 1, 1)
             if L:
-                phi[:, lags - 1] = np.where(mask, np.nan_to_num(r.beta), 0.0)
-            b0 = np.nan_to_num(r.intercept)
-            f = chain_forecast(hist, b0, phi, H)
-            psi = psi_weights(phi, H)
-            if dif:
-                f = Y[:, -1:] + np.cumsum(f, axis=1)
-                psi = np.cumsum(psi, axis=1)
-            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                v = s2[:, None] * (np.cumsum(psi * psi, axis=1) * (1.0 + k / m)[:, None]
-                                   + np.cumsum(psi, axis=1) ** 2 / m[:, None])
-            fk[:, c] = f
-            vk[:, c] = v
+                phis[:, c, lags - 1] = np.where(mask, np.nan_to_num(r.beta), 0.0)
+            b0s[:, c] = np.nan_to_num(r.intercept)
+            ks[:, c] = k
+            ybar[:, c], xbar[:, c] = g.ymean, g.xmean
+            c_dif[c], c_p[c] = dif, p
             is_sel[:, c] = (differenced == dif) & (sel_p == p)
             c += 1
     ic = np.where(np.isfinite(ic), ic, np.inf)
     # the published model stands in for its own candidate (its forecast and exact variance);
-    # where it matches none (a fixed lag set refitted after outliers) it takes the best one's place
+    # where it matches none (a lag set refitted after outliers) it takes the best one's place
     best = np.argmin(ic, axis=1)
     none = ~is_sel.any(axis=1)
     is_sel[none, best[none]] = True
-    first = np.argmax(is_sel, axis=1)
-    is_sel = np.zeros_like(is_sel)
-    is_sel[np.arange(G), first] = True
-    fk = np.where(is_sel[:, :, None], fc.mean[:, None, :], fk)
-    vk = np.where(is_sel[:, :, None], (fc.sd**2)[:, None, :], vk)
+    sel = np.argmax(is_sel, axis=1)
     with np.errstate(over="ignore", invalid="ignore"):
         rel = ic - ic.min(axis=1, keepdims=True)
         wt = np.where(np.isfinite(rel), np.exp(-0.5 * rel), 0.0)
         wt = wt / wt.sum(axis=1, keepdims=True)
-    good = ok & np.isfinite(wt).all(axis=1) & np.isfinite(fk).all(axis=(1, 2)) & np.isfinite(vk).all(axis=(1, 2))
-    # the heaviest candidates carry the interval (the rest weigh < 1e-3 together in practice)
-    top = np.argsort(-np.where(good[:, None], wt, 0.0), axis=1)[:, :TOP]
-    wt = np.take_along_axis(wt, top, axis=1)
-    wt = wt / np.where(wt.sum(axis=1, keepdims=True) > 0, wt.sum(axis=1, keepdims=True), 1.0)
-    b = np.take_along_axis(fk, top[:, :, None], axis=1) - fc.mean[:, None, :]
-    sk = np.sqrt(np.maximum(np.take_along_axis(vk, top[:, :, None], axis=1), 0.0))
-    mixed = good & (wt[:, 0] < 1.0 - 1e-9)
-    lower, upper = fc.lower.copy(), fc.upper.copy()
-    sd = fc.sd.copy()
+    good = ok & np.isfinite(wt).all(axis=1)
+    # ---- pass 2: forecasts of the heaviest candidates only (the published one always among them)
+    wsel = np.where(good[:, None], wt, 0.0)
+    wsel[np.arange(G), sel] = np.inf
+    top = np.argsort(-wsel, axis=1)[:, :TOP]
+    wt = np.take_along_axis(np.where(good[:, None], wt, 0.0), top, axis=1)
+    # where the other candidates weigh less than MIN_WEIGHT together the interval is the model's own
+    # (they could move its coverage by less than that)
+    mixed = good & (1.0 - wt[:, 0] >= MIN_WEIGHT)  # column 0 is the published model
     if not mixed.any():
         return fc
     idx = np.flatnonzero(mixed)
-    wt, b, sk = wt[idx], b[idx], np.maximum(sk[idx], 1e-300)
+    Gm, Tk = len(idx), top.shape[1]
+    tk = top[idx]
+    rows = np.repeat(idx, Tk)
+    cand = tk.ravel()
+    phi = phis[rows, cand]
+    b0 = b0s[rows, cand]
+    dif = c_dif[cand]
+    p_row = c_p[cand]
+    m_row = m[rows]
+    shifted = np.zeros(len(rows))
+    if bias_correction:
+        xb, yb = xbar[rows, cand], ybar[rows, cand]
+        for p in np.unique(p_row[p_row >= 1]):
+            r_ = np.flatnonzero((p_row == p) & ~has_s[rows])
+            if r_.size:
+                phi[r_], b0[r_] = _bias_corrected(phi[r_], yb[r_], xb[r_], lags, int(p), m_row[r_])
+    hist_l = _last(Y, L)[rows]
+    hist_d = _last(D, L)[rows]
+    hist = np.where(dif[:, None], hist_d, hist_l)
+    f = chain_forecast(hist, b0, phi, H)
+    f_ols = chain_forecast(hist, b0s[rows, cand], phis[rows, cand], H)
+    psi = psi_weights(phi, H)
+    f = np.where(dif[:, None], np.cumsum(f, axis=1), f)
+    f_ols = np.where(dif[:, None], np.cumsum(f_ols, axis=1), f_ols)
+    psi = np.where(dif[:, None], np.cumsum(psi, axis=1), psi)
+    shift = f - f_ols  # the bias correction's move of the forecast
+    f = np.where(dif[:, None], Y[rows, -1:] + f, f)
+    k = ks[rows, cand]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        v = s2s[rows, cand][:, None] * (np.cumsum(psi * psi, axis=1) * (1.0 + k / m_row)[:, None]
+                                        + np.cumsum(psi, axis=1) ** 2 / m_row[:, None])
+    f, shift, v = f.reshape(Gm, Tk, H), shift.reshape(Gm, Tk, H), v.reshape(Gm, Tk, H)
+    own = (tk == sel[idx, None])[:, :, None]
+    # the published model: its own forecast moved by its candidate's bias correction, its exact variance
+    f = np.where(own, fc.mean[idx, None, :] + shift, f)
+    v = np.where(own, (fc.sd[idx] ** 2)[:, None, :], v)
+    wt = wt[idx]
+    wt = wt / wt.sum(axis=1, keepdims=True)
+    b = f - fc.mean[idx, None, :]
+    sk = np.sqrt(np.maximum(v, 0.0))
+    fine = np.isfinite(b).all(axis=(1, 2)) & np.isfinite(sk).all(axis=(1, 2)) & (sk > 0).all(axis=(1, 2))
+    idx, wt, b, sk = idx[fine], wt[fine], b[fine], sk[fine]
+    lower, upper, sd = fc.lower.copy(), fc.upper.copy(), fc.sd.copy()
+    if not idx.size:
+        return fc
     df = np.where(np.isfinite(df_resid) & (df_resid >= 1), df_resid, np.nan)[idx]
     for ci, level in enumerate(fc.coverage):
         half = mixture_half_width(wt, b, sk, float(level))
         z = norm_ppf(0.5 + level / 2.0)
         tq = t_ppf(0.5 + level / 2.0, df)
+        # Student t on the published model's degrees of freedom, as its own interval
         half = half * (tq / z)[:, None]
-        own = (fc.upper[ci, idx] - fc.lower[ci, idx]) / 2.0
-        half = np.where(np.isfinite(half), np.maximum(half, own), own)
+        own_half = (fc.upper[ci, idx] - fc.lower[ci, idx]) / 2.0
+        half = np.where(np.isfinite(half), np.maximum(half, own_half), own_half)
         lower[ci, idx] = fc.mean[idx] - half
         upper[ci, idx] = fc.mean[idx] + half
         if ci == len(fc.coverage) - 1:
@@ -170,32 +208,130 @@ def candidate_interval(
     return Forecasts(fc.mean, sd, fc.coverage, lower, upper)
 
 
+def _last(M: np.ndarray, L: int) -> np.ndarray:
+    """The last ``L`` columns of ``M`` (G, T), NaN as 0, left-padded with zeros."""
+    G, T = M.shape
+    out = np.zeros((G, L))
+    if L:
+        w = min(L, T)
+        out[:, L - w:] = np.nan_to_num(M[:, T - w:])
+    return out
+
+
 #: candidates that carry a mixed interval (by weight)
 TOP = 4
+#: total weight of the other candidates below which the model's own interval stands
+MIN_WEIGHT = 1e-3
+#: probability tolerance of the mixture quantile
+TOLERANCE = 1e-7
 
 
-def mixture_half_width(w: np.ndarray, b: np.ndarray, s: np.ndarray, level: float, iterations: int = 30) -> np.ndarray:
+@functools.lru_cache(maxsize=None)
+def bias_map(p: int) -> tuple[np.ndarray, np.ndarray]:
+    """``(c, M)`` of the first-order bias of OLS AR(p) estimates with an intercept: ``E phi_hat - phi = -(c + M phi) / T``.
+
+    From Pope's (1990, J. Time Series Analysis 11, 249-258) formula for the
+    companion form, ``B = G [(I - A')^-1 + A'(I - A'^2)^-1 + sum_l l (I - l A')^-1] Gamma_0^-1``
+    (A the companion matrix, l its eigenvalues, G the innovation covariance,
+    Gamma_0 the state covariance), whose first row is linear in phi (Shaman &
+    Stine 1988, JASA 83, 842-848): evaluated at phi = 0 and at the unit
+    vectors. For p = 1 it is Kendall's (1954) ``(1 + 3 phi) / T``.
+    """
+    def first_row(phi: np.ndarray) -> np.ndarray:
+        A = np.zeros((p, p))
+        A[0] = phi
+        A[np.arange(1, p), np.arange(p - 1)] = 1.0
+        # autocovariances gamma_0..gamma_p (unit innovation variance) from the Yule-Walker equations
+        YW = np.eye(p + 1)
+        for k in range(p + 1):
+            for j in range(1, p + 1):
+                YW[k, abs(k - j)] -= phi[j - 1]
+        gam = np.linalg.solve(YW, np.eye(p + 1)[0])
+        G0 = gam[np.abs(np.subtract.outer(np.arange(p), np.arange(p)))]
+        I = np.eye(p)
+        At = A.T
+        S = sum(lam * np.linalg.inv(I - lam * At) for lam in np.linalg.eigvals(A))
+        inner = np.linalg.inv(I - At) + At @ np.linalg.inv(I - At @ At) + S
+        return np.real(inner[0] @ np.linalg.inv(G0))
+
+    eps = 0.1
+    c = first_row(np.zeros(p))
+    M = np.column_stack([first_row(eps * e) - c for e in np.eye(p)]) / eps
+    return c, M
+
+
+def _bias_corrected(phi: np.ndarray, ybar: np.ndarray, xbar: np.ndarray, lags: np.ndarray, p: int, m: np.ndarray):
+    """Bias-corrected lags 1..p of ``phi`` (R, L) and the intercept that keeps the sample means.
+
+    ``phi_bc = phi + (c + M phi) / m`` (:func:`bias_map`); where that is not
+    stationary the correction is halved until it is (Kilian 1998, REStat 80,
+    218-230, shrinks it the same way), and dropped after eight halvings. The
+    intercept follows the OLS identity ``b0 = ybar - sum_j phi_j xbar_j`` with
+    the response's and lag columns' sample means (``ybar`` (R,), ``xbar`` (R, K)).
+    """
+    c, M = bias_map(p)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        delta = (c[None, :] + phi[:, :p] @ M.T) / m[:, None]
+    delta = np.where(np.isfinite(delta), delta, 0.0)
+    for it in range(9):
+        new = phi[:, :p] + delta
+        risky = np.flatnonzero(np.abs(new).sum(axis=1) >= MAX_MODULUS)  # sum |phi| < 1: stationary
+        if not risky.size:
+            break
+        bad = risky[autoreg.max_root_modulus(new[risky], np.full(risky.size, p)) >= MAX_MODULUS]
+        if not bad.size:
+            break
+        delta[bad] *= 0.5 if it < 8 else 0.0
+    out = phi.copy()
+    out[:, :p] += delta
+    b0 = ybar - np.einsum("rk,rk->r", out[:, lags - 1], xbar)
+    return out, np.nan_to_num(b0)
+
+
+#: a bias correction may not push the largest root beyond this modulus
+MAX_MODULUS = 0.999
+
+
+def mixture_half_width(w: np.ndarray, b: np.ndarray, s: np.ndarray, level: float, iterations: int = 60) -> np.ndarray:
     """Half-width d (G, H) with ``sum_k w_k P(|b_k + s_k Z| <= d) = level``, Z standard normal.
 
     ``w`` (G, C) weights summing to one, ``b``/``s`` (G, C, H) offsets and scales.
-    Safeguarded Newton on the increasing mixture probability (bisection when a
-    step leaves the bracket).
+    Starts from the Cornish-Fisher quantile of the mixture's second and fourth
+    moments (Cornish & Fisher 1937) and takes a few safeguarded Newton steps on
+    the increasing mixture probability (a bisection step when a Newton step
+    leaves the bracket); the result is checked against a root finder in the tests.
     """
     wk = w[:, :, None]
     lo = np.zeros((b.shape[0], b.shape[2]))
     q = norm_ppf(1.0 - (1.0 - level) / 4.0)
     hi = np.max(np.abs(b) + q * s, axis=1)
-    d = np.sqrt(np.einsum("gc,gch->gh", w, s * s + b * b)) * norm_ppf(0.5 + level / 2.0)
-    d = np.clip(d, lo, hi)
+    b2, s2 = b * b, s * s
+    m2 = np.einsum("gc,gch->gh", w, s2 + b2)
+    m4 = np.einsum("gc,gch->gh", w, b2 * b2 + 6.0 * b2 * s2 + 3.0 * s2 * s2)
+    z = float(norm_ppf(0.5 + level / 2.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        kurt = np.clip(m4 / (m2 * m2) - 3.0, 0.0, 6.0)
+    d = np.clip(np.sqrt(m2) * (z + (z**3 - 3.0 * z) * kurt / 24.0), lo, hi)
+    # work on the flattened (series, step) cells; converged cells leave the working set
+    G, C, H = b.shape
+    bf = b.transpose(0, 2, 1).reshape(G * H, C)
+    sf = s.transpose(0, 2, 1).reshape(G * H, C)
+    wf = np.repeat(w, H, axis=0)
+    d, lo, hi = d.ravel(), lo.ravel(), hi.ravel()
+    act = np.arange(G * H)
     for _ in range(iterations):
-        up, dn = (d[:, None, :] - b) / s, (-d[:, None, :] - b) / s
-        F = (wk * (norm_cdf(up) - norm_cdf(dn))).sum(axis=1) - level
-        dF = (wk * (np.exp(-0.5 * up * up) + np.exp(-0.5 * dn * dn)) / s).sum(axis=1) / np.sqrt(2 * np.pi)
-        lo = np.where(F < 0, d, lo)
-        hi = np.where(F >= 0, d, hi)
+        bb, ss, ww, dd = bf[act], sf[act], wf[act], d[act]
+        up, dn = (dd[:, None] - bb) / ss, (-dd[:, None] - bb) / ss
+        F = (ww * (norm_cdf(up) - norm_cdf(dn))).sum(axis=1) - level
+        dF = (ww * (np.exp(-0.5 * up * up) + np.exp(-0.5 * dn * dn)) / ss).sum(axis=1) / np.sqrt(2 * np.pi)
+        l, h = np.where(F < 0, dd, lo[act]), np.where(F >= 0, dd, hi[act])
+        lo[act], hi[act] = l, h
         with np.errstate(divide="ignore", invalid="ignore"):
-            step = d - F / dF
-        d = np.where((step > lo) & (step < hi), step, 0.5 * (lo + hi))
-        if np.all(np.abs(F) < 1e-10):
+            step = dd - F / dF
+        done = np.abs(F) <= TOLERANCE
+        d[act] = np.where(done, dd, np.where((step >= l) & (step <= h), step, 0.5 * (l + h)))
+        keep = ~done & (h - l > 1e-12 * h)
+        act = act[keep]
+        if not act.size:
             break
-    return d
+    return d.reshape(G, H)
