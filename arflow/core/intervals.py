@@ -33,6 +33,7 @@ interval is the published model's own.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 
 import numpy as np
@@ -94,33 +95,31 @@ def candidate_interval(
     C = len(transforms) * len(orders)
     L = int(lags.max()) if K else 0
     wf = w.astype(np.float64)
-    # ---- pass 1: every candidate's OLS fit and criterion on the common sample
+    # ---- pass 1: every candidate's RSS and criterion on the common sample (one nested sweep per
+    # transform: orders 1..P, after the seasonal lag where the published model has it)
     ic = np.full((G, C), np.inf)
-    phis = np.zeros((G, C, L))
-    b0s = np.zeros((G, C))
-    s2s = np.zeros((G, C))
+    rss = np.zeros((G, C))
     ks = np.zeros((G, C))
-    ybar = np.zeros((G, C))
-    xbar = np.zeros((G, C, K))
     c_dif = np.zeros(C, dtype=bool)
     c_p = np.zeros(C, dtype=np.int64)
     is_sel = np.zeros((G, C), dtype=bool)
+    grams = []
+    base = np.flatnonzero(lags <= P)
+    hs = np.flatnonzero(has_s)
     c = 0
     for M, dif in transforms:
         g = ols.gram(np.nan_to_num(autoreg.lag_design(M, lags)), np.nan_to_num(M), wf)
+        grams.append(g)
+        nested = np.concatenate([g.yty[:, None], ols.nested_rss(g, base)], axis=1)  # orders 0..P
+        if hs.size:
+            scol = int(np.flatnonzero(lags == s)[0])
+            nested[hs] = ols.nested_rss(_take_gram(g, hs), np.concatenate([[scol], base]))
         for p in orders:
-            mask = ((lags <= p)[None, :] | ((lags == s)[None, :] & has_s[:, None])) & ok[:, None]
-            k = mask.sum(axis=1)
+            k = p + has_s
             valid = ok & (p <= p_cap) & (m > k + 1)
             with np.errstate(divide="ignore", invalid="ignore"):
-                r = ols.solve(g, mask)
-                ic[:, c] = np.where(valid, autoreg.information_criteria(r.rss, m, k + 1)[criterion], np.inf)
-                s2s[:, c] = r.rss / np.maximum(m - k - 1, 1)
-            if L:
-                phis[:, c, lags - 1] = np.where(mask, np.nan_to_num(r.beta), 0.0)
-            b0s[:, c] = np.nan_to_num(r.intercept)
-            ks[:, c] = k
-            ybar[:, c], xbar[:, c] = g.ymean, g.xmean
+                ic[:, c] = np.where(valid, autoreg.information_criteria(nested[:, p], m, k + 1)[criterion], np.inf)
+            rss[:, c], ks[:, c] = nested[:, p], k
             c_dif[c], c_p[c] = dif, p
             is_sel[:, c] = (differenced == dif) & (sel_p == p)
             c += 1
@@ -151,23 +150,37 @@ def candidate_interval(
     tk = top[idx]
     rows = np.repeat(idx, Tk)
     cand = tk.ravel()
-    phi = phis[rows, cand]
-    b0 = b0s[rows, cand]
     dif = c_dif[cand]
     p_row = c_p[cand]
     m_row = m[rows]
-    shifted = np.zeros(len(rows))
-    if bias_correction:
-        xb, yb = xbar[rows, cand], ybar[rows, cand]
-        for p in np.unique(p_row[p_row >= 1]):
-            r_ = np.flatnonzero((p_row == p) & ~has_s[rows])
-            if r_.size:
-                phi[r_], b0[r_] = _bias_corrected(phi[r_], yb[r_], xb[r_], lags, int(p), m_row[r_])
+    # coefficients of those candidates only: one solve per transform on their rows' Gram matrices
+    phi = np.zeros((len(rows), L))
+    phi_ols = np.zeros((len(rows), L))
+    b0 = np.zeros(len(rows))
+    b0_ols = np.zeros(len(rows))
+    for t, g in enumerate(grams):
+        r_ = np.flatnonzero(dif == (t == 1))
+        if not r_.size:
+            continue
+        gr = _take_gram(g, rows[r_])
+        mask = (lags[None, :] <= p_row[r_, None]) | ((lags == s)[None, :] & has_s[rows[r_], None])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sol = ols.solve(gr, mask)
+        if L:
+            phi[r_[:, None], (lags - 1)[None, :]] = np.where(mask, np.nan_to_num(sol.beta), 0.0)
+        b0[r_] = np.nan_to_num(sol.intercept)
+        phi_ols[r_], b0_ols[r_] = phi[r_], b0[r_]
+        if bias_correction:
+            for p in np.unique(p_row[r_]):
+                q = r_[(p_row[r_] == p) & ~has_s[rows[r_]]]
+                if p >= 1 and q.size:
+                    sub = np.searchsorted(r_, q)
+                    phi[q], b0[q] = _bias_corrected(phi[q], gr.ymean[sub], gr.xmean[sub], lags, int(p), m_row[q])
     hist_l = _last(Y, L)[rows]
     hist_d = _last(D, L)[rows]
     hist = np.where(dif[:, None], hist_d, hist_l)
     f = chain_forecast(hist, b0, phi, H)
-    f_ols = chain_forecast(hist, b0s[rows, cand], phis[rows, cand], H)
+    f_ols = chain_forecast(hist, b0_ols, phi_ols, H)
     psi = psi_weights(phi, H)
     f = np.where(dif[:, None], np.cumsum(f, axis=1), f)
     f_ols = np.where(dif[:, None], np.cumsum(f_ols, axis=1), f_ols)
@@ -176,7 +189,8 @@ def candidate_interval(
     f = np.where(dif[:, None], Y[rows, -1:] + f, f)
     k = ks[rows, cand]
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        v = s2s[rows, cand][:, None] * (np.cumsum(psi * psi, axis=1) * (1.0 + k / m_row)[:, None]
+        s2 = rss[rows, cand] / np.maximum(m_row - ks[rows, cand] - 1, 1)
+        v = s2[:, None] * (np.cumsum(psi * psi, axis=1) * (1.0 + k / m_row)[:, None]
                                         + np.cumsum(psi, axis=1) ** 2 / m_row[:, None])
     f, shift, v = f.reshape(Gm, Tk, H), shift.reshape(Gm, Tk, H), v.reshape(Gm, Tk, H)
     own = (tk == sel[idx, None])[:, :, None]
@@ -206,6 +220,11 @@ def candidate_interval(
         if ci == len(fc.coverage) - 1:
             sd[idx] = half / tq[:, None]
     return Forecasts(fc.mean, sd, fc.coverage, lower, upper)
+
+
+def _take_gram(g: ols.Gram, rows: np.ndarray) -> ols.Gram:
+    """The Gram matrices of some rows (every field leads with the series axis)."""
+    return ols.Gram(*(getattr(g, f.name)[rows] for f in dataclasses.fields(g)))
 
 
 def _last(M: np.ndarray, L: int) -> np.ndarray:
