@@ -21,6 +21,8 @@ from arflow.sample.simulate import random_walks, simulate_ar, to_panel
 from arflow.settings import BacktestSettings, ForecastSettings, ModelSettings, Settings
 
 NO_BT = BacktestSettings(enabled=False)
+#: 2 percentage points (and float rounding: 1,560 of 2,000 is 78.0%)
+BAND = 0.02 + 1e-9
 DEFAULTS = Settings(forecast=ForecastSettings(horizon=12), backtest=NO_BT)
 
 
@@ -157,7 +159,7 @@ def test_default_coverage_is_within_two_points(label, gen, n, freq, seed):
     s = Settings(frequency=freq, forecast=ForecastSettings(horizon=12), backtest=NO_BT)
     c = coverage(gen(2000, n + 12, seed), n, s)
     for (level, h), v in c.items():
-        assert abs(v - level) <= 0.02, (label, level, h, v)
+        assert abs(v - level) <= BAND, (label, level, h, v)
 
 
 @pytest.mark.slow
@@ -173,5 +175,5 @@ def test_random_walk_coverage_short_series():
     # what is measured (README, "Measured rates").
     for n, seed, floor in ((40, 607, (0.73, 0.885)), (60, 611, (0.765, 0.92))):
         c = coverage(random_walks(2000, n + 12, seed), n, DEFAULTS)
-        assert abs(c[(0.8, 1)] - 0.8) <= 0.02 and abs(c[(0.95, 1)] - 0.95) <= 0.02, (n, c)
+        assert abs(c[(0.8, 1)] - 0.8) <= BAND and abs(c[(0.95, 1)] - 0.95) <= BAND, (n, c)
         assert floor[0] <= c[(0.8, 12)] <= 0.82 and floor[1] <= c[(0.95, 12)] <= 0.97, (n, c)
