@@ -107,8 +107,7 @@ def candidate_interval(
     base = np.flatnonzero(lags <= P)
     hs = np.flatnonzero(has_s)
     c = 0
-    for M, dif in transforms:
-        g = ols.gram(np.nan_to_num(autoreg.lag_design(M, lags)), np.nan_to_num(M), wf)
+    for (M, dif), g in zip(transforms, _grams(Y, lags, wf, differences)):
         grams.append(g)
         nested = np.concatenate([g.yty[:, None], ols.nested_rss(g, base)], axis=1)  # orders 0..P
         if hs.size:
@@ -222,6 +221,36 @@ def candidate_interval(
     return Forecasts(fc.mean, sd, fc.coverage, lower, upper)
 
 
+def _grams(Y: np.ndarray, lags: np.ndarray, w: np.ndarray, differences: bool) -> list[ols.Gram]:
+    """Gram matrices of the level regression (``y_t`` on ``y_(t-j)``, j in ``lags``) and, with
+    ``differences``, of the difference regression (``dy_t`` on ``dy_(t-j)``) over the rows weighted by ``w``.
+
+    One raw-sum matrix of ``y_t`` and its lags j and j + 1 (each series shifted by its mean, as
+    :func:`arflow.core.autoreg.fit_ar` forms them) gives both: the difference columns are
+    linear combinations ``y_(t-j) - y_(t-j-1)`` of the level columns. Means in original units.
+    """
+    need = np.unique(np.concatenate([lags, lags + 1])) if differences else np.asarray(lags)
+    ZT, shift = autoreg.shifted_lag_stack(Y, need)
+    ZTw = ZT * w[:, None, :]
+    S = np.matmul(ZTw, np.swapaxes(ZT, 1, 2))
+    tot = ZTw.sum(axis=2)
+    n = w.sum(axis=1)
+    R, K = len(need) + 1, len(lags)
+    row = {int(j): i for i, j in enumerate(need)}
+    A = np.zeros((K + 1, R))
+    A[np.arange(K), [row[int(j)] for j in lags]] = 1.0
+    A[K, R - 1] = 1.0
+    out = []
+    g = ols.gram_from_sums(A @ S @ A.T, tot @ A.T, n)
+    out.append(dataclasses.replace(g, xmean=g.xmean + shift[:, None], ymean=g.ymean + shift))
+    if differences:
+        Dm = A.copy()
+        Dm[np.arange(K), [row[int(j) + 1] for j in lags]] = -1.0
+        Dm[K, row[1]] = -1.0
+        out.append(ols.gram_from_sums(Dm @ S @ Dm.T, tot @ Dm.T, n))
+    return out
+
+
 def _take_gram(g: ols.Gram, rows: np.ndarray) -> ols.Gram:
     """The Gram matrices of some rows (every field leads with the series axis)."""
     return ols.Gram(*(getattr(g, f.name)[rows] for f in dataclasses.fields(g)))
@@ -242,7 +271,7 @@ TOP = 4
 #: total weight of the other candidates below which the model's own interval stands
 MIN_WEIGHT = 1e-3
 #: probability tolerance of the mixture quantile
-TOLERANCE = 1e-7
+TOLERANCE = 1e-6
 
 
 @functools.lru_cache(maxsize=None)
