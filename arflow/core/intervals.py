@@ -1,34 +1,37 @@
-"""Selection-aware prediction intervals: the forecast-error variance over the candidate models.
+"""Selection-aware prediction intervals: the forecast distribution over the candidate models.
 
 The published model was chosen from candidates (orders 0..``max_order`` by the
 criterion; levels or first differences by the unit-root decision). An interval
 computed as if that choice were known is too narrow when the data cannot tell
-the candidates apart: at 40-60 points the one-step 80% interval covers about
-78% and the 12-step interval of persistent series 71-76%.
+the candidates apart: at 40-60 points the one-step 80% interval covered about
+78% and the 12-step interval of persistent series 71-77%.
 
-Method (an unconditional variance over the candidate set; Buckland, Burnham &
-Augustin 1997, Biometrics 53, 603-618; Burnham & Anderson 2002, Model
-Selection and Multimodel Inference, section 4.3.2 -- section number from
-memory). Every candidate ``k`` (levels AR(p), and with the difference policy
-first differences AR(p), p = 0..cap, the selected seasonal lag kept as
-selected) is fitted by OLS on one common sample. Its weight is
-``w_k ~ exp(-IC_k / 2)`` with the job's criterion (the BIC weights approximate
-posterior model probabilities, Kass & Raftery 1995, JASA 90, 773-795; for
-AIC they are Akaike weights). Levels and differences are weighed on the same
-response: ``y_t - yhat_t = dy_t - dyhat_t``, so their likelihoods compare
-directly (the difference model is the level AR(p + 1) whose coefficients sum
-to one). The interval is centred on the published forecast ``f`` with variance
-
-    V(h) = sum_k w_k [ v_k(h) + (f_k(h) - f(h))^2 ]
-
-where ``f_k`` is candidate k's forecast and ``v_k`` its forecast-error variance:
-the published model's own (with the parameter-uncertainty term) for the
-candidate it is, and for the others ``s_k^2 [sum_{j<h} psi_j^2 (1 + p/m) +
-(sum_{j<h} psi_j)^2 / m]`` (the plug-in variance, the slopes' average one-step
-term ``p/m`` and the intercept's term, which for differences is the drift's
-``h^2 s^2 / m``; m rows). Quantiles are Student t on the published model's
-residual degrees of freedom. When one candidate dominates (clear data) the
-interval is the published model's own.
+Method. Every candidate ``k`` (levels AR(p) and, with the difference policy,
+first differences AR(p), p = 0..the series' cap, the seasonal lag kept as
+selected) is fitted by OLS on one common sample (one raw-sum matrix gives both
+transforms; one nested sweep gives every order's RSS). Its weight is
+``w_k ~ exp(-IC_k / 2)`` with the job's criterion: BIC weights approximate
+posterior model probabilities (Kass & Raftery 1995, JASA 90, 773-795), with
+AIC they are Akaike weights; Buckland, Burnham & Augustin (1997, Biometrics 53,
+603-618) and Burnham & Anderson (2002, Model Selection and Multimodel
+Inference) use them for intervals that carry model-selection uncertainty.
+Levels and differences are weighed on the same response (``y_t - yhat_t =
+dy_t - dyhat_t``; the difference model is the level AR(p + 1) whose
+coefficients sum to one). The ``TOP`` heaviest candidates (the published one
+always among them) form a normal mixture centred on their forecasts ``f_k``
+with standard deviations ``s_k``; the interval is centred on the published
+forecast ``f`` with the half-width ``d`` solving ``sum_k w_k P(|f_k + s_k Z -
+f| <= d) = c``, scaled to Student t on the published model's residual degrees
+of freedom, and never narrower than the model's own. ``s_k`` is the published
+model's own (with the parameter term) for its candidate, and for the others
+``s^2 [sum_{j<h} psi_j^2 (1 + p/m) + (sum_{j<h} psi_j)^2 / m]`` (plug-in
+variance, the slopes' average one-step term, the intercept's term, which for
+differences is the drift's ``h^2 s^2 / m``; m rows). The candidates'
+coefficients are first corrected for the small-sample bias of OLS AR
+estimates (:func:`bias_map`; Kilian's stationarity shrinkage), and the
+published model's component moves by its candidate's correction; models with
+a seasonal lag are not corrected. Where the other candidates weigh less than
+``MIN_WEIGHT`` together the interval is the published model's own.
 """
 
 from __future__ import annotations
