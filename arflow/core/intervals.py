@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import warnings
 
 import numpy as np
 
@@ -85,6 +86,12 @@ def candidate_interval(
         has_s = fit.lag_mask[:, list(fit.lags).index(s)] if s in fit.lags else has_s
     sel_p = (fit.lag_mask & (fit.lags <= P)[None, :]).sum(axis=1)
     ok = fit.fitted & (p_cap >= 0) & np.isfinite(fc.sd).all(axis=1) & (fc.sd.shape[1] > 0)
+    # a degenerate model (an exact fit: zero residuals) keeps its own interval, so that the
+    # forecast_interval gate still holds it back (degenerate_interval); the mixture must not hide it
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows (unfitted series)
+        scale = np.nanstd(np.where(np.isfinite(Y), Y, np.nan), axis=1) if T else np.zeros(G)
+        ok &= (fc.sd.min(axis=1, initial=np.inf) > DEGENERATE * scale) & np.isfinite(scale)
     if not ok.any() or H == 0:
         return fc
     # one common sample for every candidate: the largest lag, plus one row for the differences
@@ -273,6 +280,8 @@ def _last(M: np.ndarray, L: int) -> np.ndarray:
 TOP = 4
 #: total weight of the other candidates below which the model's own interval stands
 MIN_WEIGHT = 1e-3
+#: own interval standard deviation below this share of the series' own: degenerate, left alone
+DEGENERATE = 1e-9
 #: probability tolerance of the mixture quantile
 TOLERANCE = 1e-6
 
