@@ -131,6 +131,11 @@ class ForecastSettings:
     1981) and uses Student-t quantiles with the residual degrees of freedom;
     ``False`` gives the classic plug-in psi-weight intervals (the coefficients
     treated as known, Gaussian quantiles; what statsmodels' ``AutoReg`` reports).
+    ``selection_uncertainty``: ``True`` (default; only with
+    ``parameter_uncertainty``) widens them further by the uncertainty of the
+    model choice (order, levels or differences): the forecast distribution
+    over the candidate models weighted by the criterion
+    (:mod:`arflow.core.intervals`); ``False`` keeps the selected model's own.
 
     >>> ForecastSettings(horizon=6, coverage=(0.8,)).horizon
     6
@@ -139,10 +144,13 @@ class ForecastSettings:
     horizon: int = 12
     coverage: tuple[float, ...] = (0.8, 0.95)
     parameter_uncertainty: bool = True
+    selection_uncertainty: bool = True
 
     def __post_init__(self) -> None:
         if not isinstance(self.parameter_uncertainty, bool):
             _fail("forecast.parameter_uncertainty", self.parameter_uncertainty, "true or false")
+        if not isinstance(self.selection_uncertainty, bool):
+            _fail("forecast.selection_uncertainty", self.selection_uncertainty, "true or false")
         if not (_is_int(self.horizon) and 1 <= self.horizon <= 1000):
             _fail("forecast.horizon", self.horizon, "an integer from 1 to 1000")
         cov = tuple(self.coverage) if isinstance(self.coverage, (list, tuple)) else None
