@@ -399,6 +399,8 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
         *[pl.Series(c, [], dtype=t) for c, t in gate_schema.items()]
     )
 
+    models = models.with_columns(*_status_columns(out, settings, G))
+
     # residual autocorrelations of fitted series
     fitted = np.flatnonzero(fit.fitted)
     Kacf = res.acf.acf.shape[1]
@@ -429,6 +431,53 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
     if res.backtest is not None:
         out["backtests"] = backtest_frame(keys, res)
     return out
+
+
+#: one failed gate of a series: what ``series_status.failed_gates`` holds
+FAILED_GATE = pl.Struct({"gate": pl.String, "statistic": pl.Float64, "p_value": pl.Float64, "threshold": pl.Float64})
+
+
+def _status_columns(out: Any, settings: Any, G: int) -> list[pl.Series]:
+    """Per series: every failed gate row (``failed_gates``) and the warning checks that fired (``warnings``).
+
+    A warning is a failed row of a check that did not hold the series back:
+    ``order_candidates`` always, ``worse_than_naive`` / ``interval_undercoverage``
+    with their backtest setting ``"warn"``.
+    """
+    bt = getattr(settings, "backtest", None)
+    warn = {"order_candidates"}
+    if bt is not None and getattr(bt, "naive_gate", "off") == "warn":
+        warn.add("worse_than_naive")
+    if bt is not None and getattr(bt, "coverage_gate", "off") == "warn":
+        warn.add("interval_undercoverage")
+    idx, name, stat, pval, thr, is_warn = [], [], [], [], [], []
+    for gate, row in out.gates.items():
+        where = np.flatnonzero(row.applies & ~row.passed)
+        if not len(where):
+            continue
+        idx.append(where)
+        name.append(np.full(len(where), gate, dtype=object))
+        stat.append(row.statistic[where])
+        pval.append(row.pvalue[where])
+        thr.append(row.threshold[where])
+        is_warn.append(np.full(len(where), gate in warn))
+    failed: list[list[dict] | None] = [[] for _ in range(G)]
+    warnings: list[list[str]] = [[] for _ in range(G)]
+    if idx:
+        cat = np.concatenate
+        for i, g, st, pv, th, w in zip(cat(idx).tolist(), cat(name).tolist(), cat(stat).tolist(), cat(pval).tolist(),
+                                       cat(thr).tolist(), cat(is_warn).tolist()):
+            entry = {"gate": g, "statistic": _finite_or_none(st), "p_value": _finite_or_none(pv),
+                     "threshold": _finite_or_none(th)}
+            failed[i].append(entry)
+            if w:
+                warnings[i].append(g)
+    return [pl.Series("failed_gates", failed, dtype=pl.List(FAILED_GATE)),
+            pl.Series("warnings", warnings, dtype=pl.List(pl.String))]
+
+
+def _finite_or_none(v: float) -> float | None:
+    return v if np.isfinite(v) else None
 
 
 def _outlier_columns(res: CoreResult, codec) -> list[pl.Series]:

@@ -57,6 +57,8 @@ class JobOutcome:
     phase_seconds: dict[str, float] = field(default_factory=dict)
     #: the run was over the alarm level and [publish] hold_on_alarm kept the published view as it was
     held: bool = False
+    #: warning checks that failed without holding a series back -> number of series
+    warning_counts: dict[str, int] = field(default_factory=dict)
 
     @property
     def alarm(self) -> bool:
@@ -325,6 +327,7 @@ def run_job(
         max_quarantine_share=settings.gates.max_quarantine_share, chunks=summary.chunks,
         seconds=time.perf_counter() - clock, target=_target_text(spec), attempt=attempt, notes=tuple(notes),
         phase_seconds={k: round(v, 3) for k, v in phases.items()}, held=held,
+        warning_counts=summary.warning_counts,
     )
     emit({"event": "finish", **outcome_dict(outcome)})
     return outcome
@@ -337,7 +340,7 @@ def outcome_dict(outcome: JobOutcome) -> dict[str, Any]:
         "attempt": outcome.attempt, "rows_read": outcome.rows_read, "series_total": outcome.series_total,
         "series_published": outcome.series_published, "series_quarantined": outcome.series_quarantined,
         "quarantine_share": round(outcome.quarantine_share, 6), "alarm": outcome.alarm, "held": outcome.held,
-        "reason_counts": outcome.reason_counts, "chunks": outcome.chunks, "seconds": round(outcome.seconds, 3),
+        "reason_counts": outcome.reason_counts, "warning_counts": outcome.warning_counts, "chunks": outcome.chunks, "seconds": round(outcome.seconds, 3),
         "target": outcome.target, "notes": list(outcome.notes), "phase_seconds": outcome.phase_seconds,
     }
 
@@ -350,6 +353,7 @@ class ChunkSummary:
     series_published: int = 0
     reason_counts: dict[str, int] = field(default_factory=dict)
     chunks: int = 0
+    warning_counts: dict[str, int] = field(default_factory=dict)
 
     @property
     def series_quarantined(self) -> int:
@@ -360,8 +364,12 @@ class ChunkSummary:
         for k, v in other.reason_counts.items():
             reasons[k] = reasons.get(k, 0) + v
         reasons = dict(sorted(reasons.items(), key=lambda kv: (-kv[1], kv[0])))
+        warnings = dict(self.warning_counts)
+        for k, v in other.warning_counts.items():
+            warnings[k] = warnings.get(k, 0) + v
+        warnings = dict(sorted(warnings.items(), key=lambda kv: (-kv[1], kv[0])))
         return ChunkSummary(self.series_total + other.series_total, self.series_published + other.series_published,
-                            reasons, self.chunks + other.chunks)
+                            reasons, self.chunks + other.chunks, warnings)
 
 
 #: frames of a run that are staged per chunk (``actuals`` feeds the accuracy table)
@@ -383,7 +391,7 @@ def _stage_run(run: api.ForecastRun, stage_dir: str | Path, chunk_no: int, actua
     frames = {t: getattr(run, t) for t in _RUN_FRAMES}
     frames["actuals"] = actuals
     RunStage.write_to(stage_dir, chunk_no, frames)
-    return ChunkSummary(run.series_total, run.series_published, run.reason_counts(), 1)
+    return ChunkSummary(run.series_total, run.series_published, run.reason_counts(), 1, run.warning_counts())
 
 
 def _stage_chunk(

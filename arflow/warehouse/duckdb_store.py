@@ -38,9 +38,10 @@ DDL_FILES = ("runs", "vintages", "series_status", "models", "gates", "residual_a
              "job_policy", "vintage_removals")
 VIEW_FILE = "published_forecasts"
 ACCURACY_VIEW = "accuracy_by_horizon"
+STATUS_VIEW = "latest_series_status"
 #: per coverage level: table -> column prefixes added with ALTER TABLE
 COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("coverage",), "accuracy": ("covered",)}
-_STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
+_STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure", "reasons", "failed_gates", "warnings")
 
 
 def run_id_for(job: str, as_of: Any) -> str:
@@ -229,6 +230,7 @@ def _expected_cached(keys: tuple[str, ...], key_types: tuple[str, ...], period_t
                 con.execute(render_sql(name, probe))
             con.execute(render_sql(VIEW_FILE, probe))
             con.execute(render_sql(ACCURACY_VIEW, probe))
+            con.execute(render_sql(STATUS_VIEW, probe))
             rows = con.execute(
                 "SELECT table_name, column_name, data_type FROM information_schema.columns "
                 "WHERE table_schema = ? ORDER BY table_name, ordinal_position",
@@ -484,6 +486,7 @@ class DuckDBStore:
             fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
             con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
+            con.execute(render_sql(STATUS_VIEW, self.layout))
             hold_signals()  # from here a stop signal waits: a committed run exits with its real status
             con.execute("COMMIT")
             fault_point("commit")
@@ -615,9 +618,11 @@ class DuckDBStore:
         if source is None:
             return
         keys = ", ".join(quote(k) for k in self.layout.keys)
+        have = set(tables.columns("models"))
+        extra = "".join(f", {c}" for c in ("reasons", "failed_gates", "warnings") if c in have)
         con.execute(
             f"INSERT INTO {self._schema}.series_status BY NAME "
-            f"SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision, ? AS on_failure FROM {source}",
+            f"SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision{extra}, ? AS on_failure FROM {source}",
             [record.run_id, record.job, record.as_of, record.on_failure],
         )
 
