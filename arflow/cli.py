@@ -253,8 +253,12 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
     directory = args.dir.expanduser().resolve()
     outcome = run_demo(directory, on_event=reporter)
     code = _finish(outcome, reporter)
+    from .cli_explain import demo_report
+
+    report_line = demo_report(directory, reporter)
     if not reporter.json:
         reporter.out.write(
+            report_line +
             f"  {'job file':<26}{directory / 'demo_job.toml'}\n"
             f"  {'try next':<26}arflow run {directory / 'demo_job.toml'} --as-of 2024-12 --dry-run\n"
         )

@@ -73,3 +73,26 @@ def _cmd_report(args: argparse.Namespace, reporter: Any) -> int:
                            f"open it in a browser: file://{summary.path.resolve()}\n"
                            + "".join(f"  note: {n}\n" for n in summary.notes))
     return EXIT_OK
+
+
+#: where ``arflow demo`` writes the demo's report (in the demo folder)
+DEMO_REPORT = "vellmar_report.html"
+
+
+def demo_report(directory: Path, reporter: Any) -> str:
+    """Write the demo run's report beside its database; a summary line (a note naming the extra without plotly)."""
+    from .errors import SettingsError
+    from .job_file import load_job
+    from .report import write_report
+
+    path = directory / DEMO_REPORT
+    try:
+        summary = write_report(load_job(directory / "demo_job.toml"), path)
+    except SettingsError as exc:  # the report extra is not installed
+        if reporter.json:
+            reporter.emit({"event": "note", "message": f"no report: {exc}"})
+        return f"  {'report':<26}not written: {exc}\n"
+    if reporter.json:
+        reporter.emit({"event": "report", "path": str(summary.path), "run_id": summary.run_id,
+                       "series": summary.series, "charted_series": summary.charted_series, "charts": summary.charts})
+    return f"  {'report':<26}{summary.path} (open it in a browser: file://{summary.path})\n"

@@ -191,6 +191,8 @@ td.num{text-align:right}.quarantined{color:#a23b26;font-weight:bold}.published{c
 #filters{margin:8px 0;display:flex;gap:10px;align-items:center;font-size:13px}
 #filters input{padding:4px 6px;width:280px}
 .settings td:first-child{color:#5d6b78}
+.scroll{max-height:440px;overflow:auto;display:inline-block;border:1px solid #dedede}
+thead th{position:sticky;top:0}
 """
 
 _TABLE_JS = """
@@ -268,7 +270,7 @@ def write_report(spec: Any, output: Path | None, as_of: str | None = None,
     freq = spec.settings.frequency
     unit = _UNIT.get(freq, "periods")
     value_title = spec.source.value
-    period_title = f"{spec.source.period} ({freq})"
+    period_title = spec.source.period if spec.source.period == freq else f"{spec.source.period} ({freq})"
     figures: list[str] = []
 
     def add(fig: Any) -> str:
@@ -311,12 +313,12 @@ def write_report(spec: Any, output: Path | None, as_of: str | None = None,
     row_html = []
     if reasons_sorted:
         row_html.append(add(charts.bar_chart([n for n, _ in reasons_sorted], [c for _, c in reasons_sorted],
-                                             "Reasons for quarantine", "series", "reason")))
+                                             "Reasons for quarantine", "number of series", "reason")))
     else:
         row_html.append('<div class="box"><p class="note">No series was quarantined.</p></div>')
     if warns_sorted:
         row_html.append(add(charts.bar_chart([n for n, _ in warns_sorted], [c for _, c in warns_sorted],
-                                             "Warnings: failed checks that did not hold series back", "series",
+                                             "Warnings: failed checks that did not hold series back", "number of series",
                                              "check", colour=charts.WARN)))
     else:
         row_html.append('<div class="box"><p class="note">No warning check fired.</p></div>')
@@ -355,7 +357,7 @@ def write_report(spec: Any, output: Path | None, as_of: str | None = None,
                     f"<td>{html.escape(', '.join(reasons))}</td><td>{html.escape(', '.join(warns))}</td>"
                     f'<td class="num" data-v="{r["n_obs"] or 0}">{_fmt(r["n_obs"])}</td>'
                     f"<td>{_fmt(r['transform'])}</td><td>{_fmt(r['last_period'])}</td></tr>")
-    body.append(f'<table id="series-table"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table>')
+    body.append(f'<div class="scroll"><table id="series-table"><thead><tr>{head}</tr></thead><tbody>{"".join(rows)}</tbody></table></div>')
 
     # per series
     chosen = d["chosen"]
