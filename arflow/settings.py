@@ -231,7 +231,7 @@ NAIVE_GATE_MODES = ("off", "warn", "enforce")
 
 @dataclass(frozen=True)
 class BacktestSettings:
-    """Rolling-origin backtest and the ``beats_naive`` gate.
+    """Rolling-origin backtest and the ``worse_than_naive`` gate.
 
     ``origins``: how many forecast origins (expanding window) to refit and
     score; ``horizon``: steps scored per origin (default: the forecast
@@ -246,7 +246,7 @@ class BacktestSettings:
     naive in 96%; random walks show a ratio below 0.95 in 3.7%
     (``bench/calibration.py``).
 
-    ``coverage_gate`` (``interval_calibration``): off / warn / enforce like
+    ``coverage_gate`` (``interval_undercoverage``): off / warn / enforce like
     ``naive_gate``, reason ``interval_undercoverage``. Measured size with the
     defaults (5%, step 1, 24 origins) on 2,000 series of 120 whose model is
     right: 1.5-1.8% (the exact binomial test is discrete, hence conservative).
@@ -261,7 +261,7 @@ class BacktestSettings:
     naive_gate: str = "warn"
     naive_tolerance: float = 0.05
     naive_steps: int = 1
-    #: interval_calibration gate: "off" / "warn" / "enforce"; a series fails when its
+    #: interval_undercoverage gate: "off" / "warn" / "enforce"; a series fails when its
     #: backtest coverage at steps 1..coverage_steps is significantly below nominal
     #: (one-sided exact binomial test at coverage_alpha, Bonferroni over the levels)
     coverage_gate: str = "warn"
