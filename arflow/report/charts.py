@@ -55,7 +55,7 @@ def _layout(go: Any, title: str, x_title: str, y_title: str, height: int = 300, 
 def figure_html(fig: Any, div_id: str) -> str:
     """A figure as a div and its script (plotly.js itself is inlined once per page)."""
     return fig.to_html(full_html=False, include_plotlyjs=False, div_id=div_id,
-                       config={"displaylogo": False, "responsive": True, "modeBarButtonsToRemove": ["toImage"]})
+                       config={"displaylogo": False, "responsive": True, "displayModeBar": False})
 
 
 def bar_chart(labels: list[str], values: list[float], title: str, x_title: str, y_title: str, colour: str = BAR) -> Any:
