@@ -45,8 +45,8 @@ class ForecastRun:
         ``lower_NN`` / ``upper_NN`` per coverage level.
     backtests
         When the backtest is enabled: keys, ``model`` ("ar", "naive",
-        "seasonal_naive"), ``horizon`` (step), ``rmse``, ``mae``, ``mase``,
-        ``coverage_NN`` (empirical interval coverage of the AR model),
+        "seasonal_naive"), ``step``, ``rmse``, ``mae``, ``mase``,
+        ``hit_rate_NN`` (share of origins inside the NN% interval, AR model),
         ``origins`` (origins scored).
     """
 

@@ -148,7 +148,7 @@ def explain_series(spec: Any, key_values: dict[str, str], as_of: str | None = No
             published_now = _rows(con, f"SELECT run_id, as_of, stale, period, step FROM {s}.published_forecasts AS t "
                                        f"WHERE job = ? AND {mwhere} ORDER BY step", [spec.name, *kv])
         backtests = _rows(con, f"SELECT * EXCLUDE (run_id, {', '.join(_q(k) for k in keys)}) FROM {s}.backtests AS t "
-                               f"WHERE run_id = ? AND {mwhere} ORDER BY model, horizon", [run_id, *kv]) \
+                               f"WHERE run_id = ? AND {mwhere} ORDER BY model, step", [run_id, *kv]) \
             if "backtests" in have else []
         accuracy = _earlier_vintages(con, s, spec.name, keys, kv, run["as_of"]) if "accuracy" in have else []
     finally:
@@ -200,14 +200,14 @@ def _assemble(spec: Any, keys: tuple[str, ...], key_values: dict[str, str], run:
     gate_rows.sort(key=lambda r: (bool(r["passed"]), order.get(r["gate"], 999)))
     by_model: dict[str, dict[int, dict]] = {}
     for b in backtests:
-        by_model.setdefault(b["model"], {})[int(b["horizon"])] = b
+        by_model.setdefault(b["model"], {})[int(b["step"])] = b
     skill = []
     for step, ar in sorted(by_model.get("ar", {}).items()):
         naive = by_model.get("naive", {}).get(step)
         ratio = ar["rmse"] / naive["rmse"] if naive and ar.get("rmse") is not None and naive.get("rmse") else None
         row = {"step": step, "rmse": ar.get("rmse"), "naive_rmse": naive.get("rmse") if naive else None,
                "rmse_ratio": ratio, "mase": ar.get("mase"), "origins": ar.get("origins")}
-        row.update({k.replace("coverage_", "hit_rate_"): v for k, v in ar.items() if k.startswith("coverage_")})
+        row.update({k: v for k, v in ar.items() if k.startswith("hit_rate_")})
         skill.append(row)
     shown = {r["run_id"] for r in published_now}
     return {

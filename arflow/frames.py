@@ -514,7 +514,7 @@ def backtest_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:
         rep = np.repeat(rows, H)
         cols = [
             pl.lit(method).alias("model"),
-            pl.Series("horizon", np.tile(np.arange(1, H + 1, dtype=np.int32), len(rows))),
+            pl.Series("step", np.tile(np.arange(1, H + 1, dtype=np.int32), len(rows))),
             _nullable(acc.rmse[rows].ravel()).alias("rmse"),
             _nullable(acc.mae[rows].ravel()).alias("mae"),
             _nullable(acc.mase[rows].ravel()).alias("mase"),
@@ -522,7 +522,7 @@ def backtest_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:
         for ci, level in enumerate(bt.coverage):
             lab = coverage_label(level)
             vals = bt.coverage_rate[ci][rows].ravel() if method == "ar" else np.full(len(rep), np.nan)
-            cols.append(_nullable(vals).alias(f"coverage_{lab}"))
+            cols.append(_nullable(vals).alias(f"hit_rate_{lab}"))
         cols.append(pl.Series("origins", acc.count[rows].ravel().astype(np.int32)))
         parts.append(keys[rep].with_columns(*cols))
     if not parts:

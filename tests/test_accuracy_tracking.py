@@ -59,12 +59,12 @@ def test_backtests_are_published(warehouse, capsys) -> None:
     db, job = warehouse
     # exit 0, not the alarm code 4: all eight seeded AR(1) series publish (alarm above 90% held back)
     assert run(capsys, "run", str(job)) == 0
-    rows = q(db, "SELECT model, count(*), min(horizon), max(horizon), max(origins) FROM arflow.backtests GROUP BY model ORDER BY model")
+    rows = q(db, "SELECT model, count(*), min(step), max(step), max(origins) FROM arflow.backtests GROUP BY model ORDER BY model")
     methods = {r[0]: r for r in rows}
     assert set(methods) >= {"ar", "naive"}
     assert methods["ar"][2:] == (1, 6, 6)  # steps 1..horizon, 6 origins
     # coverage rates are shares
-    (lo, hi) = q(db, "SELECT min(coverage_80), max(coverage_80) FROM arflow.backtests WHERE model = 'ar'")[0]
+    (lo, hi) = q(db, "SELECT min(hit_rate_80), max(hit_rate_80) FROM arflow.backtests WHERE model = 'ar'")[0]
     assert 0.0 <= lo <= hi <= 1.0
     check_backtest_values(db)
 
@@ -81,7 +81,7 @@ def check_backtest_values(db: Path) -> None:
     frame = source_frame()
     models = dict(q(db, "SELECT site, lags FROM arflow.models WHERE transform = 'level'"))
     assert len(models) == SITES  # every series modelled on levels: no differencing to redo here
-    got = {(r[0], r[1], r[2]): r[3:] for r in q(db, "SELECT site, model, horizon, rmse, mae, mase FROM arflow.backtests")}
+    got = {(r[0], r[1], r[2]): r[3:] for r in q(db, "SELECT site, model, step, rmse, mae, mase FROM arflow.backtests")}
     T = MONTHS
     origins = range(T - 1 - HORIZON - (ORIGINS - 1), T - HORIZON)
     for site, lags in models.items():

@@ -35,7 +35,7 @@ pytestmark = [pytest.mark.spark, pytest.mark.filterwarnings("ignore::Deprecation
 
 KEYS = ["district", "zone"]
 SORT = {"models": KEYS, "gates": KEYS + ["gate"], "residual_acf": KEYS + ["lag"], "forecasts": KEYS + ["step"],
-        "series_status": KEYS, "backtests": KEYS + ["model", "horizon"], "accuracy": KEYS + ["period", "step"]}
+        "series_status": KEYS, "backtests": KEYS + ["model", "step"], "accuracy": KEYS + ["period", "step"]}
 RTOL = 1e-9
 
 

@@ -131,13 +131,13 @@ def _gather(spec: Any, as_of: str | None, options: ReportOptions) -> dict[str, A
         if bt_cols:
             on_b = " AND ".join(f"a.{_q(k)} = n.{_q(k)}" for k in keys)
             skill = _frame(con, f"""
-                SELECT a.horizon AS step, quantile_cont(a.rmse / n.rmse, 0.25) AS q25,
+                SELECT a.step, quantile_cont(a.rmse / n.rmse, 0.25) AS q25,
                        median(a.rmse / n.rmse) AS median, quantile_cont(a.rmse / n.rmse, 0.75) AS q75,
                        count(*) AS series
                 FROM {s}.backtests AS a JOIN {s}.backtests AS n
-                  ON n.run_id = a.run_id AND {on_b} AND n.horizon = a.horizon AND n.model = 'naive'
+                  ON n.run_id = a.run_id AND {on_b} AND n.step = a.step AND n.model = 'naive'
                 WHERE a.run_id = ? AND a.model = 'ar' AND n.rmse > 0 AND isfinite(a.rmse / n.rmse)
-                GROUP BY a.horizon ORDER BY a.horizon""", [rid])
+                GROUP BY a.step ORDER BY a.step""", [rid])
         acc_cols = [r[0] for r in con.execute(
             "SELECT column_name FROM information_schema.columns WHERE lower(table_schema) = lower(?) "
             "AND table_name = 'accuracy' ORDER BY ordinal_position", [spec.publish.schema]).fetchall()]

@@ -233,6 +233,8 @@ class ParquetStore:
             ).select("job", "as_of", *self.layout.keys, "decision", "on_failure", *extra) if models.height else None
             ordered: dict[str, pl.DataFrame | None] = {"series_status": status}
             ordered.update({name: frames.get(name) for name in BASE_TABLES[1:]})
+            if ordered.get("models") is not None:  # per-series status columns live in series_status, as in DuckDB
+                ordered["models"] = ordered["models"].drop("failed_gates", "warnings", strict=False)
             ordered.update({name: f for name, f in frames.items() if name not in ordered})
             if record.held:
                 for name in VIEW_TABLES:
