@@ -163,10 +163,10 @@ def _earlier_vintages(con: duckdb.DuckDBPyConnection, s: str, job: str, keys: tu
     hits = "".join(f", avg(CAST({_q(c)} AS DOUBLE)) AS {_q('hit_rate_' + c[len('covered_'):])}" for c in covered)
     where = " AND ".join(f"CAST(a.{_q(k)} AS VARCHAR) = ?" for k in keys)
     return _rows(con, f"""
-        SELECT r.as_of AS forecast_as_of, a.run_id AS forecast_run_id, count(*) AS scored, min(a.step) AS first_step,
+        SELECT r.as_of AS forecast_as_of, a.forecast_run_id, count(*) AS scored, min(a.step) AS first_step,
                max(a.step) AS last_step, avg(a.error) AS mean_error, avg(abs(a.error)) AS mae,
                sqrt(avg(a.error * a.error)) AS rmse{hits}
-        FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.run_id
+        FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.forecast_run_id
         WHERE a.job = ? AND {where} AND r.as_of < ?
         GROUP BY ALL ORDER BY forecast_as_of""", [job, *kv, as_of])
 

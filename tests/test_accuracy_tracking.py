@@ -114,14 +114,14 @@ def test_accuracy_filled_once_for_earlier_vintages(warehouse, capsys) -> None:
                max(abs(a.abs_pct_error - abs((r.reading - f.forecast) / r.reading))),
                bool_and(a.covered_95 = (r.reading BETWEEN f.lower_95 AND f.upper_95))
         FROM arflow.accuracy a
-        JOIN arflow.forecasts f ON f.run_id = a.run_id AND f.site = a.site AND f.period = a.period
+        JOIN arflow.forecasts f ON f.run_id = a.forecast_run_id AND f.site = a.site AND f.period = a.period
         JOIN readings r ON r.site = a.site AND r.month = a.period
     """)[0]
     assert check[0] < 1e-9 and check[1] < 1e-12 and check[2]
     # re-running the same vintage, and running again, records nothing twice
     assert run(capsys, "run", str(job)) == 0
     assert run(capsys, "run", str(job)) == 0
-    again = q(db, "SELECT count(*), count(DISTINCT (run_id, site, period)) FROM arflow.accuracy")[0]
+    again = q(db, "SELECT count(*), count(DISTINCT (forecast_run_id, site, period)) FROM arflow.accuracy")[0]
     assert again == (rows[0], rows[0])
     view = q(db, "SELECT step, forecasts_scored, hit_rate_95 FROM arflow.accuracy_by_horizon ORDER BY step")
     assert [v[0] for v in view] == [1, 2, 3, 4, 5, 6]
@@ -139,7 +139,7 @@ def test_three_vintages_score_each_forecast_once_with_its_values(warehouse, caps
         assert run(capsys, "run", str(job), "--as-of", as_of) == 0  # all eight series publish: no alarm
     june, september, december = "meters@2024-06-01", "meters@2024-09-01", "meters@2024-12-01"
     rows = q(db, """
-        SELECT run_id, recorded_by, site, period, step, forecast, actual, error, abs_pct_error, covered_80, covered_95
+        SELECT forecast_run_id, recorded_by, site, period, step, forecast, actual, error, abs_pct_error, covered_80, covered_95
         FROM arflow.accuracy ORDER BY ALL""")
     keys = [(r[0], r[2], r[3]) for r in rows]
     assert len(keys) == len(set(keys))  # no key twice

@@ -26,14 +26,16 @@ def test_previous_release_schema_is_upgraded_in_place(tmp_path: Path, capsys) ->
     con = duckdb.connect(str(db))
     try:
         con.execute("ALTER TABLE arflow.backtests RENAME COLUMN step TO horizon")
+        con.execute("ALTER TABLE arflow.accuracy RENAME COLUMN forecast_run_id TO run_id")
         for lab in ("80", "95"):
             con.execute(f"ALTER TABLE arflow.backtests RENAME COLUMN hit_rate_{lab} TO coverage_{lab}")
         con.execute("DROP VIEW arflow.latest_series_status")
         for col in ("reasons", "failed_gates", "warnings"):
             con.execute(f"ALTER TABLE arflow.series_status DROP COLUMN {col}")
         con.execute("UPDATE arflow.arflow_tables SET columns = list_filter(list_transform(columns, lambda c: "
-                    "CASE c WHEN 'step' THEN 'horizon' ELSE c END), lambda c: c NOT IN ('reasons', 'failed_gates', 'warnings'))"
-                    " WHERE table_name IN ('backtests', 'series_status')")
+                    "CASE c WHEN 'step' THEN 'horizon' WHEN 'forecast_run_id' THEN 'run_id' ELSE c END), "
+                    "lambda c: c NOT IN ('reasons', 'failed_gates', 'warnings'))"
+                    " WHERE table_name IN ('backtests', 'series_status', 'accuracy')")
         old_rows = con.execute("SELECT count(*) FROM arflow.backtests").fetchone()[0]
     finally:
         con.close()
@@ -51,6 +53,10 @@ def test_previous_release_schema_is_upgraded_in_place(tmp_path: Path, capsys) ->
         assert con.execute("SELECT count(*) FROM arflow.backtests WHERE run_id = 'meters@2026-06-01' "
                            "AND step IS NOT NULL").fetchone()[0] == old_rows
         assert {"reasons", "failed_gates", "warnings"} <= set(_cols(con, "series_status"))
+        acc = _cols(con, "accuracy")
+        assert "forecast_run_id" in acc and "run_id" not in acc
+        # the second run scored the first vintage's forecasts under the new name
+        assert con.execute("SELECT count(DISTINCT forecast_run_id) FROM arflow.accuracy").fetchone() == (1,)
         # the old vintage's status rows have NULL there; the new one's are filled
         nulls = con.execute("SELECT as_of, count(*) FILTER (reasons IS NULL), count(*) FROM arflow.series_status "
                             "GROUP BY as_of ORDER BY as_of").fetchall()

@@ -98,7 +98,8 @@ def spark_run(spark, sample: Path) -> dict:
 def _tables(db: Path) -> dict[str, pl.DataFrame]:
     con = duckdb.connect(str(db), read_only=True)
     try:
-        return {t: con.sql(f"SELECT * FROM arflow.{t}").pl().sort(["run_id", *s], maintain_order=True)
+        return {t: con.sql(f"SELECT * FROM arflow.{t}").pl().sort(["forecast_run_id" if t == "accuracy" else "run_id", *s],
+                                                                   maintain_order=True)
                 for t, s in SORT.items()}
     finally:
         con.close()

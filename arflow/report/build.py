@@ -146,9 +146,9 @@ def _gather(spec: Any, as_of: str | None, options: ReportOptions) -> dict[str, A
             hits = "".join(f", 100 * avg(CAST({_q(c)} AS DOUBLE)) AS {_q(c[len('covered_'):])}"
                            for c in acc_cols if c.startswith("covered_"))
             accuracy = _frame(con, f"""
-                SELECT a.step, count(*) AS scored, count(DISTINCT a.run_id) AS vintages, avg(abs(a.error)) AS mae,
+                SELECT a.step, count(*) AS scored, count(DISTINCT a.forecast_run_id) AS vintages, avg(abs(a.error)) AS mae,
                        sqrt(avg(a.error * a.error)) AS rmse, avg(a.error) AS mean_error{hits}
-                FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.run_id
+                FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.forecast_run_id
                 WHERE a.job = ? AND r.as_of < ? GROUP BY a.step ORDER BY a.step""", [spec.name, run["as_of"]])
     finally:
         con.close()

@@ -43,7 +43,8 @@ STATUS_VIEW = "latest_series_status"
 #: per coverage level: table -> column prefixes added with ALTER TABLE
 COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("hit_rate",), "accuracy": ("covered",)}
 #: columns an earlier release wrote under another name: table -> (old name or prefix, new); renamed in place
-RENAMED_COLUMNS = {"backtests": (("horizon", "step"), ("coverage_", "hit_rate_"))}
+RENAMED_COLUMNS = {"backtests": (("horizon", "step"), ("coverage_", "hit_rate_")),
+                   "accuracy": (("run_id", "forecast_run_id"),)}
 _STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure", "reasons", "failed_gates", "warnings")
 
 
@@ -661,7 +662,7 @@ class DuckDBTarget:
         con.execute(
             f"""
             INSERT INTO {s}.accuracy BY NAME
-            SELECT f.run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
+            SELECT f.run_id AS forecast_run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
                    a.{value} AS actual, a.{value} - f.forecast AS error,
                    CASE WHEN a.{value} <> 0 THEN abs((a.{value} - f.forecast) / a.{value}) END AS abs_pct_error,
                    ? AS recorded_by{covered}
@@ -670,7 +671,7 @@ class DuckDBTarget:
             JOIN {source} AS a ON {on} AND a.{period} = f.period
             WHERE a.{value} IS NOT NULL AND isfinite(a.{value})
               AND NOT EXISTS (
-                  SELECT 1 FROM {s}.accuracy AS x WHERE x.run_id = f.run_id AND x.period = f.period AND {same}
+                  SELECT 1 FROM {s}.accuracy AS x WHERE x.forecast_run_id = f.run_id AND x.period = f.period AND {same}
               )
             """,
             [record.run_id, record.job, record.as_of],
