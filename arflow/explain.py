@@ -147,13 +147,22 @@ def explain_series(spec: Any, key_values: dict[str, str], as_of: str | None = No
         if "published_forecasts" in views:
             published_now = _rows(con, f"SELECT run_id, as_of, stale, period, step FROM {s}.published_forecasts AS t "
                                        f"WHERE job = ? AND {mwhere} ORDER BY step", [spec.name, *kv])
-        backtests = _rows(con, f"SELECT * EXCLUDE (run_id, {', '.join(_q(k) for k in keys)}) FROM {s}.backtests AS t "
-                               f"WHERE run_id = ? AND {mwhere} ORDER BY model, step", [run_id, *kv]) \
-            if "backtests" in have else []
+        backtests = [_current_names(b) for b in _rows(
+            con, f"SELECT * EXCLUDE (run_id, {', '.join(_q(k) for k in keys)}) FROM {s}.backtests AS t "
+                 f"WHERE run_id = ? AND {mwhere}", [run_id, *kv])] if "backtests" in have else []
         accuracy = _earlier_vintages(con, s, spec.name, keys, kv, run["as_of"]) if "accuracy" in have else []
     finally:
         con.close()
     return _clean(_assemble(spec, keys, key_values, run, model, gates, forecasts, published_now, backtests, accuracy))
+
+
+def _current_names(row: dict[str, Any]) -> dict[str, Any]:
+    """A ``backtests`` row with this release's column names (a schema not yet upgraded by a run has the old ones)."""
+    out = {}
+    for k, v in row.items():
+        k = "step" if k == "horizon" else ("hit_rate_" + k[len("coverage_"):] if k.startswith("coverage_") else k)
+        out[k] = v
+    return out
 
 
 def _earlier_vintages(con: duckdb.DuckDBPyConnection, s: str, job: str, keys: tuple[str, ...], kv: list[str],
@@ -161,12 +170,13 @@ def _earlier_vintages(con: duckdb.DuckDBPyConnection, s: str, job: str, keys: tu
     cols = [r[0] for r in con.execute(f"SELECT * FROM {s}.accuracy LIMIT 0").description]
     covered = [c for c in cols if c.startswith("covered_")]
     hits = "".join(f", avg(CAST({_q(c)} AS DOUBLE)) AS {_q('hit_rate_' + c[len('covered_'):])}" for c in covered)
+    vintage = "forecast_run_id" if "forecast_run_id" in cols else "run_id"  # the name before this release
     where = " AND ".join(f"CAST(a.{_q(k)} AS VARCHAR) = ?" for k in keys)
     return _rows(con, f"""
-        SELECT r.as_of AS forecast_as_of, a.forecast_run_id, count(*) AS scored, min(a.step) AS first_step,
+        SELECT r.as_of AS forecast_as_of, a.{vintage} AS forecast_run_id, count(*) AS scored, min(a.step) AS first_step,
                max(a.step) AS last_step, avg(a.error) AS mean_error, avg(abs(a.error)) AS mae,
                sqrt(avg(a.error * a.error)) AS rmse{hits}
-        FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.forecast_run_id
+        FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.{vintage}
         WHERE a.job = ? AND {where} AND r.as_of < ?
         GROUP BY ALL ORDER BY forecast_as_of""", [job, *kv, as_of])
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import duckdb
@@ -40,6 +41,11 @@ def test_previous_release_schema_is_upgraded_in_place(tmp_path: Path, capsys) ->
     finally:
         con.close()
     capsys.readouterr()
+    # the readers take the old names too
+    assert main(["explain", str(job), "site=s01", "--log-format", "json"]) == 0
+    explained = json.loads(capsys.readouterr().out)
+    assert explained["backtest"] and explained["backtest"][0]["step"] == 1 and "hit_rate_80" in explained["backtest"][0]
+    assert main(["report", str(job), "-o", str(tmp_path / "old.html")]) == 0
     # validate and a dry run read the old schema without complaint
     assert main(["validate", str(job)]) == 0
     assert main(["run", str(job), "--dry-run"]) == 0

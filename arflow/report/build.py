@@ -129,26 +129,28 @@ def _gather(spec: Any, as_of: str | None, options: ReportOptions) -> dict[str, A
             "AND table_name = 'backtests'", [spec.publish.schema]).fetchall()}
         skill = pl.DataFrame()
         if bt_cols:
+            step = "step" if "step" in bt_cols else "horizon"  # a schema not yet upgraded by a run of this release
             on_b = " AND ".join(f"a.{_q(k)} = n.{_q(k)}" for k in keys)
             skill = _frame(con, f"""
-                SELECT a.step, quantile_cont(a.rmse / n.rmse, 0.25) AS q25,
+                SELECT a.{step} AS step, quantile_cont(a.rmse / n.rmse, 0.25) AS q25,
                        median(a.rmse / n.rmse) AS median, quantile_cont(a.rmse / n.rmse, 0.75) AS q75,
                        count(*) AS series
                 FROM {s}.backtests AS a JOIN {s}.backtests AS n
-                  ON n.run_id = a.run_id AND {on_b} AND n.step = a.step AND n.model = 'naive'
+                  ON n.run_id = a.run_id AND {on_b} AND n.{step} = a.{step} AND n.model = 'naive'
                 WHERE a.run_id = ? AND a.model = 'ar' AND n.rmse > 0 AND isfinite(a.rmse / n.rmse)
-                GROUP BY a.step ORDER BY a.step""", [rid])
+                GROUP BY a.{step} ORDER BY a.{step}""", [rid])
         acc_cols = [r[0] for r in con.execute(
             "SELECT column_name FROM information_schema.columns WHERE lower(table_schema) = lower(?) "
             "AND table_name = 'accuracy' ORDER BY ordinal_position", [spec.publish.schema]).fetchall()]
         accuracy = pl.DataFrame()
         if acc_cols:
+            vintage = "forecast_run_id" if "forecast_run_id" in acc_cols else "run_id"
             hits = "".join(f", 100 * avg(CAST({_q(c)} AS DOUBLE)) AS {_q(c[len('covered_'):])}"
                            for c in acc_cols if c.startswith("covered_"))
             accuracy = _frame(con, f"""
-                SELECT a.step, count(*) AS scored, count(DISTINCT a.forecast_run_id) AS vintages, avg(abs(a.error)) AS mae,
+                SELECT a.step, count(*) AS scored, count(DISTINCT a.{vintage}) AS vintages, avg(abs(a.error)) AS mae,
                        sqrt(avg(a.error * a.error)) AS rmse, avg(a.error) AS mean_error{hits}
-                FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.forecast_run_id
+                FROM {s}.accuracy AS a JOIN {s}.runs AS r ON r.run_id = a.{vintage}
                 WHERE a.job = ? AND r.as_of < ? GROUP BY a.step ORDER BY a.step""", [spec.name, run["as_of"]])
     finally:
         con.close()
