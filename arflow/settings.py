@@ -189,7 +189,7 @@ class GateSettings:
     require_stationary: bool = True
     allow_gaps: bool = False
     allow_duplicates: bool = False
-    max_stale_periods: int = 0
+    max_periods_behind: int = 0
     lower_bound: float | None = None
     upper_bound: float | None = None
     arch_test: bool = False
@@ -209,8 +209,8 @@ class GateSettings:
             _fail("gates.series_fdr", self.series_fdr, "a number strictly between 0 and 1, or leave it out")
         if not (_is_int(self.min_observations) and 3 <= self.min_observations):
             _fail("gates.min_observations", self.min_observations, "an integer of at least 3")
-        if not (_is_int(self.max_stale_periods) and self.max_stale_periods >= 0):
-            _fail("gates.max_stale_periods", self.max_stale_periods, "an integer of at least 0")
+        if not (_is_int(self.max_periods_behind) and self.max_periods_behind >= 0):
+            _fail("gates.max_periods_behind", self.max_periods_behind, "an integer of at least 0")
         for key in ("lower_bound", "upper_bound"):
             v = getattr(self, key)
             if v is not None and not _is_num(v):

@@ -2,7 +2,7 @@
 
 The decision rules are stated in the settings' documentation and the README:
 a series is too short when it has fewer than ``min_observations`` values, stale
-when more than ``max_stale_periods`` periods lie between its last observation
+when more than ``max_periods_behind`` periods lie between its last observation
 and the as-of period, a test fails when its p-value is below ``alpha`` (the
 usual convention "reject when p < alpha"; common practice), the AR model must
 have every root of its companion matrix strictly inside the unit circle
@@ -87,8 +87,8 @@ def test_a_short_series_is_not_also_reported_as_a_failed_fit():
 
 @pytest.mark.parametrize("limit", [0, 1, 3])
 def test_stale_periods_boundary(limit):
-    # exactly max_stale_periods passes; one more fails with "ends_before_as_of"
-    g = GateSettings(max_stale_periods=limit)
+    # exactly max_periods_behind passes; one more fails with "ends_before_as_of"
+    g = GateSettings(max_periods_behind=limit)
     out = decide(inputs(3, stale_periods=[limit, limit + 1, 0]), g, "difference")
     assert out.published.tolist() == [True, False, True]
     assert reasons(out, 1) == ["ends_before_as_of"]

@@ -72,3 +72,20 @@ def test_previous_release_schema_is_upgraded_in_place(tmp_path: Path, capsys) ->
         assert "step" in marker and "horizon" not in marker
     finally:
         con.close()
+
+
+def test_old_job_file_key_is_still_read(tmp_path: Path) -> None:
+    from arflow.errors import SettingsError
+    from arflow.job_file import parse_job
+
+    sections = default_job()
+    sections["gates"]["max_stale_periods"] = 3
+    spec = parse_job(sections, base_dir=tmp_path)
+    assert spec.settings.gates.max_periods_behind == 3
+    sections["gates"]["max_periods_behind"] = 2
+    try:
+        parse_job(sections, base_dir=tmp_path)
+    except SettingsError as exc:
+        assert "old name of gates.max_periods_behind" in str(exc)
+    else:
+        raise AssertionError("both names were accepted")

@@ -197,7 +197,7 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
     nonfin = ((f & NON_FINITE_VALUES) != 0) & (not gates.allow_gaps)
     const = (f & CONSTANT) != 0
     off_calendar = (f & OFF_CALENDAR) != 0
-    stale = x.stale_periods > gates.max_stale_periods
+    stale = x.stale_periods > gates.max_periods_behind
     behind = stale & ~no_data
     # each data check writes a gate row (statistic 1 = found) only for the series where it found something
     for name, where in (("no_data", no_data), ("duplicate_periods", dup), ("conflicting_duplicates", conflict),
@@ -206,7 +206,7 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
         if np.any(where):
             b.add(name, ~where, statistic=1.0, threshold=0.0, applies=where, reason=name)
     if np.any(behind):
-        b.add("ends_before_as_of", ~behind, statistic=x.stale_periods, threshold=gates.max_stale_periods,
+        b.add("ends_before_as_of", ~behind, statistic=x.stale_periods, threshold=gates.max_periods_behind,
               applies=behind, reason="ends_before_as_of")
 
     short = (x.n < gates.min_observations) & ~no_data
