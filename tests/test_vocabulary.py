@@ -115,7 +115,7 @@ def test_status_words_in_code_and_sql_are_documented() -> None:
     words |= set(re.findall(r'np\.where\(published, "(\w+)", "(\w+)"\)', frames)[0])
     words |= set(re.findall(r'np\.where\(res\.differenced, "(\w+)", "(\w+)"\)', frames)[0])
     words |= set(re.findall(r'\("(\w+)", bt\.\w+\)', frames))
-    for sql in (ROOT / "sql").glob("*.sql"):
+    for sql in (ROOT / "sql").rglob("*.sql"):
         words |= set(re.findall(r"decision\s*(?:=|<>)\s*'(\w+)'", sql.read_text(encoding="utf-8")))
     assert {"ok", "alarm", "held", "published", "quarantined", "level", "difference", "ar", "naive",
             "seasonal_naive"} <= words
