@@ -13,7 +13,8 @@ def vintaged_demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
     The second run scores the first vintage's forecasts, so ``accuracy`` has rows.
     """
-    from arflow.job import prepare_demo, run_job
+    from arflow.demo import prepare_demo
+    from arflow.job import run_job
     from arflow.job_file import load_job
 
     job_path = prepare_demo(tmp_path_factory.mktemp("vintaged_demo"))

@@ -15,7 +15,8 @@ import argparse
 import tempfile
 from pathlib import Path
 
-from arflow.job import prepare_demo, run_job
+from arflow.demo import prepare_demo
+from arflow.job import run_job
 from arflow.job_file import load_job
 from arflow.report import write_report
 from arflow.report.browser import screenshot
