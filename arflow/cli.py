@@ -492,5 +492,9 @@ def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:
     return code
 
 
+#: the text summary ``arflow run`` prints, for a job outcome (the typed run call's ``RunSummary.text``)
+summary_text = _summary
+
+
 if __name__ == "__main__":
     sys.exit(main())

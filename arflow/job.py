@@ -20,6 +20,7 @@ from .engines.base import Engine, EventSink, WorkPlan
 from .engines.registry import engine_for
 from .errors import SettingsError, SourceError
 from .job_file import JobSpec
+from .machine import resolve_workers
 from .run import ChunkSummary
 from .warehouse.contract import PendingPublication, RunRecord, SourceStats, TableLayout, Target, run_id_for
 from .warehouse.duckdb_source import periods_between
@@ -201,13 +202,16 @@ class _Planned:
 
 def run_job(
     spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: EventSink | None = None, *,
-    allow_beyond_data: bool = False, allow_jump: bool = False,
+    allow_beyond_data: bool = False, allow_jump: bool = False, tune_allocator: bool = True,
 ) -> JobOutcome:
     """Run a job: read, forecast chunk by chunk, publish to every target (see :func:`publish_run`).
 
     ``allow_beyond_data`` / ``allow_jump`` lift the as-of guards (see :func:`place_as_of`).
+    ``tune_allocator=False`` leaves this process's allocator as it is (worker processes are tuned
+    either way): the typed run call in a long-lived process passes it.
     """
-    tune_for_batch()
+    if tune_allocator:
+        tune_for_batch()
     emit: EventSink = on_event or (lambda event: None)
     clock = time.perf_counter()
     started_at = _utcnow()
@@ -270,7 +274,8 @@ def _start_event(spec: JobSpec, planned: _Planned, dry_run: bool, notes: list[st
     return {
         "event": "start", "job": spec.name, "run_id": planned.run_id, "as_of": planned.as_of, "dry_run": dry_run,
         "source": spec.source.describe(), "target": _target_text(planned.targets), "rows": planned.stats.rows,
-        "series": planned.stats.series, "chunks": planned.plan.chunks, "workers": spec.run.workers, "notes": notes,
+        "series": planned.stats.series, "chunks": planned.plan.chunks,
+        "workers": min(resolve_workers(spec.run.workers), max(planned.plan.chunks, 1)), "notes": notes,
     }
 
 
