@@ -284,7 +284,7 @@ def coverage_gate_rate(Y: np.ndarray, frequency: str = "month", parameter_uncert
     s = Settings(frequency=frequency, forecast=ForecastSettings(parameter_uncertainty=parameter_uncertainty),
                  backtest=BacktestSettings(origins=origins, coverage_gate="enforce"))
     r = run_core(panel_of(Y), s)
-    row = r.outcome.gates["interval_calibration"]
+    row = r.outcome.gates["interval_undercoverage"]
     return float((~row.passed[r.fit.fitted]).mean())
 
 

@@ -1,4 +1,4 @@
-"""Prediction intervals with parameter uncertainty, additive outliers, and the interval_calibration gate.
+"""Prediction intervals with parameter uncertainty, additive outliers, and the interval_undercoverage gate.
 
 Outside references: statsmodels OLS (prediction intervals of a regression,
 indicator regressions), scipy.stats (MAD, t and binomial distributions), and
@@ -265,7 +265,7 @@ def test_a_huge_spike_is_treated_reported_or_quarantined():
     assert width < 6  # about 2 * 1.98 * sigma, not +/- 1,800
     q = arflow.forecast(df, keys="site", period="month", value="flow",
                         settings=Settings(model=ModelSettings(outliers="quarantine")))
-    assert q.models["decision"][0] == "quarantined" and "outlier" in q.models["reasons"][0]
+    assert q.models["decision"][0] == "quarantined" and "outliers" in q.models["reasons"][0]
 
 
 def _rates(Y: np.ndarray, frequency: str, seed: int) -> tuple[float, float]:
@@ -299,7 +299,7 @@ def test_outlier_detection_and_false_flag_rates():
         assert false <= 0.02
 
 
-# ------------------------------------------------------------------ interval_calibration gate
+# ------------------------------------------------------------------ interval_undercoverage gate
 
 
 @pytest.mark.slow
@@ -319,7 +319,7 @@ def test_interval_calibration_gate_size_and_power():
     assert r.outcome.reasons[:, REASONS.index("interval_undercoverage")].mean() >= 0.5
     warn = run_core(to_panel(Z), Settings())
     assert not warn.outcome.reasons[:, REASONS.index("interval_undercoverage")].any()
-    assert "interval_calibration" in warn.outcome.gates
+    assert "interval_undercoverage" in warn.outcome.gates
 
 
 def test_backtest_coverage_test_counts_hits():

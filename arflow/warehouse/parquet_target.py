@@ -246,11 +246,14 @@ class ParquetTarget:
         staged = LakehousePending(self.root, record, attempt, {})
         try:
             models = frames["models"]
-            status = models.select(*self.layout.keys, "decision").with_columns(
+            extra = [c for c in ("reasons", "failed_gates", "warnings") if c in models.columns]
+            status = models.select(*self.layout.keys, "decision", *extra).with_columns(
                 pl.lit(record.job).alias("job"), pl.lit(record.as_of).alias("as_of"), pl.lit(record.on_failure).alias("on_failure")
-            ).select("job", "as_of", *self.layout.keys, "decision", "on_failure") if models.height else None
+            ).select("job", "as_of", *self.layout.keys, "decision", "on_failure", *extra) if models.height else None
             ordered: dict[str, pl.DataFrame | None] = {SERIES_STATUS: status}
             ordered.update({name: frames.get(name) for name in RESULT_TABLES})
+            if ordered.get("models") is not None:  # per-series status columns live in series_status, as in DuckDB
+                ordered["models"] = ordered["models"].drop("failed_gates", "warnings", strict=False)
             ordered.update({name: f for name, f in frames.items() if name not in ordered})
             if record.held:
                 for name in VIEW_TABLES:
