@@ -90,6 +90,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     demo = sub.add_parser("demo", help="build the sample warehouse and run its job")
     demo.add_argument("--dir", type=Path, default=Path("."), help="folder for the sample database and job file (default: current folder)")
+    demo.add_argument("--postgres", metavar="URL", default=None,
+                      help="load the sample into this PostgreSQL database and run the job there "
+                           "(a password-free URL; the password comes from PGPASSWORD or ~/.pgpass)")
     common(demo)
     demo.set_defaults(handler=_cmd_demo)
     return parser
@@ -240,12 +243,22 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
     from .job import run_demo
 
     directory = args.dir.expanduser().resolve()
-    outcome = run_demo(directory, on_event=reporter)
+    if args.postgres is not None:
+        from .job import run_job
+        from .job_file import load_job
+        from .sample.postgres import prepare_postgres_demo
+        from .warehouse.postgres_connection import check_url
+
+        job_file = prepare_postgres_demo(directory, check_url(args.postgres, "--postgres"))
+        outcome = run_job(load_job(job_file), on_event=reporter)
+    else:
+        job_file = directory / "demo_job.toml"
+        outcome = run_demo(directory, on_event=reporter)
     code = _finish(outcome, reporter)
     if not reporter.json:
         reporter.out.write(
-            f"  {'job file':<26}{directory / 'demo_job.toml'}\n"
-            f"  {'try next':<26}arflow run {directory / 'demo_job.toml'} --as-of 2024-12 --dry-run\n"
+            f"  {'job file':<26}{job_file}\n"
+            f"  {'try next':<26}arflow run {job_file} --as-of 2024-12 --dry-run\n"
         )
     return code
 

@@ -20,6 +20,7 @@ from typing import Any
 from .errors import SettingsError
 from .settings import FREQUENCIES, BacktestSettings, ForecastSettings, GateSettings, ModelSettings, Settings
 from .warehouse.identifiers import check_identifier, check_qualified, is_identifier
+from .warehouse.postgres_connection import PgAddress, check_url
 
 ON_FAILURE_POLICIES = ("keep-previous", "withdraw")
 JOB_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
@@ -43,8 +44,10 @@ NONDETERMINISTIC_FUNCTIONS = frozenset(
     {"random", "gen_random_uuid", "uuid", "uuidv4", "uuidv7", "setseed"}
 )
 
-_SOURCE_KEYS = ("engine", "database", "parquet", "table", "query", "keys", "period", "value", "frequency")
-_PUBLISH_KEYS = ("database", "lakehouse", "schema", "on_failure", "hold_on_alarm", "stale_after_periods", "max_periods_ahead")
+_SOURCE_KEYS = ("engine", "database", "parquet", "postgres", "table", "query", "keys", "period", "value", "frequency",
+                "statement_timeout_seconds")
+_PUBLISH_KEYS = ("database", "lakehouse", "postgres", "schema", "on_failure", "hold_on_alarm", "stale_after_periods",
+                 "max_periods_ahead", "lock_wait_seconds", "statement_timeout_seconds")
 ENGINES = ("duckdb", "spark")
 _SPARK_KEYS = ("master", "partitions", "config")
 _RUN_KEYS = ("chunk_series", "workers")
@@ -82,9 +85,15 @@ class SourceSpec:
     table: tuple[str, ...] | None = None
     query: str | None = None
     engine: str = "duckdb"
+    #: a PostgreSQL source (``[source] postgres``: a password-free URL); with ``table`` or ``query``
+    postgres: PgAddress | None = None
+    #: ``[source] statement_timeout_seconds`` (PostgreSQL): the limit of each statement the source runs
+    statement_timeout: float = 600.0
 
     def describe(self) -> str:
-        """Short human description for logs."""
+        """Short human description for logs (never a password)."""
+        if self.postgres is not None:
+            return f"{self.postgres.describe()} ({'.'.join(self.table) if self.table else 'query'})"
         if self.engine == "spark":
             return f"spark table {'.'.join(self.table)}" if self.table else f"spark parquet {self.parquet}"
         where = str(self.database) if self.database else f"parquet {self.parquet}"
@@ -112,6 +121,12 @@ class PublishSpec:
     stale_after_periods: int | None = None
     #: refuse a vintage more than this many periods after the job's latest one (None: per-frequency default)
     max_periods_ahead: int | None = None
+    #: a PostgreSQL target (``[publish] postgres``: a password-free URL)
+    postgres: PgAddress | None = None
+    #: PostgreSQL: how long a run waits for another run publishing to the same schema (0: fail at once)
+    lock_wait: float = 60.0
+    #: PostgreSQL: the limit of each statement of the publishing transaction
+    statement_timeout: float = 3600.0
 
 
 @dataclass(frozen=True)
@@ -235,7 +250,13 @@ def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
     if engine not in ENGINES:
         raise SettingsError(f"source.engine = {engine!r} is not allowed; use " + " / ".join(f'"{e}"' for e in ENGINES))
     if engine == "spark":
+        if "postgres" in section:
+            raise SettingsError('source.postgres is read by arflow itself; leave out engine = "spark" (or give Spark a table)')
         return _parse_spark_source(section, base_dir)
+    if "postgres" in section:
+        return _parse_postgres_source(section)
+    if "statement_timeout_seconds" in section:
+        raise SettingsError("source.statement_timeout_seconds is used with source.postgres only; remove it")
     has_db, has_pq = "database" in section, "parquet" in section
     if has_db == has_pq:
         raise SettingsError("[source] needs exactly one of database (a DuckDB file) and parquet (a path or glob)")
@@ -259,6 +280,33 @@ def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
     keys_t, period, value, frequency = _parse_columns(section)
     spec = SourceSpec(keys=keys_t, period=period, value=value, database=database, parquet=parquet, table=table, query=query)
     return spec, frequency
+
+
+def _parse_postgres_source(section: dict[str, Any]) -> tuple[SourceSpec, str]:
+    """``[source] postgres = "postgresql://..."`` with ``table`` or ``query``."""
+    if "database" in section or "parquet" in section:
+        raise SettingsError("[source] needs exactly one of database (a DuckDB file), parquet (files) and postgres (a server URL)")
+    address = check_url(section["postgres"], "source.postgres")
+    if ("table" in section) == ("query" in section):
+        raise SettingsError("with source.postgres, [source] needs table (e.g. table = \"public.sales\") or query (one SELECT), not both")
+    table = check_qualified(section["table"], "source.table") if "table" in section else None
+    query = section.get("query")
+    if query is not None:
+        if not isinstance(query, str) or not query.strip():
+            raise SettingsError("source.query must be a non-empty string holding one SELECT statement")
+        _check_deterministic(query)
+    timeout = _seconds(section, "source", "statement_timeout_seconds", 600.0, low=0.001)
+    keys_t, period, value, frequency = _parse_columns(section)
+    spec = SourceSpec(keys=keys_t, period=period, value=value, table=table, query=query, postgres=address,
+                      statement_timeout=timeout)
+    return spec, frequency
+
+
+def _seconds(section: dict[str, Any], name: str, key: str, default: float, *, low: float) -> float:
+    value = section.get(key, default)
+    if not (isinstance(value, (int, float)) and not isinstance(value, bool) and low <= value <= 604_800):
+        raise SettingsError(f"{name}.{key} = {value!r} is not allowed; use a number of seconds from {low:g} to 604800")
+    return float(value)
 
 
 def _parse_spark_source(section: dict[str, Any], base_dir: Path) -> tuple[SourceSpec, str]:
@@ -323,11 +371,25 @@ def _parse_columns(section: dict[str, Any]) -> tuple[tuple[str, ...], str, str, 
 
 def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) -> PublishSpec:
     lakehouse = _resolve(section["lakehouse"], "publish.lakehouse", base_dir) if "lakehouse" in section else None
+    postgres = check_url(section["postgres"], "publish.postgres") if "postgres" in section else None
+    if postgres is not None and "database" in section:
+        raise SettingsError(
+            "[publish] takes one database: database (a DuckDB file) or postgres (a server URL), not both "
+            "(lakehouse may go with either)"
+        )
+    if postgres is None and ("lock_wait_seconds" in section or "statement_timeout_seconds" in section):
+        raise SettingsError("publish.lock_wait_seconds and publish.statement_timeout_seconds are used with publish.postgres only")
+    pg_bounds = {"lock_wait": _seconds(section, "publish", "lock_wait_seconds", 60.0, low=0.0),
+                 "statement_timeout": _seconds(section, "publish", "statement_timeout_seconds", 3600.0, low=0.001)}
     database: Path | None
     if "database" in section:
         database = _resolve(section["database"], "publish.database", base_dir)
+    elif postgres is not None:
+        database = None
     elif source.database is not None:
         database = source.database
+    elif source.postgres is not None and lakehouse is None:
+        database, postgres = None, source.postgres  # the source's database, like a DuckDB source's file
     elif lakehouse is not None:
         database = None
     else:
@@ -341,7 +403,8 @@ def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) 
         raise SettingsError(
             f"publish.on_failure = {on_failure!r} is not allowed; use " + " / ".join(f'"{p}"' for p in ON_FAILURE_POLICIES)
         )
-    return PublishSpec(database=database, schema=schema, on_failure=on_failure, lakehouse=lakehouse, **_vintage_guards(section))
+    return PublishSpec(database=database, schema=schema, on_failure=on_failure, lakehouse=lakehouse, postgres=postgres,
+                       **pg_bounds, **_vintage_guards(section))
 
 
 def _vintage_guards(section: dict[str, Any]) -> dict[str, Any]:

@@ -75,11 +75,13 @@ class PgAddress:
         return unquote(parts.username) if parts.username else "(PGUSER or the login name)"
 
     def connect_url(self) -> str:
-        """The URL handed to libpq (with a connection timeout unless the URL sets one)."""
+        """The URL handed to libpq: a connection timeout and ``application_name=arflow`` unless the URL sets them."""
         query = dict(parse_qsl(urlsplit(self.url).query))
-        if "connect_timeout" in query:
+        extra = [f"{k}={v}" for k, v in (("connect_timeout", CONNECT_TIMEOUT), ("application_name", "arflow"))
+                 if k not in query]
+        if not extra:
             return self.url
-        return self.url + ("&" if "?" in self.url else "?") + f"connect_timeout={CONNECT_TIMEOUT}"
+        return self.url + ("&" if "?" in self.url else "?") + "&".join(extra)
 
 
 def check_url(value: object, key: str) -> PgAddress:

@@ -49,7 +49,7 @@ _WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday",
 class PostgresSourceSpec:
     """``[source]`` for PostgreSQL: the URL, exactly one of ``table`` / ``query``, the columns."""
 
-    address: PgAddress
+    postgres: PgAddress
     keys: tuple[str, ...]
     period: str
     value: str
@@ -59,7 +59,7 @@ class PostgresSourceSpec:
 
     def describe(self) -> str:
         what = ".".join(self.table) if self.table else "query"
-        return f"{self.address.describe()} ({what})"
+        return f"{self.postgres.describe()} ({what})"
 
 
 def _type_name(field: pa.Field) -> str:
@@ -71,21 +71,30 @@ def _type_name(field: pa.Field) -> str:
 
 
 class PostgresSource:
-    """A read-only view of the job's PostgreSQL source; use as a context manager."""
+    """A read-only view of the job's PostgreSQL source; use as a context manager.
 
-    def __init__(self, spec: PostgresSourceSpec, frequency: str) -> None:
+    ``spec``: a :class:`PostgresSourceSpec` or the job file's ``SourceSpec``
+    with ``postgres`` set (the same attribute names).
+    """
+
+    def __init__(self, spec: Any, frequency: str) -> None:
         self.spec = spec
         self.frequency = frequency
         self._con: Any = None
         self._layout: SourceLayout | None = None
         self._calendar: SourceCalendar | None = None
 
+    @classmethod
+    def from_spec(cls, source: Any, frequency: str) -> "PostgresSource":
+        """The source of a job file's ``[source]`` with ``postgres`` set."""
+        return cls(source, frequency)
+
     def describe(self) -> str:
         return self.spec.describe()
 
     # -- opening -------------------------------------------------------------
     def __enter__(self) -> "PostgresSource":
-        self._con = connect(self.spec.address, "source", SourceError, autocommit=True)
+        self._con = connect(self.spec.postgres, "source", SourceError, autocommit=True)
         try:
             cur = self._con.cursor()
             cur.execute("BEGIN TRANSACTION ISOLATION LEVEL REPEATABLE READ READ ONLY")
@@ -94,7 +103,7 @@ class PostgresSource:
             cur.close()
         except driver_errors() as exc:
             self.close()
-            raise SourceError(f"cannot start a read-only transaction on {self.spec.address.describe()} ({detail(exc)})") from None
+            raise SourceError(f"cannot start a read-only transaction on {self.spec.postgres.describe()} ({detail(exc)})") from None
         fault_point("source-open")
         return self
 
@@ -148,7 +157,7 @@ class PostgresSource:
     def _error(self, exc: BaseException) -> SourceError | SettingsError:
         state = sqlstate(exc) or ""
         spec = self.spec
-        where = spec.address.describe()
+        where = spec.postgres.describe()
         if state == "57014":
             return SourceError(
                 f"reading the source took longer than source.statement_timeout_seconds = {spec.statement_timeout:g} and was "
@@ -163,7 +172,7 @@ class PostgresSource:
             )
         if state == "42501":
             return SourceError(
-                f"role {spec.address.user} may not read the source ({detail(exc)}); GRANT USAGE on its schema and SELECT on it "
+                f"role {spec.postgres.user} may not read the source ({detail(exc)}); GRANT USAGE on its schema and SELECT on it "
                 "to that role"
             )
         if state == "42P01" and spec.table is not None:

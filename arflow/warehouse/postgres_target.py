@@ -24,7 +24,6 @@ import hashlib
 import json
 import time
 from collections.abc import Iterator
-from dataclasses import dataclass
 from importlib import resources
 from string import Template
 from typing import Any
@@ -163,6 +162,11 @@ class PostgresTarget:
         self.lock_wait = float(lock_wait)
         self.statement_timeout = float(statement_timeout)
         self._schema = quote(layout.schema)
+
+    @classmethod
+    def from_spec(cls, publish: Any, layout: TableLayout) -> "PostgresTarget":
+        """The target of a job file's ``[publish]`` with ``postgres`` set."""
+        return cls(publish.postgres, layout, lock_wait=publish.lock_wait, statement_timeout=publish.statement_timeout)
 
     def describe(self) -> str:
         return f"{self.address.describe()} (schema {self.layout.schema}, view {self.layout.schema}.published_forecasts)"
@@ -767,12 +771,3 @@ def _rollback_close(con: Any) -> None:
 
 def _utcnow() -> dt.datetime:
     return dt.datetime.now(dt.timezone.utc).replace(tzinfo=None)
-
-
-@dataclass(frozen=True)
-class PostgresPublishSpec:
-    """``[publish]`` for PostgreSQL: the URL and the two bounds."""
-
-    address: PgAddress
-    lock_wait: float = DEFAULT_LOCK_WAIT
-    statement_timeout: float = DEFAULT_STATEMENT_TIMEOUT
