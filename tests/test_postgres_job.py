@@ -357,6 +357,18 @@ def test_sigkill_mid_publish_leaves_the_target_unchanged(pg, tmp_path, capsys, a
     assert cli(capsys, "run", str(job.path))[0] == 0  # and the target is healthy
 
 
+def test_sigterm_mid_publish_rolls_back_and_exits_130(pg, tmp_path, capsys):
+    job = Job(tmp_path, pg)
+    assert cli(capsys, "run", str(job.path), "--as-of", "2026-11")[0] == 0
+    before = pg_state(pg)
+    proc = start_paused(job, "residual_acf", tmp_path)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert err.strip().endswith("interrupted; nothing was published by this run")
+    assert pg_state(pg) == before
+
+
 def test_terminated_backend_mid_publish_is_a_one_line_error(pg, tmp_path, capsys):
     job = Job(tmp_path, pg)
     assert cli(capsys, "run", str(job.path), "--as-of", "2026-11")[0] == 0
