@@ -7,10 +7,9 @@ the warehouse it reads and a runaway query ends with a one-line error.
 
 Chunks: the series keys at or before the as-of are listed once (ordered by
 key, text keys in byte order like DuckDB, so chunks are the same on every
-run); each chunk is one statement over a key range that returns one row per
-series (``array_agg`` of periods and values), streamed as Arrow and expanded
-back to long rows. Each chunk statement stays within the timeout, and the
-client holds one chunk at a time.
+run); each chunk is one statement over a key range, streamed as Arrow and
+ordered by key on the client. Each chunk statement stays within the timeout,
+and the client holds one chunk at a time.
 """
 
 from __future__ import annotations
@@ -378,9 +377,9 @@ class PostgresSource:
     def stats(self, as_of: Any) -> tuple[int, int, Any]:
         """(rows, series, first period) at or before ``as_of``."""
         keys = ", ".join(quote(k) for k in self.spec.keys)
-        rows, series, first = self._rows(
-            f"SELECT count(*), count(DISTINCT ({keys})), min({self.period_expr()}) FROM {self._from()} "
-            f"WHERE {self.period_expr()} <= $1",
+        rows, series, first = self._rows(  # a grouped count: hashes, where count(DISTINCT (keys)) sorts
+            f"SELECT coalesce(sum(n), 0), count(*), min(f) FROM (SELECT count(*) AS n, min({self.period_expr()}) AS f "
+            f"FROM {self._from()} WHERE {self.period_expr()} <= $1 GROUP BY {keys}) AS per_series",
             (as_of,),
         )[0]
         return int(rows), int(series), first
@@ -389,8 +388,9 @@ class PostgresSource:
         """Rows at or before ``as_of``, in chunks of ``chunk_series`` whole series ordered by key.
 
         One statement lists the series keys (small); then one statement per
-        chunk aggregates that key range's rows to one row per series, which
-        is streamed and expanded back to long rows.
+        chunk reads that key range's rows (a plain scan, no server-side sort
+        or aggregate: measured several times faster than ``array_agg`` per
+        series), streamed as Arrow and ordered by key on the client.
         """
         spec = self.spec
         key_cols = list(spec.keys)
@@ -417,16 +417,15 @@ class PostgresSource:
                 params.extend(lows[i + 1])
                 bounds += f" AND {row} < ({', '.join(f'${j + 2 + n}' for j in range(n))})"
             sql = (
-                f"SELECT {', '.join(keys)}, array_agg({period} ORDER BY {period}) AS {pcol}, "
-                f"array_agg(CAST({vcol} AS double precision) ORDER BY {period}) AS {vcol} "
-                f"FROM {self._from()} WHERE {period} <= $1 AND {bounds} "
-                f"GROUP BY {', '.join(keys)} ORDER BY {', '.join(ordered)}"
+                f"SELECT {', '.join(keys)}, {period} AS {pcol}, CAST({vcol} AS double precision) AS {vcol} "
+                f"FROM {self._from()} WHERE {period} <= $1 AND {bounds}"
             )
             table = self._run(sql, tuple(params))
             frame = pl.from_arrow(_plain(table))
             assert isinstance(frame, pl.DataFrame)
             if frame.height:
-                yield frame.explode([spec.period, spec.value])
+                # whole series, ordered by key (text by bytes, as DuckDB); a series' rows keep their scan order
+                yield frame.sort(key_cols, maintain_order=True)
 
 
 def _plain(table: pa.Table) -> pa.Table:
