@@ -31,9 +31,9 @@ def reserved_columns() -> frozenset[str]:
     """Column names of arflow's output tables (lower-case); a key column may not reuse one.
 
     Read off the table definitions themselves
-    (:func:`arflow.warehouse.duckdb_store.output_columns`), so the two never drift apart.
+    (:func:`arflow.warehouse.duckdb_target.output_columns`), so the two never drift apart.
     """
-    from .warehouse.duckdb_store import output_columns
+    from .warehouse.duckdb_target import output_columns
 
     return output_columns()
 
@@ -108,7 +108,7 @@ class PublishSpec:
     ``database``: the DuckDB warehouse (None when only ``lakehouse`` is set).
     ``lakehouse``: a folder of Parquet datasets partitioned by run, each run
     made visible by a commit marker written last (see
-    :mod:`arflow.warehouse.parquet_store`).
+    :mod:`arflow.warehouse.parquet_target`).
     """
 
     database: Path | None
@@ -355,7 +355,7 @@ def _parse_columns(section: dict[str, Any]) -> tuple[tuple[str, ...], str, str, 
     lowered = [c.lower() for c in (*keys_t, period, value)]
     if len(set(lowered)) != len(lowered):
         raise SettingsError("source.keys, source.period and source.value must name different columns")
-    from .warehouse.duckdb_store import output_column_prefixes
+    from .warehouse.duckdb_target import output_column_prefixes
 
     reserved, prefixes = reserved_columns(), output_column_prefixes()
     for k in keys_t:

@@ -15,7 +15,7 @@ from arflow.errors import PublishError, SourceError
 from arflow.job import run_job
 from arflow.job_file import load_job
 from arflow.sample.panels import ar_panel, default_job, job_toml, mixed_panel, warehouse_state, write_table
-from arflow.warehouse import parquet_store as lake
+from arflow.warehouse import parquet_target as lake
 
 KEYS = ["site"]
 SORT = {"models": KEYS, "gates": KEYS + ["gate"], "residual_acf": KEYS + ["lag"], "forecasts": KEYS + ["step"],
@@ -113,11 +113,11 @@ def test_killed_writer_leaves_an_orphan_nobody_reads(job: Path) -> None:
     spec = load_job(job)
     root = job.parent / "lake"
     before = _lake_state(root)
-    from arflow.warehouse.duckdb_store import TableLayout
+    from arflow.warehouse.contract import TableLayout
 
     layout = TableLayout("arflow", ("site",), ("VARCHAR",), "DATE")
     record = _record("meters@2026-11-01")
-    lake.ParquetStore(root, layout).stage(record, {"models": pl.DataFrame({"site": ["x"], "decision": ["published"]})})
+    lake.ParquetTarget(root, layout).stage(record, {"models": pl.DataFrame({"site": ["x"], "decision": ["published"]})})
     assert (root / "arflow" / "models" / "run=meters@2026-11-01" / "attempt=2").is_dir()
     assert _lake_state(root) == before
     assert run_job(spec, as_of="2026-11").attempt == 2  # DuckDB's attempt; the lakehouse skips the orphan's number
@@ -166,7 +166,7 @@ def test_missing_lakehouse_reader_errors(tmp_path: Path) -> None:
 def _record(run_id: str):
     import datetime as dt
 
-    from arflow.warehouse.duckdb_store import RunRecord
+    from arflow.warehouse.contract import RunRecord
 
     now = dt.datetime(2026, 1, 1)
     return RunRecord(run_id=run_id, job="meters", as_of=dt.date(2026, 11, 1), started_at=now, finished_at=now,

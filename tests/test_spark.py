@@ -28,7 +28,7 @@ from arflow.errors import SchemaError, SourceError  # noqa: E402
 from arflow.job import prepare_demo, run_job, validate_job  # noqa: E402
 from arflow.job_file import load_job  # noqa: E402
 from arflow.sample.panels import warehouse_state  # noqa: E402
-from arflow.warehouse import parquet_store as lake  # noqa: E402
+from arflow.warehouse import parquet_target as lake  # noqa: E402
 
 pytestmark = [pytest.mark.spark, pytest.mark.filterwarnings("ignore::DeprecationWarning"),
               pytest.mark.filterwarnings("ignore::FutureWarning")]

@@ -14,7 +14,7 @@ import pytest
 
 from arflow.cli import main
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
-from arflow.warehouse import parquet_store
+from arflow.warehouse import parquet_target as parquet_store
 
 #: columns that hold wall-clock times (and runs.source, the source path): two targets that ran the same vintages
 #: from two folders differ only there

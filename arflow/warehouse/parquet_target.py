@@ -47,17 +47,17 @@ import duckdb
 import polars as pl
 
 from ..errors import PublishError, SourceError
+from ..results import RESULT_TABLES, SERIES_STATUS, VIEW_TABLES
 from ..runtime import fault_point
-from .duckdb_store import VIEW_FILE, RunRecord, TableLayout, render_sql
+from .contract import LAKEHOUSE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
+from .duckdb_source import parse_vintage
+from .duckdb_target import VIEW_FILE, render_sql
 from .identifiers import check_identifier
+from .stage import StagedRun
 
 FORMAT_VERSION = 1
 COMMITS = "_commits"
 LAYOUT_FILE = "_layout.json"
-#: Tables the published_forecasts reader uses (a held run keeps the earlier attempt's files of these).
-VIEW_TABLES = ("series_status", "forecasts")
-#: Tables every run writes (further result frames, e.g. backtests, are written after these).
-BASE_TABLES = ("series_status", "models", "gates", "residual_acf", "forecasts")
 
 
 def run_dir_name(run_id: str) -> str:
@@ -112,7 +112,7 @@ def store_root(lakehouse: Path, schema: str) -> Path:
 
 
 @dataclass
-class StagedRun:
+class LakehousePending:
     """A run whose files are written but not yet visible; :meth:`commit` or :meth:`abort` it."""
 
     root: Path
@@ -170,39 +170,58 @@ class StagedRun:
         self.done = True
 
 
-class ParquetStore:
-    """Writes runs as Parquet datasets under ``<lakehouse>/<schema>``."""
+class ParquetTarget:
+    """Writes runs as Parquet datasets under ``<lakehouse>/<schema>`` (``[publish] lakehouse``)."""
+
+    commit_order = LAKEHOUSE_ORDER
 
     def __init__(self, lakehouse: Path, layout: TableLayout) -> None:
         self.lakehouse = Path(lakehouse)
         self.layout = layout
         self.root = store_root(self.lakehouse, layout.schema)
 
-    def describe(self) -> str:
-        return f"{self.root} (Parquet, committed runs listed in {COMMITS}/)"
+    @classmethod
+    def from_spec(cls, publish: Any, layout: TableLayout) -> "ParquetTarget":
+        """The target of ``[publish] lakehouse`` (``publish``: a ``PublishSpec``)."""
+        return cls(publish.lakehouse, layout)
 
-    def _check_layout(self) -> None:
+    def describe(self) -> str:
+        return f"lakehouse {self.root} (Parquet, committed runs only)"
+
+    def preflight(self) -> None:
+        """Nothing to reach ahead of time: the folder is checked by :meth:`check_layout`."""
+
+    def check_layout(self) -> str:
+        """Read-only: the folder's layout file matches this job's layout (or there is none yet)."""
         if not self.lakehouse.parent.is_dir():
             raise PublishError(
                 f"folder {self.lakehouse.parent} of publish.lakehouse does not exist; create it or fix the path"
             )
-        want = {"keys": list(self.layout.keys), "key_types": list(self.layout.key_types), "period_type": self.layout.period_type}
-        path = self.root / LAYOUT_FILE
-        have = _read_marker(path)
+        have = _read_marker(self.root / LAYOUT_FILE)
         if have is None:
+            return "lakehouse folder will be created"
+        check_layout_match(f"lakehouse folder {self.root}", have["keys"], have["period_type"], self.layout)
+        return "lakehouse folder exists"
+
+    def latest_vintage(self, job: str) -> Any | None:
+        """The job's latest committed vintage that changed the view (None when none)."""
+        values = [m["as_of"] for m in _markers(self.root) if m.get("job") == job and m.get("changed_view", True)]
+        if not values:
+            return None
+        ptype = (_read_marker(self.root / LAYOUT_FILE) or {}).get("period_type", "DATE")
+        return max(parse_vintage(v, ptype) for v in values)
+
+    def _check_layout(self) -> None:
+        self.check_layout()
+        path = self.root / LAYOUT_FILE
+        if _read_marker(path) is None:
+            want = {"keys": list(self.layout.keys), "key_types": list(self.layout.key_types), "period_type": self.layout.period_type}
             (self.root / COMMITS).mkdir(parents=True, exist_ok=True)
             _write_json_atomic(path, want)
-            return
-        if [k.lower() for k in have["keys"]] != [k.lower() for k in want["keys"]]:
-            raise PublishError(
-                f"lakehouse folder {self.root} holds results keyed by ({', '.join(have['keys'])}), this job's keys are "
-                f"({', '.join(want['keys'])}); publish this job to another schema with [publish] schema"
-            )
-        if have["period_type"] != want["period_type"]:
-            raise PublishError(
-                f"lakehouse folder {self.root} holds {have['period_type']} periods, this job's are {want['period_type']}; "
-                "publish this job to another schema with [publish] schema"
-            )
+
+    def prepare(self, record: RunRecord, staged: StagedRun) -> LakehousePending:
+        """Write every table of the staged run into a new attempt folder that no marker names yet."""
+        return self.stage(record, {t: staged.frame(t) for t in RESULT_TABLES})
 
     def _next_attempt(self, run_id: str) -> int:
         seen = [0]
@@ -217,21 +236,21 @@ class ParquetStore:
                     continue
         return max(seen) + 1
 
-    def stage(self, record: RunRecord, frames: dict[str, pl.DataFrame]) -> StagedRun:
+    def stage(self, record: RunRecord, frames: dict[str, pl.DataFrame]) -> LakehousePending:
         """Write every table of a run into a new attempt folder that no marker names yet."""
         try:
             self._check_layout()
             attempt = self._next_attempt(record.run_id)
         except OSError as exc:
             raise PublishError(f"cannot write to lakehouse {self.root} ({exc}); check publish.lakehouse") from None
-        staged = StagedRun(self.root, record, attempt, {})
+        staged = LakehousePending(self.root, record, attempt, {})
         try:
             models = frames["models"]
             status = models.select(*self.layout.keys, "decision").with_columns(
                 pl.lit(record.job).alias("job"), pl.lit(record.as_of).alias("as_of"), pl.lit(record.on_failure).alias("on_failure")
             ).select("job", "as_of", *self.layout.keys, "decision", "on_failure") if models.height else None
-            ordered: dict[str, pl.DataFrame | None] = {"series_status": status}
-            ordered.update({name: frames.get(name) for name in BASE_TABLES[1:]})
+            ordered: dict[str, pl.DataFrame | None] = {SERIES_STATUS: status}
+            ordered.update({name: frames.get(name) for name in RESULT_TABLES})
             ordered.update({name: f for name, f in frames.items() if name not in ordered})
             if record.held:
                 for name in VIEW_TABLES:
@@ -258,7 +277,7 @@ class ParquetStore:
             raise
         return staged
 
-    def _write(self, staged: StagedRun, table: str, frame: pl.DataFrame) -> None:
+    def _write(self, staged: LakehousePending, table: str, frame: pl.DataFrame) -> None:
         check_identifier(table, "table")
         folder = self.root / table / f"run={run_dir_name(staged.record.run_id)}" / f"attempt={staged.attempt}"
         folder.mkdir(parents=True, exist_ok=False)
@@ -272,27 +291,7 @@ class ParquetStore:
 
 
 def _runs_frame(record: RunRecord, attempt: int) -> pl.DataFrame:
-    return pl.DataFrame({
-        "job": [record.job],
-        "as_of": [record.as_of],
-        "attempt": [attempt],
-        "started_at": [record.started_at],
-        "finished_at": [record.finished_at],
-        "duration_seconds": [(record.finished_at - record.started_at).total_seconds()],
-        "status": [record.status],
-        "series_total": [record.series_total],
-        "series_published": [record.series_published],
-        "series_quarantined": [record.series_quarantined],
-        "quarantine_share": [record.quarantine_share],
-        "reason_counts": [json.dumps(record.reason_counts, sort_keys=True)],
-        "on_failure": [record.on_failure],
-        "frequency": [record.frequency],
-        "horizon": [record.horizon],
-        "coverage": [list(record.coverage)],
-        "source": [record.source],
-        "config_sha256": [record.config_sha256],
-        "arflow_version": [record.arflow_version],
-    })
+    return pl.DataFrame({k: [v] for k, v in runs_row(record, attempt).items()})
 
 
 def _read_marker(path: Path) -> dict[str, Any] | None:
