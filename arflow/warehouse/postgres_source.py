@@ -25,7 +25,8 @@ import pyarrow as pa
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
 from ..runtime import fault_point
-from .duckdb_source import STEP_LIMIT, SourceCalendar, SourceLayout, describe_row, normalise_as_of
+from .contract import SourceLayout, SourceStats
+from .duckdb_source import STEP_LIMIT, SourceCalendar, describe_row, normalise_as_of
 from .identifiers import quote, quote_qualified
 from .postgres_connection import PgAddress, connect, detail, driver_errors, lost_connection, sqlstate
 
@@ -374,15 +375,15 @@ class PostgresSource:
         types = self.layout().key_types
         return [f'{k} COLLATE "C"' if t == "VARCHAR" else k for k, t in zip(keys, types)]
 
-    def stats(self, as_of: Any) -> tuple[int, int, Any]:
-        """(rows, series, first period) at or before ``as_of``."""
+    def stats(self, as_of: Any) -> SourceStats:
+        """Rows, series and the first period at or before ``as_of``."""
         keys = ", ".join(quote(k) for k in self.spec.keys)
         rows, series, first = self._rows(  # a grouped count: hashes, where count(DISTINCT (keys)) sorts
             f"SELECT coalesce(sum(n), 0), count(*), min(f) FROM (SELECT count(*) AS n, min({self.period_expr()}) AS f "
             f"FROM {self._from()} WHERE {self.period_expr()} <= $1 GROUP BY {keys}) AS per_series",
             (as_of,),
         )[0]
-        return int(rows), int(series), first
+        return SourceStats(int(rows), int(series), first)
 
     def chunks(self, as_of: Any, chunk_series: int) -> Iterator[pl.DataFrame]:
         """Rows at or before ``as_of``, in chunks of ``chunk_series`` whole series ordered by key.

@@ -11,7 +11,7 @@ that goes wrong before it, a kill of the process included, leaves the
 target exactly as it was (the server rolls back a transaction whose client
 went away).
 
-The semantics mirror :class:`arflow.warehouse.duckdb_store.DuckDBStore`
+The semantics mirror :class:`arflow.warehouse.duckdb_target.DuckDBTarget`
 (re-runs replace their vintage, keep-previous / withdraw, ``hold_on_alarm``,
 accuracy tracking across vintages, the far-ahead guard, schema ownership):
 the two targets publish the same rows.
@@ -21,7 +21,6 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
-import json
 import time
 from collections.abc import Iterator
 from importlib import resources
@@ -34,9 +33,10 @@ import pyarrow.parquet as pq
 from ..errors import PublishError
 from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
 from ..settings import MAX_COVERAGE_LEVELS
-from .duckdb_store import (
-    ACCURACY_VIEW, COVERAGE_COLUMNS, DDL_FILES, MARKER_FILE, MARKER_TABLE, RUN_TABLES, VIEW_FILE, RunRecord, TableLayout,
-    _arflow_version, _expected_columns,
+from ..results import RUN_TABLES
+from .contract import DATABASE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
+from .duckdb_target import (
+    ACCURACY_VIEW, COVERAGE_COLUMNS, DDL_FILES, MARKER_FILE, MARKER_TABLE, VIEW_FILE, expected_columns,
 )
 from .identifiers import quote
 from .postgres_connection import PgAddress, connect, detail, driver_errors, lost_connection, sqlstate
@@ -55,6 +55,8 @@ _PG_TYPES = {
 }
 #: PostgreSQL's own spelling of a type (format_type) where it differs from the DDL's
 _FORMATTED = {"timestamp": "timestamp without time zone"}
+#: format_type() of a period column -> arflow's period type
+_PERIOD_TYPES = {"date": "DATE", "timestamp without time zone": "TIMESTAMP", "bigint": "BIGINT"}
 #: format_type() -> Arrow type the bulk load sends (binary COPY needs the exact type)
 _ARROW = {
     "text": pa.string(), "smallint": pa.int16(), "integer": pa.int32(), "bigint": pa.int64(),
@@ -153,7 +155,7 @@ class _Interruptible:
 class PostgresTarget:
     """Publishes runs into ``layout.schema`` of the database at ``address``."""
 
-    commit_order = 0
+    commit_order = DATABASE_ORDER
 
     def __init__(self, address: PgAddress, layout: TableLayout, *, lock_wait: float = DEFAULT_LOCK_WAIT,
                  statement_timeout: float = DEFAULT_STATEMENT_TIMEOUT) -> None:
@@ -286,7 +288,7 @@ class PostgresTarget:
         finally:
             cur.close()
         self._lock(con)
-        self._ensure_tables(con, labels)
+        self._ensure_tables(con, labels, record.arflow_version)
         (previous,) = _fetch(con, f"SELECT max(attempt) FROM {s}.runs WHERE run_id = $1", (record.run_id,))[0]
         attempt = int(previous or 0) + 1
         self._check_jump(con, record)
@@ -366,16 +368,9 @@ class PostgresTarget:
         if status is not None:
             fixed = ("run_id", "job", "as_of", "decision", "on_failure")
             keys = [c for c in status if c not in fixed]
-            if [k.lower() for k in keys] != [k.lower() for k in layout.keys]:
-                raise PublishError(
-                    f"{where} holds results keyed by ({', '.join(keys)}), this job's keys are "
-                    f"({', '.join(layout.keys)}); {fix}"
-                )
-            if status.get("as_of") != formatted(layout.period_type):
-                raise PublishError(
-                    f"{where} holds {status.get('as_of')} periods, this job's are {formatted(layout.period_type)}; {fix}"
-                )
-        expected = {t: [(c, formatted(typ)) for c, typ in cols] for t, cols in _expected_columns(layout).items()}
+            period_type = _PERIOD_TYPES.get(status.get("as_of", ""), status.get("as_of", "?"))
+            check_layout_match(where, keys, period_type, layout)
+        expected = {t: [(c, formatted(typ)) for c, typ in cols] for t, cols in expected_columns(layout).items()}
         ours = [t for t in DDL_FILES if t in present]
         recorded: dict[str, set[str]] = {}
         if MARKER_TABLE in present:
@@ -405,7 +400,8 @@ class PostgresTarget:
                         raise PublishError(f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)")
         return [t for t in DDL_FILES if t not in present], new_columns
 
-    def _ensure_tables(self, con: Any, labels: tuple[str, ...]) -> None:
+    def _ensure_tables(self, con: Any, labels: tuple[str, ...], version: str) -> None:
+        self._version = version
         s = self._schema
         present = _table_columns(con, self.layout.schema)
         missing, new_columns = self._check_schema(con, present)
@@ -417,14 +413,14 @@ class PostgresTarget:
                 _exec(con, render_pg_sql(name, self.layout))
         for table, column, kind in new_columns:
             _exec(con, f"ALTER TABLE {s}.{quote(table)} ADD COLUMN {quote(column)} {kind}")
-        expected = _expected_columns(self.layout)
+        expected = expected_columns(self.layout)
         now = _utcnow()
         for name in DDL_FILES:
             cols = ",".join(c.lower() for c, _ in expected[name])
             if name in missing or name not in marked:
                 _exec(con, f"INSERT INTO {s}.{MARKER_TABLE} VALUES ($1, $2, 'arflow', $3, string_to_array($4, ','), $5, "
                            "string_to_array($6, ','))",
-                      (name, now, _arflow_version(), ",".join(self.layout.keys), self.layout.period_type, cols))
+                      (name, now, self._version, ",".join(self.layout.keys), self.layout.period_type, cols))
             elif any(t == name for t, _, _ in new_columns):
                 _exec(con, f"UPDATE {s}.{MARKER_TABLE} SET columns = string_to_array($1, ',') WHERE table_name = $2", (cols, name))
         present = _table_columns(con, self.layout.schema)
@@ -563,16 +559,7 @@ class PostgresTarget:
         )
 
     def _insert_run(self, con: Any, record: RunRecord, attempt: int, columns: dict[str, dict[str, str]]) -> None:
-        duration = (record.finished_at - record.started_at).total_seconds()
-        values = {
-            "run_id": record.run_id, "job": record.job, "as_of": record.as_of, "attempt": attempt,
-            "started_at": record.started_at, "finished_at": record.finished_at, "duration_seconds": duration,
-            "status": record.status, "series_total": record.series_total, "series_published": record.series_published,
-            "series_quarantined": record.series_quarantined, "quarantine_share": record.quarantine_share,
-            "reason_counts": json.dumps(record.reason_counts, sort_keys=True), "on_failure": record.on_failure,
-            "frequency": record.frequency, "horizon": record.horizon, "coverage": list(record.coverage),
-            "source": record.source, "config_sha256": record.config_sha256, "arflow_version": record.arflow_version,
-        }
+        values = {"run_id": record.run_id, **runs_row(record, attempt)}
         self._ingest(con, "runs", {k: [v] for k, v in values.items()}, columns)
 
     def _ensure_views(self, con: Any, columns: dict[str, dict[str, str]]) -> None:
