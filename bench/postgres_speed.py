@@ -82,10 +82,10 @@ def instrument() -> dict[str, float]:
     wrap(pt.PostgresTarget, "_delete_forecasts_keeping_vetted", lambda a: "keep-previous delete of forecasts")
     wrap(pt.PostgresTarget, "_record_accuracy", lambda a: "accuracy (actuals COPY + scoring)")
     wrap(pt.PostgresTarget, "_ensure_tables", lambda a: "checks + DDL")
-    wrap(pt.PostgresTarget, "_lock", lambda a: "advisory lock")
+    wrap(pt.PostgresTarget, "lock_schema", lambda a: "advisory lock")
     wrap(pt.PostgresTarget, "_ensure_views", lambda a: "views")
     wrap(pt.PostgresPublication, "commit", lambda a: "COMMIT")
-    original_exec = pt._exec
+    original_exec = pt.execute
 
     def exec_timed(con, sql, params=None):
         t0 = time.perf_counter()
@@ -94,7 +94,7 @@ def instrument() -> dict[str, float]:
         finally:
             if sql.lstrip().startswith("DELETE"):
                 spent["deletes of the vintage's earlier rows"] += time.perf_counter() - t0
-    pt._exec = exec_timed
+    pt.execute = exec_timed
     return spent
 
 
@@ -156,11 +156,11 @@ def plain_rows(kept: dict, admin_url: str, schema: str) -> dict:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    from arflow.warehouse.postgres_target import _table_columns, arrow_type
+    from arflow.warehouse.postgres_target import table_columns, arrow_type
 
     record, layout = kept["record"], kept["layout"]
     with dbapi.connect(admin_url) as con:
-        columns = _table_columns(con, schema)
+        columns = table_columns(con, schema)
     out = {}
     for t in ("models", "gates", "residual_acf", "forecasts", "backtests"):
         parts = []

@@ -493,3 +493,23 @@ def test_postgres_demo_command(pg, tmp_path, capsys):
     assert pg.fetch("SELECT count(*) FROM water.monthly_demand") == [(35262,)]
     assert pg.fetch("SELECT count(DISTINCT zone) > 200 FROM arflow.published_forecasts") == [(True,)]
     assert (tmp_path / "demo_job_postgres.toml").is_file()
+
+
+def test_vintages_and_retract_on_postgres(pg, tmp_path, capsys):
+    job = Job(tmp_path, pg)
+    assert cli(capsys, "run", str(job.path), "--as-of", "2026-11")[0] == 0
+    before = pg_state(pg)
+    assert cli(capsys, "run", str(job.path))[0] == 0
+    code, out, err = cli(capsys, "vintages", str(job.path))
+    assert code == 0, err
+    assert "2026-11-01" in out and "2026-12-01" in out
+    code, out, err = cli(capsys, "retract", str(job.path), "--as-of", "2026-12", "--yes")
+    assert code == 0, err
+    after = pg_state(pg)
+    for table in ("models", "gates", "forecasts", "series_status", "published_forecasts", "runs", "vintages"):
+        assert after[table] == before[table], table
+    (removal,) = pg.fetch("SELECT job, as_of, run_id, rows_removed FROM arflow.vintage_removals")
+    assert removal[:3] == ("meters", dt.date(2026, 12, 1), "meters@2026-12-01")
+    assert json.loads(removal[3])["forecasts"] > 0
+    code, _, err = cli(capsys, "retract", str(job.path), "--as-of", "2020-01", "--yes")
+    assert code == 2 and "has no vintage 2020-01-01" in err

@@ -180,7 +180,7 @@ class PostgresTarget:
     def _where(self) -> str:
         return f"schema {self.layout.schema} in {self.address.describe()}"
 
-    def _error(self, exc: BaseException, doing: str) -> PublishError:
+    def error_for(self, exc: BaseException, doing: str) -> PublishError:
         state = sqlstate(exc) or ""
         fix_rights = (
             f"grant role {self.address.user} CREATE on the database (to create the schema) or USAGE and CREATE on "
@@ -208,15 +208,15 @@ class PostgresTarget:
         """Before reading or fitting: the server is reachable, the login works and the schema is writable."""
         con = self._connect()
         try:
-            (can_create_schema,) = _fetch(con, "SELECT has_database_privilege(current_database(), 'CREATE')")[0]
-            found = _fetch(con, "SELECT nspname FROM pg_namespace WHERE nspname = $1", (self.layout.schema,))
+            (can_create_schema,) = fetch_rows(con, "SELECT has_database_privilege(current_database(), 'CREATE')")[0]
+            found = fetch_rows(con, "SELECT nspname FROM pg_namespace WHERE nspname = $1", (self.layout.schema,))
             schema = found[0][0] if found else None
             writable = None
             if schema is not None:
-                (writable,) = _fetch(con, "SELECT has_schema_privilege($1, 'USAGE') AND has_schema_privilege($1, 'CREATE')",
+                (writable,) = fetch_rows(con, "SELECT has_schema_privilege($1, 'USAGE') AND has_schema_privilege($1, 'CREATE')",
                                      (self.layout.schema,))[0]
         except driver_errors() as exc:
-            raise self._error(exc, "read the catalogue of") from None
+            raise self.error_for(exc, "read the catalogue of") from None
         finally:
             _close(con)
         if schema is None and not can_create_schema:
@@ -234,11 +234,11 @@ class PostgresTarget:
         """Read-only look at the target for ``validate`` and dry runs; returns a status note."""
         con = self._connect()
         try:
-            present = _table_columns(con, self.layout.schema)
+            present = table_columns(con, self.layout.schema)
             self._check_schema(con, present)
             return "tables exist" if "series_status" in present else "tables will be created"
         except driver_errors() as exc:
-            raise self._error(exc, "read") from None
+            raise self.error_for(exc, "read") from None
         finally:
             _close(con)
 
@@ -246,11 +246,11 @@ class PostgresTarget:
         """The job's latest vintage that changed the view (None when none, or no table yet)."""
         con = self._connect()
         try:
-            if "vintages" not in _table_columns(con, self.layout.schema):
+            if "vintages" not in table_columns(con, self.layout.schema):
                 return None
-            return _fetch(con, f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = $1", (job,))[0][0]
+            return fetch_rows(con, f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = $1", (job,))[0][0]
         except driver_errors() as exc:
-            raise self._error(exc, "read") from None
+            raise self.error_for(exc, "read") from None
         finally:
             _close(con)
 
@@ -265,9 +265,9 @@ class PostgresTarget:
             attempt = self._write(con, record, staged, labels)
         except BaseException as exc:
             unwatch_connection(guard)
-            _rollback_close(con)
+            rollback_close(con)
             if isinstance(exc, driver_errors()):
-                raise self._error(exc, "write") from None
+                raise self.error_for(exc, "write") from None
             raise
         return PostgresPublication(self, con, guard, attempt)
 
@@ -287,9 +287,9 @@ class PostgresTarget:
             cur.execute("SET LOCAL idle_in_transaction_session_timeout = 0")
         finally:
             cur.close()
-        self._lock(con)
+        self.lock_schema(con)
         self._ensure_tables(con, labels, record.arflow_version)
-        (previous,) = _fetch(con, f"SELECT max(attempt) FROM {s}.runs WHERE run_id = $1", (record.run_id,))[0]
+        (previous,) = fetch_rows(con, f"SELECT max(attempt) FROM {s}.runs WHERE run_id = $1", (record.run_id,))[0]
         attempt = int(previous or 0) + 1
         self._check_jump(con, record)
         held = record.held
@@ -299,10 +299,10 @@ class PostgresTarget:
             if table in untouched or (table == "forecasts" and keep_vetted):
                 continue
             column = "recorded_by" if table == "accuracy" else "run_id"
-            _exec(con, f"DELETE FROM {s}.{quote(table)} WHERE {quote(column)} = $1", (record.run_id,))
+            execute(con, f"DELETE FROM {s}.{quote(table)} WHERE {quote(column)} = $1", (record.run_id,))
         if not held:
-            _exec(con, f"DELETE FROM {s}.vintages WHERE job = $1 AND as_of = $2", (record.job, record.as_of))
-        columns = _table_columns(con, self.layout.schema)
+            execute(con, f"DELETE FROM {s}.vintages WHERE job = $1 AND as_of = $2", (record.job, record.as_of))
+        columns = table_columns(con, self.layout.schema)
         for table in RUN_TABLES:
             if table in untouched or table == "series_status":
                 continue  # series_status is written from the loaded models rows
@@ -323,30 +323,30 @@ class PostgresTarget:
         self._insert_run(con, record, attempt, columns)
         fault_point("runs")
         if not held:
-            self._ingest(con, "vintages", {
+            self.insert_rows(con, "vintages", {
                 "job": [record.job], "as_of": [record.as_of], "run_id": [record.run_id], "attempt": [attempt],
                 "published_at": [_utcnow()],
             }, columns)
-            _exec(con, f"DELETE FROM {s}.job_policy WHERE job = $1", (record.job,))
-            self._ingest(con, "job_policy", {
+            execute(con, f"DELETE FROM {s}.job_policy WHERE job = $1", (record.job,))
+            self.insert_rows(con, "job_policy", {
                 "job": [record.job], "frequency": [record.frequency], "stale_after_periods": [record.stale_after_periods],
             }, columns)
         fault_point("vintages")
         self._ensure_views(con, columns)
         return attempt
 
-    def _lock(self, con: Any) -> None:
+    def lock_schema(self, con: Any) -> None:
         """The schema's advisory lock (held to the end of the transaction): wait up to ``lock_wait`` seconds."""
         deadline = time.monotonic() + self.lock_wait
         sql = "SELECT pg_try_advisory_xact_lock($1::integer, hashtext($2))"
         while True:
-            (got,) = _fetch(con, sql, (LOCK_CLASS, self.layout.schema))[0]
+            (got,) = fetch_rows(con, sql, (LOCK_CLASS, self.layout.schema))[0]
             if got:
                 return
             if time.monotonic() >= deadline:
                 break
             time.sleep(min(0.2, max(0.0, deadline - time.monotonic())))
-        holder = _fetch(
+        holder = fetch_rows(
             con,
             "SELECT l.pid, a.application_name, a.usename FROM pg_locks AS l LEFT JOIN pg_stat_activity AS a ON a.pid = l.pid "
             "WHERE l.locktype = 'advisory' AND l.granted AND l.classid::bigint = ($1::bigint & 4294967295) "
@@ -374,7 +374,7 @@ class PostgresTarget:
         ours = [t for t in DDL_FILES if t in present]
         recorded: dict[str, set[str]] = {}
         if MARKER_TABLE in present:
-            rows = _fetch(con, f"SELECT table_name, array_to_string(columns, ',') FROM {self._schema}.{MARKER_TABLE}")
+            rows = fetch_rows(con, f"SELECT table_name, array_to_string(columns, ',') FROM {self._schema}.{MARKER_TABLE}")
             recorded = {str(t).lower(): set(str(c).split(",")) for t, c in rows}
         elif ours:
             for table in ours:
@@ -403,27 +403,27 @@ class PostgresTarget:
     def _ensure_tables(self, con: Any, labels: tuple[str, ...], version: str) -> None:
         self._version = version
         s = self._schema
-        present = _table_columns(con, self.layout.schema)
+        present = table_columns(con, self.layout.schema)
         missing, new_columns = self._check_schema(con, present)
-        _exec(con, f"CREATE SCHEMA IF NOT EXISTS {s}")
-        _exec(con, render_pg_sql(MARKER_FILE, self.layout))
-        marked = {str(r[0]) for r in _fetch(con, f"SELECT table_name FROM {s}.{MARKER_TABLE}")}
+        execute(con, f"CREATE SCHEMA IF NOT EXISTS {s}")
+        execute(con, render_pg_sql(MARKER_FILE, self.layout))
+        marked = {str(r[0]) for r in fetch_rows(con, f"SELECT table_name FROM {s}.{MARKER_TABLE}")}
         for name in DDL_FILES:
             if name in missing:
-                _exec(con, render_pg_sql(name, self.layout))
+                execute(con, render_pg_sql(name, self.layout))
         for table, column, kind in new_columns:
-            _exec(con, f"ALTER TABLE {s}.{quote(table)} ADD COLUMN {quote(column)} {kind}")
+            execute(con, f"ALTER TABLE {s}.{quote(table)} ADD COLUMN {quote(column)} {kind}")
         expected = expected_columns(self.layout)
         now = _utcnow()
         for name in DDL_FILES:
             cols = ",".join(c.lower() for c, _ in expected[name])
             if name in missing or name not in marked:
-                _exec(con, f"INSERT INTO {s}.{MARKER_TABLE} VALUES ($1, $2, 'arflow', $3, string_to_array($4, ','), $5, "
+                execute(con, f"INSERT INTO {s}.{MARKER_TABLE} VALUES ($1, $2, 'arflow', $3, string_to_array($4, ','), $5, "
                            "string_to_array($6, ','))",
                       (name, now, self._version, ",".join(self.layout.keys), self.layout.period_type, cols))
             elif any(t == name for t, _, _ in new_columns):
-                _exec(con, f"UPDATE {s}.{MARKER_TABLE} SET columns = string_to_array($1, ',') WHERE table_name = $2", (cols, name))
-        present = _table_columns(con, self.layout.schema)
+                execute(con, f"UPDATE {s}.{MARKER_TABLE} SET columns = string_to_array($1, ',') WHERE table_name = $2", (cols, name))
+        present = table_columns(con, self.layout.schema)
         have_levels = {c[len("lower_"):] for c in present.get("forecasts", {}) if c.startswith("lower_")}
         if len(have_levels | set(labels)) > MAX_COVERAGE_LEVELS:
             raise PublishError(
@@ -438,14 +438,14 @@ class PostgresTarget:
                 for prefix in prefixes:
                     col = f"{prefix}_{label}"
                     if col not in have:
-                        _exec(con, f"ALTER TABLE {s}.{quote(table)} ADD COLUMN {quote(col)} {kind}")
+                        execute(con, f"ALTER TABLE {s}.{quote(table)} ADD COLUMN {quote(col)} {kind}")
 
     def _check_jump(self, con: Any, record: RunRecord) -> None:
         if record.jump_limit is None:
             return
         from .duckdb_source import periods_between
 
-        (latest,) = _fetch(con, f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = $1", (record.job,))[0]
+        (latest,) = fetch_rows(con, f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = $1", (record.job,))[0]
         if latest is None or not record.as_of > latest:
             return
         gap = periods_between(record.frequency, latest, record.as_of)
@@ -480,7 +480,7 @@ class PostgresTarget:
         finally:
             cur.close()
 
-    def _ingest(self, con: Any, table: str, values: dict[str, list[Any]], columns: dict[str, dict[str, str]]) -> None:
+    def insert_rows(self, con: Any, table: str, values: dict[str, list[Any]], columns: dict[str, dict[str, str]]) -> None:
         have = columns[table]
         fields = [pa.field(n, arrow_type(have[n])) for n in values]
         self._send(con, table, pa.table({n: pa.array(v, f.type) for (n, v), f in zip(values.items(), fields)}), have)
@@ -488,7 +488,7 @@ class PostgresTarget:
     def _insert_status(self, con: Any, record: RunRecord) -> None:
         s = self._schema
         keys = ", ".join(quote(k) for k in self.layout.keys)
-        _exec(
+        execute(
             con,
             f"INSERT INTO {s}.series_status (run_id, job, as_of, {keys}, decision, on_failure) "
             f"SELECT run_id, $2, $3::{pg_type(self.layout.period_type)}, {keys}, decision, $4 FROM {s}.models WHERE run_id = $1",
@@ -499,7 +499,7 @@ class PostgresTarget:
         """An earlier attempt's forecasts go, except those of series this attempt quarantines (keep-previous)."""
         s = self._schema
         same = " AND ".join(f"m.{quote(k)} = f.{quote(k)}" for k in self.layout.keys)
-        _exec(
+        execute(
             con,
             f"DELETE FROM {s}.forecasts AS f WHERE f.run_id = $1 AND NOT EXISTS "
             f"(SELECT 1 FROM {s}.models AS m WHERE m.run_id = $1 AND m.decision <> 'published' AND {same})",
@@ -509,14 +509,14 @@ class PostgresTarget:
     def _record_accuracy(self, con: Any, staged: Any, record: RunRecord, columns: dict[str, dict[str, str]]) -> None:
         """Score earlier published vintages of this job against the actuals this run saw (once each)."""
         s = self._schema
-        earlier = _fetch(con, f"SELECT 1 FROM {s}.vintages WHERE job = $1 AND as_of < $2 LIMIT 1", (record.job, record.as_of))
+        earlier = fetch_rows(con, f"SELECT 1 FROM {s}.vintages WHERE job = $1 AND as_of < $2 LIMIT 1", (record.job, record.as_of))
         parts = list(_parts(staged, "actuals"))
         if not earlier or not parts:
             return
         keys = [quote(k) for k in self.layout.keys]
         key_defs = ", ".join(f"{k} {pg_type(t)}" for k, t in zip(keys, self.layout.key_types))
         period_t = pg_type(self.layout.period_type)
-        _exec(con, f"CREATE TEMPORARY TABLE arflow_actuals ({key_defs}, period {period_t}, value double precision) ON COMMIT DROP")
+        execute(con, f"CREATE TEMPORARY TABLE arflow_actuals ({key_defs}, period {period_t}, value double precision) ON COMMIT DROP")
         temp = {k: formatted(t) for k, t in zip(self.layout.keys, self.layout.key_types)}
         temp.update(period=formatted(self.layout.period_type), value="double precision")
         cur = con.cursor()
@@ -538,7 +538,7 @@ class PostgresTarget:
             f"ELSE a.value BETWEEN f.{quote('lower_' + lab)} AND f.{quote('upper_' + lab)} END"
             for lab in labels
         )
-        _exec(
+        execute(
             con,
             f"""
             INSERT INTO {s}.accuracy (run_id, job, {', '.join(keys)}, period, step, forecast, actual, error, abs_pct_error,
@@ -560,7 +560,7 @@ class PostgresTarget:
 
     def _insert_run(self, con: Any, record: RunRecord, attempt: int, columns: dict[str, dict[str, str]]) -> None:
         values = {"run_id": record.run_id, **runs_row(record, attempt)}
-        self._ingest(con, "runs", {k: [v] for k, v in values.items()}, columns)
+        self.insert_rows(con, "runs", {k: [v] for k, v in values.items()}, columns)
 
     def _ensure_views(self, con: Any, columns: dict[str, dict[str, str]]) -> None:
         """(Re)create the two views when their text changed (new coverage columns): a no-op on most runs.
@@ -576,7 +576,7 @@ class PostgresTarget:
             (ACCURACY_VIEW, render_pg_sql(ACCURACY_VIEW, self.layout, labels)),
         ):
             stamp = "arflow " + hashlib.sha256(sql.encode()).hexdigest()[:16]
-            found = _fetch(
+            found = fetch_rows(
                 con,
                 "SELECT obj_description(c.oid, 'pg_class') FROM pg_class AS c JOIN pg_namespace AS n ON n.oid = c.relnamespace "
                 "WHERE n.nspname = $1 AND c.relname = $2 AND c.relkind = 'v'",
@@ -626,7 +626,7 @@ class PostgresPublication:
                     f"the connection to {self._target.address.describe()} was lost at COMMIT ({detail(exc)}); the run is "
                     "either fully published or not at all: check the runs table (arflow vintages) and re-run if it is missing"
                 ) from None
-            raise self._target._error(exc, "commit to") from None
+            raise self._target.error_for(exc, "commit to") from None
         except BaseException:
             release_signals()
             self.abort()
@@ -645,7 +645,7 @@ class PostgresPublication:
         self._done = True
         unwatch_connection(self._guard)
         if rollback:
-            _rollback_close(self._con)
+            rollback_close(self._con)
         else:
             _close(self._con)
 
@@ -706,9 +706,9 @@ def _pg_column_difference(expected: list[tuple[str, str]], actual: dict[str, str
     return None, new
 
 
-def _table_columns(con: Any, schema: str) -> dict[str, dict[str, str]]:
+def table_columns(con: Any, schema: str) -> dict[str, dict[str, str]]:
     """table -> {column: format_type} of the ordinary tables in ``schema`` (in column order)."""
-    rows = _fetch(
+    rows = fetch_rows(
         con,
         "SELECT c.relname, a.attname, format_type(a.atttypid, a.atttypmod) FROM pg_attribute AS a "
         "JOIN pg_class AS c ON c.oid = a.attrelid JOIN pg_namespace AS n ON n.oid = c.relnamespace "
@@ -722,7 +722,7 @@ def _table_columns(con: Any, schema: str) -> dict[str, dict[str, str]]:
     return out
 
 
-def _exec(con: Any, sql: str, params: tuple[Any, ...] | None = None) -> None:
+def execute(con: Any, sql: str, params: tuple[Any, ...] | None = None) -> None:
     cur = con.cursor()
     try:
         cur.execute(sql, params) if params else cur.execute(sql)
@@ -730,7 +730,7 @@ def _exec(con: Any, sql: str, params: tuple[Any, ...] | None = None) -> None:
         cur.close()
 
 
-def _fetch(con: Any, sql: str, params: tuple[Any, ...] | None = None) -> list[tuple[Any, ...]]:
+def fetch_rows(con: Any, sql: str, params: tuple[Any, ...] | None = None) -> list[tuple[Any, ...]]:
     cur = con.cursor()
     try:
         cur.execute(sql, params) if params else cur.execute(sql)
@@ -748,7 +748,7 @@ def _close(con: Any) -> None:
         pass
 
 
-def _rollback_close(con: Any) -> None:
+def rollback_close(con: Any) -> None:
     try:
         con.rollback()
     except Exception:  # noqa: BLE001
