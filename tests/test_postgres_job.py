@@ -513,3 +513,32 @@ def test_vintages_and_retract_on_postgres(pg, tmp_path, capsys):
     assert json.loads(removal[3])["forecasts"] > 0
     code, _, err = cli(capsys, "retract", str(job.path), "--as-of", "2020-01", "--yes")
     assert code == 2 and "has no vintage 2020-01-01" in err
+
+
+def test_validate_and_dry_run_write_nothing(pg, tmp_path, capsys):
+    job = Job(tmp_path, pg)
+    code, out, err = cli(capsys, "validate", str(job.path))
+    assert code == 0, err
+    assert "tables will be created" in out
+    code, out, err = cli(capsys, "run", str(job.path), "--dry-run")
+    assert code == 0, err
+    assert pg.fetch("SELECT count(*) FROM pg_namespace WHERE nspname = 'arflow'") == [(0,)]
+    assert cli(capsys, "run", str(job.path))[0] == 0
+    before = pg_state(pg)
+    code, out, err = cli(capsys, "validate", str(job.path))
+    assert code == 0 and "tables exist" in out, err
+    assert cli(capsys, "run", str(job.path), "--dry-run", "--as-of", "2026-01")[0] == 0
+    assert pg_state(pg) == before
+
+
+def test_missing_driver_is_one_line_naming_the_extra(tmp_path, capsys, monkeypatch):
+    monkeypatch.setitem(sys.modules, "adbc_driver_postgresql.dbapi", None)
+    monkeypatch.setitem(sys.modules, "adbc_driver_postgresql", None)
+    job = tmp_path / "job.toml"
+    sections = default_job()
+    sections["source"].pop("database")
+    sections["source"].update(postgres="postgresql://forecaster@127.0.0.1:1/warehouse", table="public.readings")
+    job.write_text(job_toml(sections), encoding="utf-8")
+    code, out, err = cli(capsys, "run", str(job))
+    assert code == 2
+    assert err.count("\n") == 1 and "arflow-gated[postgres]" in err
