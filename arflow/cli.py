@@ -99,7 +99,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _version() -> str:
-    from .job import arflow_version
+    from .version import arflow_version
 
     return arflow_version()
 
@@ -240,17 +240,14 @@ def _cmd_validate(args: argparse.Namespace, reporter: _Reporter) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
-    from .job import run_demo
+    from .demo import run_demo, run_postgres_demo
 
     directory = args.dir.expanduser().resolve()
     if args.postgres is not None:
-        from .job import run_job
-        from .job_file import load_job
-        from .sample.postgres import prepare_postgres_demo
-        from .warehouse.postgres_connection import check_url
+        from .sample.postgres import DEMO_PG_JOB_FILE
 
-        job_file = prepare_postgres_demo(directory, check_url(args.postgres, "--postgres"))
-        outcome = run_job(load_job(job_file), on_event=reporter)
+        job_file = directory / DEMO_PG_JOB_FILE
+        outcome = run_postgres_demo(directory, args.postgres, on_event=reporter)
     else:
         job_file = directory / "demo_job.toml"
         outcome = run_demo(directory, on_event=reporter)
@@ -264,10 +261,6 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
 
 
 # -- entry point ------------------------------------------------------------
-
-def _one_line(text: object) -> str:
-    return clean_message(text)
-
 
 _INTERRUPTED = "interrupted; nothing was published by this run"
 
@@ -298,7 +291,7 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
     except ArflowError as exc:
         if _interrupted_by_signal():
             return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
-        return _fail(reporter, exc.exit_code, type(exc).__name__, _one_line(str(exc)))
+        return _fail(reporter, exc.exit_code, type(exc).__name__, clean_message(str(exc)))
     except KeyboardInterrupt:
         return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
     except Exception as exc:  # noqa: BLE001 - last line of defence
@@ -309,7 +302,7 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
             return _fail(reporter, EXIT_DATA, "DiskFull", full)
         if os.environ.get("ARFLOW_DEBUG"):
             traceback.print_exc(file=err)
-        message = f"internal error ({type(exc).__name__}: {_one_line(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
+        message = f"internal error ({type(exc).__name__}: {clean_message(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
         return _fail(reporter, EXIT_INTERNAL, type(exc).__name__, message)
     finally:
         # as the program itself (no argv given) the status is decided now: a late stop signal must not
@@ -486,7 +479,7 @@ def _disk_full(exc: BaseException) -> str | None:
 
 def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:
     reporter.clear()
-    message = _one_line(message)
+    message = clean_message(message)
     if reporter.json:
         reporter.emit({"event": "error", "exit_code": code, "error": kind, "message": message})
     reporter.err.write(f"arflow: error: {message}\n")

@@ -167,7 +167,7 @@ def run_cli(job: Job, *args: str, env: dict[str, str] | None = None, timeout: fl
 # -- the sample warehouse: PostgreSQL gives the DuckDB path's numbers ------------------------------
 
 def test_sample_warehouse_in_postgres_matches_the_duckdb_path(pg, tmp_path, capsys):
-    from arflow.job import prepare_demo
+    from arflow.demo import prepare_demo
     from arflow.sample.postgres import load_sample_into_postgres, postgres_job_text
     from arflow.warehouse.postgres_connection import check_url
 

@@ -141,7 +141,7 @@ class LakehousePending:
                        "series_quarantined": rec.series_quarantined},
         }
         path = self.root / COMMITS / f"{run_dir_name(rec.run_id)}.json"
-        previous = _read_marker(path)
+        previous = read_marker(path)
         if rec.held:
             # hold_on_alarm: the records are new, what the view reads stays as the earlier attempt had it
             marker["changed_view"] = bool(previous and previous.get("changed_view", True))
@@ -197,7 +197,7 @@ class ParquetTarget:
             raise PublishError(
                 f"folder {self.lakehouse.parent} of publish.lakehouse does not exist; create it or fix the path"
             )
-        have = _read_marker(self.root / LAYOUT_FILE)
+        have = read_marker(self.root / LAYOUT_FILE)
         if have is None:
             return "lakehouse folder will be created"
         check_layout_match(f"lakehouse folder {self.root}", have["keys"], have["period_type"], self.layout)
@@ -205,16 +205,16 @@ class ParquetTarget:
 
     def latest_vintage(self, job: str) -> Any | None:
         """The job's latest committed vintage that changed the view (None when none)."""
-        values = [m["as_of"] for m in _markers(self.root) if m.get("job") == job and m.get("changed_view", True)]
+        values = [m["as_of"] for m in read_markers(self.root) if m.get("job") == job and m.get("changed_view", True)]
         if not values:
             return None
-        ptype = (_read_marker(self.root / LAYOUT_FILE) or {}).get("period_type", "DATE")
+        ptype = (read_marker(self.root / LAYOUT_FILE) or {}).get("period_type", "DATE")
         return max(parse_vintage(v, ptype) for v in values)
 
     def _check_layout(self) -> None:
         self.check_layout()
         path = self.root / LAYOUT_FILE
-        if _read_marker(path) is None:
+        if read_marker(path) is None:
             want = {"keys": list(self.layout.keys), "key_types": list(self.layout.key_types), "period_type": self.layout.period_type}
             (self.root / COMMITS).mkdir(parents=True, exist_ok=True)
             _write_json_atomic(path, want)
@@ -225,7 +225,7 @@ class ParquetTarget:
 
     def _next_attempt(self, run_id: str) -> int:
         seen = [0]
-        marker = _read_marker(self.root / COMMITS / f"{run_dir_name(run_id)}.json")
+        marker = read_marker(self.root / COMMITS / f"{run_dir_name(run_id)}.json")
         if marker:
             seen.append(int(marker["attempt"]))
         for run_dir in self.root.glob(f"*/run={run_dir_name(run_id)}"):
@@ -294,7 +294,7 @@ def _runs_frame(record: RunRecord, attempt: int) -> pl.DataFrame:
     return pl.DataFrame({k: [v] for k, v in runs_row(record, attempt).items()})
 
 
-def _read_marker(path: Path) -> dict[str, Any] | None:
+def read_marker(path: Path) -> dict[str, Any] | None:
     try:
         return json.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
@@ -319,7 +319,7 @@ def _kept_forecasts(root: Path, record: RunRecord, models: pl.DataFrame, keys: t
     """keep-previous: the earlier attempt's forecasts of series this attempt quarantines (None when none)."""
     if record.on_failure != "keep-previous" or not models.height:
         return None
-    previous = _read_marker(root / COMMITS / f"{run_dir_name(record.run_id)}.json")
+    previous = read_marker(root / COMMITS / f"{run_dir_name(record.run_id)}.json")
     entry = previous["tables"].get("forecasts") if previous else None
     if not entry:
         return None
@@ -343,7 +343,7 @@ def _remove_attempts(root: Path, run_id: str, keep: set[int]) -> None:
 # ------------------------------------------------------------------------------------ readers
 
 
-def _markers(root: Path) -> list[dict[str, Any]]:
+def read_markers(root: Path) -> list[dict[str, Any]]:
     folder = root / COMMITS
     if not folder.is_dir():
         return []
@@ -351,7 +351,7 @@ def _markers(root: Path) -> list[dict[str, Any]]:
     for path in sorted(folder.glob("*.json")):
         if path.name.startswith("."):
             continue
-        marker = _read_marker(path)
+        marker = read_marker(path)
         if marker is not None:
             out.append(marker)
     return out
@@ -367,7 +367,7 @@ def _open_root(lakehouse: str | Path, schema: str) -> Path:
 def committed_runs(lakehouse: str | Path, schema: str = "arflow") -> pl.DataFrame:
     """One row per committed run: ``run_id``, ``job``, ``as_of`` (ISO text), ``attempt``, ``committed_at``, ``status``."""
     root = _open_root(lakehouse, schema)
-    rows = [{k: m[k] for k in ("run_id", "job", "as_of", "attempt", "committed_at", "status")} for m in _markers(root)]
+    rows = [{k: m[k] for k in ("run_id", "job", "as_of", "attempt", "committed_at", "status")} for m in read_markers(root)]
     schema_ = {"run_id": pl.String, "job": pl.String, "as_of": pl.String, "attempt": pl.Int64,
                "committed_at": pl.String, "status": pl.String}
     return pl.DataFrame(rows, schema=schema_)
@@ -377,7 +377,7 @@ def committed_files(lakehouse: str | Path, table: str, schema: str = "arflow") -
     """Absolute paths of ``table``'s files in committed runs (give them to any Parquet reader)."""
     root = _open_root(lakehouse, schema)
     files = []
-    for marker in _markers(root):
+    for marker in read_markers(root):
         entry = marker["tables"].get(table)
         if entry:
             files.extend(str(root / f) for f in entry["files"])
@@ -399,7 +399,7 @@ def published_forecasts(lakehouse: str | Path, schema: str = "arflow") -> pl.Dat
     DuckDB over the committed files only.
     """
     root = _open_root(lakehouse, schema)
-    layout_info = _read_marker(root / LAYOUT_FILE)
+    layout_info = read_marker(root / LAYOUT_FILE)
     status_files = committed_files(lakehouse, "series_status", schema)
     forecast_files = committed_files(lakehouse, "forecasts", schema)
     if layout_info is None or not status_files or not forecast_files:
@@ -413,7 +413,7 @@ def published_forecasts(lakehouse: str | Path, schema: str = "arflow") -> pl.Dat
             con.execute(f'CREATE VIEW "{schema}"."{table}" AS SELECT * FROM read_parquet([{listing}], union_by_name = true, hive_partitioning = false)')
         con.execute(f'CREATE TABLE "{schema}".job_policy (job VARCHAR, frequency VARCHAR, stale_after_periods INTEGER)')
         policy: dict[str, dict[str, Any]] = {}
-        for m in sorted(_markers(root), key=lambda m: str(m.get("committed_at"))):
+        for m in sorted(read_markers(root), key=lambda m: str(m.get("committed_at"))):
             if m.get("changed_view", True) and m.get("frequency"):
                 policy[m["job"]] = m
         for job, m in policy.items():

@@ -91,8 +91,8 @@ def arrow_type(formatted_type: str) -> pa.DataType:
 
 
 def load_pg_sql(name: str) -> str:
-    """Text of ``sql/postgres/<name>.sql`` (package data ``arflow.sql``)."""
-    return resources.files("arflow.sql").joinpath("postgres", f"{name}.sql").read_text(encoding="utf-8")
+    """Text of ``sql/postgres/<name>.sql`` (package data ``arflow.sql.postgres``)."""
+    return resources.files("arflow.sql.postgres").joinpath(f"{name}.sql").read_text(encoding="utf-8")
 
 
 def render_pg_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ...] = (),

@@ -22,13 +22,14 @@ from typing import Any
 
 import duckdb
 
-from ..errors import PublishError, SettingsError
+from ..errors import PublishError, SettingsError, one_line
 from ..results import RUN_TABLES
+from ..version import arflow_version
 from .contract import TableLayout
-from .duckdb_source import first_line, is_lock_error, lock_message, parse_vintage
-from .duckdb_target import _open, render_sql
+from .duckdb_source import is_lock_error, lock_message, parse_vintage
+from .duckdb_target import open_target, render_sql
 from .identifiers import quote
-from .parquet_target import COMMITS, _markers, _read_marker, run_dir_name, store_root
+from .parquet_target import COMMITS, LAYOUT_FILE, read_marker, read_markers, run_dir_name, store_root
 
 #: every table holding a vintage's rows, with the column naming its run (accuracy twice: scores of
 #: this vintage's forecasts, and scores of earlier vintages that this run recorded)
@@ -109,43 +110,7 @@ def _read_only(database: Path) -> duckdb.DuckDBPyConnection | None:
     except duckdb.Error as exc:
         if is_lock_error(exc):
             raise PublishError(f"target {lock_message(database)}") from None
-        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
-
-
-# ------------------------------------------------------------------------------------ latest
-
-def latest_vintage(spec: Any, *, strict: bool = True) -> Any:
-    """The job's latest vintage that changed the view (None when there is none yet).
-
-    ``strict=False`` returns None for a DuckDB target locked by another process.
-    """
-    found: list[Any] = []
-    pub = spec.publish
-    if pub.database is not None:
-        try:
-            con = _read_only(pub.database)
-        except PublishError:
-            if strict:
-                raise
-            con = None
-        if con is not None:
-            try:
-                if _has_table(con, pub.schema, "vintages"):
-                    (value,) = con.execute(
-                        f"SELECT max(as_of) FROM {quote(pub.schema)}.vintages WHERE job = ?", [spec.name]
-                    ).fetchone() or (None,)
-                    if value is not None:
-                        found.append(value)
-            finally:
-                con.close()
-    if pub.lakehouse is not None and not found:
-        root = store_root(pub.lakehouse, pub.schema)
-        values = [m["as_of"] for m in _markers(root) if m.get("job") == spec.name and m.get("changed_view", True)]
-        if values:
-            layout = _read_marker(root / "_layout.json") or {}
-            ptype = layout.get("period_type", "DATE")
-            found.append(max(parse_vintage(v, ptype) for v in values))
-    return max(found) if found else None
+        raise PublishError(f"cannot open target database {database} ({one_line(exc)}); check publish.database") from None
 
 
 # ------------------------------------------------------------------------------------ list
@@ -185,7 +150,7 @@ def list_vintages(spec: Any) -> list[VintageInfo]:
         ).fetchall()
         (current,) = con.execute(f"SELECT max(as_of) FROM {s}.vintages WHERE job = ?", [spec.name]).fetchone() or (None,)
     except duckdb.Error as exc:
-        raise PublishError(f"cannot read vintages from {pub.database} ({first_line(exc)})") from None
+        raise PublishError(f"cannot read vintages from {pub.database} ({one_line(exc)})") from None
     finally:
         con.close()
     return [
@@ -203,9 +168,9 @@ def _has_view(con: duckdb.DuckDBPyConnection, schema: str) -> bool:
 
 def _list_lakehouse(spec: Any) -> list[VintageInfo]:
     root = store_root(spec.publish.lakehouse, spec.publish.schema)
-    layout = _read_marker(root / "_layout.json") or {}
+    layout = read_marker(root / LAYOUT_FILE) or {}
     ptype = layout.get("period_type", "DATE")
-    markers = sorted((m for m in _markers(root) if m.get("job") == spec.name), key=lambda m: str(m["as_of"]))
+    markers = sorted((m for m in read_markers(root) if m.get("job") == spec.name), key=lambda m: str(m["as_of"]))
     changed = [parse_vintage(m["as_of"], ptype) for m in markers if m.get("changed_view", True)]
     current = max(changed) if changed else None
     out = []
@@ -251,7 +216,7 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
     attempts: int | None = None
     try:
         if pub.database is not None:
-            con = _read_only(pub.database) if dry_run else (_open(pub.database) if pub.database.exists() else None)
+            con = _read_only(pub.database) if dry_run else (open_target(pub.database) if pub.database.exists() else None)
             if con is None or not _has_table(con, pub.schema, "runs"):
                 raise PublishError(f"{pub.database} holds no vintages of job {spec.name}; nothing to remove")
             ptype = _period_type(con, pub.schema) or "DATE"
@@ -262,11 +227,11 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
             rows = _delete_rows(con, pub.schema, run_id, dry_run)
         if pub.lakehouse is not None:
             root = store_root(pub.lakehouse, pub.schema)
-            layout = _read_marker(root / "_layout.json") or {}
+            layout = read_marker(root / LAYOUT_FILE) or {}
             lvalue = parse_vintage(as_of, layout.get("period_type", "DATE"))
             lrun = f"{spec.name}@{_iso(lvalue)}"
             marker_path = root / COMMITS / f"{run_dir_name(lrun)}.json"
-            marker = _read_marker(marker_path)
+            marker = read_marker(marker_path)
             if marker is None and pub.database is None:
                 raise PublishError(f"lakehouse {root} has no committed vintage {_iso(lvalue)} of job {spec.name}; see arflow vintages")
             if marker is not None:
@@ -287,7 +252,7 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
         if lake_marker is not None and lake_marker.exists():
             os.replace(lake_marker, lake_marker.with_name(lake_marker.name[1:-len(".removing")]))
         if isinstance(exc, duckdb.Error):
-            raise PublishError(f"removing the vintage failed and was rolled back ({first_line(exc)}); nothing changed") from None
+            raise PublishError(f"removing the vintage failed and was rolled back ({one_line(exc)}); nothing changed") from None
         raise
     finally:
         if con is not None:
@@ -340,14 +305,8 @@ def _audit(
     con.execute(
         f"INSERT INTO {quote(schema)}.{AUDIT_TABLE} VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
         [_utcnow(), who, socket.gethostname(), job, value, run_id, attempts,
-         json.dumps(rows, sort_keys=True), _version()],
+         json.dumps(rows, sort_keys=True), arflow_version()],
     )
-
-
-def _version() -> str:
-    from ..job import arflow_version
-
-    return arflow_version()
 
 
 def _utcnow() -> dt.datetime:
