@@ -227,7 +227,7 @@ def main() -> None:
     from arflow.job_file import load_job
 
     server = pg_server.server_from_environment()
-    work = Path(tempfile.mkdtemp(prefix="arflow-pg-bench-"))
+    work = Path(tempfile.mkdtemp(prefix="arflow-pgbench-"))
     try:
         admin_db = "arflow_bench"
         with pg_server.admin(server) as con:

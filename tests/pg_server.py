@@ -115,12 +115,48 @@ def from_url(url: str) -> PgServer:
     )
 
 
+OWNER_FILE = "owner.pid"
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def sweep_orphans(bindir: Path, run_as: list[str]) -> None:
+    """Stop and remove clusters of earlier test sessions whose process is gone (killed before it could clean up)."""
+    for folder in Path(tempfile.gettempdir()).glob("arflow-pg-*"):
+        try:
+            owner = int((folder / OWNER_FILE).read_text().strip())
+        except (OSError, ValueError):
+            continue  # not ours, or still being set up
+        if _alive(owner):
+            continue
+        if (folder / "data" / "postmaster.pid").exists():
+            subprocess.run([*run_as, str(bindir / "pg_ctl"), "-D", str(folder / "data"), "-m", "immediate", "-w", "stop"],
+                           capture_output=True, timeout=60)
+        shutil.rmtree(folder, ignore_errors=True)
+
+
 def start_cluster() -> PgServer:
     """initdb + pg_ctl start in a fresh temporary folder; raises ServerUnavailable without binaries."""
     bindir = find_bindir()
     if bindir is None:
         raise ServerUnavailable("no PostgreSQL server binaries (initdb, pg_ctl) found and ARFLOW_TEST_PG_URL is not set")
     run_as: list[str] = []
+    if os.geteuid() == 0 and shutil.which("runuser"):
+        try:
+            pwd.getpwnam("postgres")
+            sweep_orphans(bindir, [shutil.which("runuser") or "runuser", "-u", "postgres", "--"])
+        except KeyError:
+            pass
+    elif os.geteuid() != 0:
+        sweep_orphans(bindir, [])
     folder = Path(tempfile.mkdtemp(prefix="arflow-pg-"))
     if os.geteuid() == 0:  # the server refuses to run as root: run it as the postgres user (or nobody)
         try:
@@ -133,6 +169,7 @@ def start_cluster() -> PgServer:
         if not runuser:
             raise ServerUnavailable("running as root without runuser: cannot start a cluster as a non-root user")
     folder.chmod(0o700)
+    (folder / OWNER_FILE).write_text(str(os.getpid()), encoding="ascii")
     pwfile = folder / "pw"
     pwfile.write_text(ADMIN_PASSWORD + "\n", encoding="ascii")
     if os.geteuid() == 0:

@@ -205,7 +205,7 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
         from . import postgres_vintages
 
         return postgres_vintages.remove_vintage(spec, as_of, dry_run=dry_run, user=who, parse=parse_vintage,
-                                                report=RemovalReport, vintage_columns=VINTAGE_COLUMNS, version=_version())
+                                                report=RemovalReport, vintage_columns=VINTAGE_COLUMNS, version=arflow_version())
     rows: dict[str, int] = {}
     notes: list[str] = []
     con = None
