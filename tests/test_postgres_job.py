@@ -285,7 +285,9 @@ def test_a_reader_sees_only_complete_runs(pg, tmp_path, capsys):
     reader = threading.Thread(target=read_loop)
     reader.start()
     try:
-        time.sleep(1.0)
+        deadline = time.monotonic() + 60
+        while len(seen) < 3 and time.monotonic() < deadline:  # a few reads while the run holds its transaction open
+            time.sleep(0.1)
         assert seen and all(s == old for s in seen)  # mid-transaction: the previous state
         resume(tmp_path, "forecasts")
         _, err = proc.communicate(timeout=120)
