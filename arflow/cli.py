@@ -93,6 +93,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     demo = sub.add_parser("demo", help="build the sample warehouse and run its job")
     demo.add_argument("--dir", type=Path, default=Path("."), help="folder for the sample database and job file (default: current folder)")
+    demo.add_argument("--postgres", metavar="URL", default=None,
+                      help="load the sample into this PostgreSQL database and run the job there "
+                           "(a password-free URL; the password comes from PGPASSWORD or ~/.pgpass)")
     common(demo)
     demo.set_defaults(handler=_cmd_demo)
     return parser
@@ -248,10 +251,17 @@ def _cmd_validate(args: argparse.Namespace, reporter: _Reporter) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
-    from .demo import run_demo
+    from .demo import run_demo, run_postgres_demo
 
     directory = args.dir.expanduser().resolve()
-    outcome = run_demo(directory, on_event=reporter)
+    if args.postgres is not None:
+        from .sample.postgres import DEMO_PG_JOB_FILE
+
+        job_file = directory / DEMO_PG_JOB_FILE
+        outcome = run_postgres_demo(directory, args.postgres, on_event=reporter)
+    else:
+        job_file = directory / "demo_job.toml"
+        outcome = run_demo(directory, on_event=reporter)
     code = _finish(outcome, reporter)
     from .cli_explain import demo_report
 
@@ -259,8 +269,8 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
     if not reporter.json:
         reporter.out.write(
             report_line +
-            f"  {'job file':<26}{directory / 'demo_job.toml'}\n"
-            f"  {'try next':<26}arflow run {directory / 'demo_job.toml'} --as-of 2024-12 --dry-run\n"
+            f"  {'job file':<26}{job_file}\n"
+            f"  {'try next':<26}arflow run {job_file} --as-of 2024-12 --dry-run\n"
         )
     return code
 

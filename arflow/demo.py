@@ -47,3 +47,12 @@ def run_demo(directory: Path, on_event: EventSink | None = None) -> JobOutcome:
     if note is not None:
         outcome = replace(outcome, notes=(*outcome.notes, note))
     return outcome
+
+
+def run_postgres_demo(directory: Path, url: str, on_event: EventSink | None = None) -> JobOutcome:
+    """``arflow demo --postgres URL``: load the sample into that database, write its job file in ``directory``, run it."""
+    from .sample.postgres import prepare_postgres_demo
+    from .warehouse.postgres_connection import check_url
+
+    job_path = prepare_postgres_demo(directory, check_url(url, "--postgres"))
+    return run_job(load_job(job_path), on_event=on_event)

@@ -26,6 +26,7 @@ from .settings import (
     FREQUENCIES, BacktestSettings, ForecastSettings, GateSettings, ModelSettings, Settings, refuse_series_fdr_on_spark,
 )
 from .warehouse.identifiers import check_identifier, check_qualified, is_identifier
+from .warehouse.postgres_connection import PgAddress, check_url
 
 ON_FAILURE_POLICIES = ("keep-previous", "withdraw")
 JOB_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
@@ -49,8 +50,10 @@ NONDETERMINISTIC_FUNCTIONS = frozenset(
     {"random", "gen_random_uuid", "uuid", "uuidv4", "uuidv7", "setseed"}
 )
 
-_SOURCE_KEYS = ("engine", "database", "parquet", "table", "query", "keys", "period", "value", "frequency")
-_PUBLISH_KEYS = ("database", "lakehouse", "schema", "on_failure", "hold_on_alarm", "stale_after_periods", "max_periods_ahead")
+_SOURCE_KEYS = ("engine", "database", "parquet", "postgres", "table", "query", "keys", "period", "value", "frequency",
+                "statement_timeout_seconds")
+_PUBLISH_KEYS = ("database", "lakehouse", "postgres", "schema", "on_failure", "hold_on_alarm", "stale_after_periods",
+                 "max_periods_ahead", "lock_wait_seconds", "statement_timeout_seconds")
 ENGINES = ("duckdb", "spark")
 _SPARK_KEYS = ("master", "partitions", "config")
 _RUN_KEYS = ("chunk_series", "workers")
@@ -88,18 +91,28 @@ class SourceSpec:
     table: tuple[str, ...] | None = None
     query: str | None = None
     engine: str = "duckdb"
+    #: a PostgreSQL source (``[source] postgres``: a password-free URL); with ``table`` or ``query``
+    postgres: PgAddress | None = None
+    #: ``[source] statement_timeout_seconds`` (PostgreSQL): the limit of each statement the source runs
+    statement_timeout: float = 600.0
 
     def __post_init__(self) -> None:
         if self.engine not in ENGINES:
             raise SettingsError(f"source.engine = {self.engine!r} is not allowed; use " + " / ".join(f'"{e}"' for e in ENGINES))
-        if self.engine == "spark":
+        if self.postgres is not None:
+            if isinstance(self.postgres, str):
+                object.__setattr__(self, "postgres", check_url(self.postgres, "source.postgres"))
+            _check_postgres_source(self)
+        elif self.engine == "spark":
             _check_spark_source(self)
         else:
             _check_duckdb_source(self)
         _check_columns(self.keys, self.period, self.value)
 
     def describe(self) -> str:
-        """Short human description for logs."""
+        """Short human description for logs (never a password)."""
+        if self.postgres is not None:
+            return f"{self.postgres.describe()} ({'.'.join(self.table) if self.table else 'query'})"
         if self.engine == "spark":
             return f"spark table {'.'.join(self.table)}" if self.table else f"spark parquet {self.parquet}"
         where = str(self.database) if self.database else f"parquet {self.parquet}"
@@ -127,9 +140,25 @@ class PublishSpec:
     stale_after_periods: int | None = None
     #: refuse a vintage more than this many periods after the job's latest one (None: per-frequency default)
     max_periods_ahead: int | None = None
+    #: a PostgreSQL target (``[publish] postgres``: a password-free URL)
+    postgres: PgAddress | None = None
+    #: PostgreSQL: how long a run waits for another run publishing to the same schema (0: fail at once)
+    lock_wait: float = 60.0
+    #: PostgreSQL: the limit of each statement of the publishing transaction
+    statement_timeout: float = 3600.0
 
     def __post_init__(self) -> None:
         from .warehouse.registry import TARGETS
+
+        if isinstance(self.postgres, str):
+            object.__setattr__(self, "postgres", check_url(self.postgres, "publish.postgres"))
+        if self.postgres is not None and self.database is not None:
+            raise SettingsError(
+                "[publish] takes one database: database (a DuckDB file) or postgres (a server URL), not both "
+                "(lakehouse may go with either)"
+            )
+        _check_seconds(self.lock_wait, "publish.lock_wait_seconds", low=0.0)
+        _check_seconds(self.statement_timeout, "publish.statement_timeout_seconds", low=0.001)
 
         if not any(getattr(self, key, None) is not None for key in TARGETS):
             raise SettingsError(
@@ -333,6 +362,12 @@ def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
         fields_["table"] = tuple(name.split(".")) if isinstance(name, str) else (name,)
     if "query" in section:
         fields_["query"] = section["query"]
+    if "postgres" in section:
+        fields_["postgres"] = section["postgres"]
+    if "statement_timeout_seconds" in section:
+        if "postgres" not in section:
+            raise SettingsError("source.statement_timeout_seconds is used with source.postgres only; remove it")
+        fields_["statement_timeout"] = section["statement_timeout_seconds"]
     keys = _required(section, "source", "keys")
     if isinstance(keys, str):
         keys = [keys]
@@ -370,6 +405,28 @@ def _check_duckdb_source(spec: SourceSpec) -> None:
         _check_deterministic(spec.query)
     if has_db and spec.table is None and spec.query is None:
         raise SettingsError("[source] needs table (e.g. table = \"sales\") or query (one SELECT statement)")
+
+
+def _check_postgres_source(spec: SourceSpec) -> None:
+    """[source] rules for PostgreSQL (``postgres`` with ``table`` or ``query``)."""
+    if spec.engine == "spark":
+        raise SettingsError('source.postgres is read by arflow itself; leave out engine = "spark" (or give Spark a table)')
+    if spec.database is not None or spec.parquet is not None:
+        raise SettingsError("[source] needs exactly one of database (a DuckDB file), parquet (files) and postgres (a server URL)")
+    if (spec.table is None) == (spec.query is None):
+        raise SettingsError("with source.postgres, [source] needs table (e.g. table = \"public.sales\") or query (one SELECT), not both")
+    if spec.table is not None and check_qualified(_table_text(spec.table), "source.table") != spec.table:
+        raise SettingsError(f"source.table = {spec.table!r} is not allowed; use table or schema.table")
+    if spec.query is not None:
+        if not isinstance(spec.query, str) or not spec.query.strip():
+            raise SettingsError("source.query must be a non-empty string holding one SELECT statement")
+        _check_deterministic(spec.query)
+    _check_seconds(spec.statement_timeout, "source.statement_timeout_seconds", low=0.001)
+
+
+def _check_seconds(value: Any, key: str, *, low: float) -> None:
+    if not (isinstance(value, (int, float)) and not isinstance(value, bool) and low <= value <= 604_800):
+        raise SettingsError(f"{key} = {value!r} is not allowed; use a number of seconds from {low:g} to 604800")
 
 
 def _check_spark_source(spec: SourceSpec) -> None:
@@ -415,11 +472,20 @@ def _check_columns(keys: tuple[str, ...], period: str, value: str) -> None:
 
 def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) -> PublishSpec:
     lakehouse = _resolve(section["lakehouse"], "publish.lakehouse", base_dir) if "lakehouse" in section else None
+    postgres: Any = section.get("postgres")
+    if postgres is None and ("lock_wait_seconds" in section or "statement_timeout_seconds" in section):
+        raise SettingsError("publish.lock_wait_seconds and publish.statement_timeout_seconds are used with publish.postgres only")
+    pg_bounds = {k: section[v] for k, v in (("lock_wait", "lock_wait_seconds"), ("statement_timeout", "statement_timeout_seconds"))
+                 if v in section}
     database: Path | None
     if "database" in section:
         database = _resolve(section["database"], "publish.database", base_dir)
+    elif postgres is not None:
+        database = None
     elif source.database is not None:
         database = source.database
+    elif source.postgres is not None and lakehouse is None:
+        database, postgres = None, source.postgres  # the source's database, like a DuckDB source's file
     elif lakehouse is not None:
         database = None
     else:
@@ -429,7 +495,8 @@ def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) 
         )
     guards = {k: section[k] for k in ("hold_on_alarm", "stale_after_periods", "max_periods_ahead") if k in section}
     return PublishSpec(database=database, schema=section.get("schema", "arflow"),
-                       on_failure=section.get("on_failure", "keep-previous"), lakehouse=lakehouse, **guards)
+                       on_failure=section.get("on_failure", "keep-previous"), lakehouse=lakehouse, postgres=postgres,
+                       **pg_bounds, **guards)
 
 
 def _parse_run(section: dict[str, Any]) -> RunOptions:

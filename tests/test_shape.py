@@ -37,7 +37,7 @@ def test_every_registered_target_satisfies_the_contract(tmp_path: Path) -> None:
     layout = TableLayout("arflow", ("site",), ("VARCHAR",), "DATE")
     publish = PublishSpec(database=tmp_path / "w.duckdb", lakehouse=tmp_path / "lake")
     targets = targets_for(publish, layout)
-    assert len(targets) == len(TARGETS) == 2
+    assert len(targets) == 2 and set(TARGETS) == {"database", "lakehouse", "postgres"}
     assert [t.commit_order for t in targets] == sorted(t.commit_order for t in targets)
     for target in targets:
         assert isinstance(target, Target)
@@ -46,6 +46,10 @@ def test_every_registered_target_satisfies_the_contract(tmp_path: Path) -> None:
         assert isinstance(target.check_layout(), str)
     # a lakehouse-only job builds one target
     assert len(targets_for(PublishSpec(database=None, lakehouse=tmp_path / "lake"), layout)) == 1
+    # PostgreSQL: the contract's shape here; its behaviour against a real server in tests/test_postgres_job.py
+    (pg,) = targets_for(PublishSpec(database=None, postgres="postgresql://forecaster@db.internal/warehouse"), layout)
+    assert isinstance(pg, Target) and pg.commit_order == targets[0].commit_order
+    assert pg.describe() == "postgresql://forecaster@db.internal/warehouse (schema arflow, view arflow.published_forecasts)"
 
 
 def test_engine_names_of_the_job_file_are_the_registry_names() -> None:

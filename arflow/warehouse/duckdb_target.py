@@ -193,6 +193,11 @@ def _expected_cached(keys: tuple[str, ...], key_types: tuple[str, ...], period_t
     return _EXPECTED[cache_key]
 
 
+def expected_columns(layout: TableLayout) -> dict[str, list[tuple[str, str]]]:
+    """table -> [(column, DuckDB type)] as arflow defines it for ``layout`` (other targets map the types)."""
+    return _expected_columns(layout)
+
+
 def output_columns() -> frozenset[str]:
     """Lower-cased names of every column of arflow's tables and views, read off the DDL files.
 

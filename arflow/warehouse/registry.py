@@ -14,11 +14,14 @@ from .contract import Source, TableLayout, Target
 from .duckdb_source import DuckDBSource
 from .duckdb_target import DuckDBTarget
 from .parquet_target import ParquetTarget
+from .postgres_source import PostgresSource
+from .postgres_target import PostgresTarget
 
 #: ``[publish]`` key -> target class (a target is configured when its key is set)
 TARGETS: dict[str, Any] = {
     "database": DuckDBTarget,
     "lakehouse": ParquetTarget,
+    "postgres": PostgresTarget,
 }
 
 
@@ -29,5 +32,7 @@ def targets_for(publish: Any, layout: TableLayout) -> list[Target]:
 
 
 def source_for(source: Any, frequency: str) -> Source:
-    """The source ``[source]`` configures (DuckDB file, query or Parquet files); not yet opened."""
+    """The source ``[source]`` configures (DuckDB file, query or Parquet files, PostgreSQL); not yet opened."""
+    if getattr(source, "postgres", None) is not None:
+        return PostgresSource.from_spec(source, frequency)
     return DuckDBSource(source, frequency)

@@ -116,8 +116,12 @@ def _read_only(database: Path) -> duckdb.DuckDBPyConnection | None:
 # ------------------------------------------------------------------------------------ list
 
 def list_vintages(spec: Any) -> list[VintageInfo]:
-    """The job's vintages, oldest first (DuckDB target; a lakehouse-only job reads the commit markers)."""
+    """The job's vintages, oldest first (DuckDB or PostgreSQL target; a lakehouse-only job reads the commit markers)."""
     pub = spec.publish
+    if getattr(pub, "postgres", None) is not None:
+        from . import postgres_vintages
+
+        return postgres_vintages.list_vintages(spec, VintageInfo)
     if pub.database is None:
         return _list_lakehouse(spec)
     con = _read_only(pub.database)
@@ -194,6 +198,14 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
     """
     pub = spec.publish
     who = user or os_user()
+    if getattr(pub, "postgres", None) is not None:
+        if pub.lakehouse is not None:
+            raise SettingsError("retract does not yet remove a vintage from PostgreSQL and a lakehouse together; "
+                                "remove it with a job file naming one of them at a time")
+        from . import postgres_vintages
+
+        return postgres_vintages.remove_vintage(spec, as_of, dry_run=dry_run, user=who, parse=parse_vintage,
+                                                report=RemovalReport, vintage_columns=VINTAGE_COLUMNS, version=arflow_version())
     rows: dict[str, int] = {}
     notes: list[str] = []
     con = None

@@ -1,0 +1,16 @@
+-- How published forecasts fared once their actuals arrived: one row per
+-- forecast vintage (run_id), series and forecast period, written once by the
+-- first run that sees the actual. covered_NN columns (added with ALTER TABLE)
+-- say whether the NN% interval held the actual.
+CREATE TABLE IF NOT EXISTS ${schema}.accuracy (
+    run_id          text NOT NULL,
+    job             text NOT NULL,
+    ${key_defs},
+    period          ${period_type} NOT NULL,
+    step            integer NOT NULL,
+    forecast        double precision,
+    actual          double precision,
+    error           double precision,
+    abs_pct_error   double precision,
+    recorded_by     text NOT NULL
+);

@@ -1,0 +1,33 @@
+-- One row per run and series: the fitted model, its diagnostics and the decision.
+-- Lists are PostgreSQL arrays.
+CREATE TABLE IF NOT EXISTS ${schema}.models (
+    run_id               text NOT NULL,
+    ${key_defs},
+    transform            text,
+    lags                 integer[],
+    intercept            double precision,
+    intercept_std_error  double precision,
+    coefficients         double precision[],
+    std_errors           double precision[],
+    t_stats              double precision[],
+    sigma                double precision,
+    n_obs                integer,
+    r_squared            double precision,
+    aic                  double precision,
+    bic                  double precision,
+    hqic                 double precision,
+    max_root_modulus     double precision,
+    stationary           boolean,
+    mean_reverting_level double precision,
+    adf_statistic        double precision,
+    adf_p_value          double precision,
+    kpss_statistic       double precision,
+    kpss_p_value         double precision,
+    first_period         ${period_type},
+    last_period          ${period_type},
+    quality_flags        text[],
+    decision             text NOT NULL,
+    reasons              text[],
+    outlier_periods      ${period_type}[],
+    outlier_effects      double precision[]
+);

@@ -1,0 +1,10 @@
+-- The decision for every series in every run, with the run's failure policy,
+-- so that the published_forecasts view is plain SQL.
+CREATE TABLE IF NOT EXISTS ${schema}.series_status (
+    run_id      text NOT NULL,
+    job         text NOT NULL,
+    as_of       ${period_type} NOT NULL,
+    ${key_defs},
+    decision    text NOT NULL,
+    on_failure  text NOT NULL
+);
