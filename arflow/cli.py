@@ -265,7 +265,7 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
     code = _finish(outcome, reporter)
     from .cli_explain import demo_report
 
-    report_line = demo_report(directory, reporter)
+    report_line = demo_report(directory, reporter, job_file)
     if not reporter.json:
         reporter.out.write(
             report_line +

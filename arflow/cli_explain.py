@@ -79,16 +79,20 @@ def _cmd_report(args: argparse.Namespace, reporter: Any) -> int:
 DEMO_REPORT = "vellmar_report.html"
 
 
-def demo_report(directory: Path, reporter: Any) -> str:
-    """Write the demo run's report beside its database; a summary line (a note naming the extra without plotly)."""
+def demo_report(directory: Path, reporter: Any, job_file: Path | None = None) -> str:
+    """Write the demo run's report beside its job file; a summary line (a note naming why when it is not written).
+
+    ``job_file`` is the demo's job (default ``demo_job.toml``); the report
+    reads a DuckDB target, so the PostgreSQL demo gets the note instead.
+    """
     from .errors import SettingsError
     from .job_file import load_job
     from .report import write_report
 
     path = directory / DEMO_REPORT
     try:
-        summary = write_report(load_job(directory / "demo_job.toml"), path)
-    except SettingsError as exc:  # the report extra is not installed
+        summary = write_report(load_job(job_file or directory / "demo_job.toml"), path)
+    except SettingsError as exc:  # the report extra is not installed, or the target is PostgreSQL
         if reporter.json:
             reporter.emit({"event": "note", "message": f"no report: {exc}"})
         return f"  {'report':<26}not written: {exc}\n"

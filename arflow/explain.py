@@ -53,6 +53,16 @@ def _q(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
 
 
+def refuse_postgres(spec: Any, command: str) -> None:
+    """One-line refusal for a job that publishes to PostgreSQL (these commands read a DuckDB target)."""
+    address = getattr(spec.publish, "postgres", None)
+    if address is not None:
+        raise SettingsError(
+            f"arflow {command} reads a DuckDB target; job {spec.name} publishes to PostgreSQL "
+            f"({address.describe()}, schema {spec.publish.schema}): query its views latest_series_status and "
+            "published_forecasts and its gates table there, or publish the job to a DuckDB database as well")
+
+
 def _open(database: Path | None) -> duckdb.DuckDBPyConnection:
     if database is None:
         raise SettingsError("arflow explain reads the job's DuckDB target; this job has no [publish] database")
@@ -106,6 +116,7 @@ def explain_series(spec: Any, key_values: dict[str, str], as_of: str | None = No
     schema = spec.publish.schema
     s = _q(schema)
     keys = tuple(spec.source.keys)
+    refuse_postgres(spec, "explain")
     con = _open(spec.publish.database)
     try:
         have = {r[0] for r in con.execute(

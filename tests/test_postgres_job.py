@@ -31,7 +31,7 @@ from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_s
 ARFLOW = [sys.executable, "-m", "arflow"]
 #: tables and views whose rows do not depend on the clock (runs/vintages/arflow_tables carry timestamps)
 COMPARED = ("models", "gates", "residual_acf", "forecasts", "backtests", "series_status", "accuracy", "job_policy",
-            "published_forecasts", "accuracy_by_horizon")
+            "published_forecasts", "accuracy_by_horizon", "latest_series_status")
 
 
 # -- helpers ------------------------------------------------------------------------------
@@ -117,7 +117,24 @@ def pg_state(pg: pg_server.ScratchDatabase, schema: str = "arflow") -> dict[str,
     with pg.admin() as con:
         names = [r[0] for r in pg_server.fetch(
             con, "SELECT table_name FROM information_schema.tables WHERE table_schema = $1 ORDER BY 1", (schema,))]
-        return {n: _sorted(pg_server.fetch(con, f'SELECT * FROM "{schema}"."{n}"')) for n in names}
+        return {n: _sorted(_fetch_decoded(con, f'SELECT * FROM "{schema}"."{n}"')) for n in names}
+
+
+def _fetch_decoded(con: Any, sql: str) -> list[tuple[Any, ...]]:
+    """Rows as pg_server.fetch gives them, with jsonb columns (series_status.failed_gates) parsed as DuckDB lists them."""
+    cur = con.cursor()
+    try:
+        cur.execute(sql)
+        table = cur.fetch_arrow_table()
+    finally:
+        cur.close()
+    cols = []
+    for field, column in zip(table.schema, table.columns):
+        values = column.to_pylist()
+        if (field.metadata or {}).get(b"POSTGRESQL:type") == b"jsonb":
+            values = [None if v is None else json.loads(v) for v in values]
+        cols.append(values)
+    return list(zip(*cols)) if cols else []
 
 
 def assert_close(a: Any, b: Any, where: str = "") -> None:

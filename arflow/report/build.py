@@ -56,6 +56,9 @@ def _finite(v: Any) -> Any:
 
 
 def _open(spec: Any) -> duckdb.DuckDBPyConnection:
+    from ..explain import refuse_postgres
+
+    refuse_postgres(spec, "report")
     database = spec.publish.database
     if database is None:
         raise SettingsError("arflow report reads the job's DuckDB target; this job has no [publish] database")

@@ -36,7 +36,8 @@ from ..settings import MAX_COVERAGE_LEVELS
 from ..results import RUN_TABLES
 from .contract import DATABASE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
 from .duckdb_target import (
-    ACCURACY_VIEW, COVERAGE_COLUMNS, DDL_FILES, MARKER_FILE, MARKER_TABLE, VIEW_FILE, expected_columns,
+    ACCURACY_VIEW, COVERAGE_COLUMNS, DDL_FILES, MARKER_FILE, MARKER_TABLE, RENAMED_COLUMNS, STATUS_VIEW, VIEW_FILE,
+    expected_columns, renamed_column,
 )
 from .identifiers import quote
 from .postgres_connection import PgAddress, connect, detail, driver_errors, lost_connection, sqlstate
@@ -65,8 +66,19 @@ _ARROW = {
 }
 
 
+#: series_status columns written besides the keys and the decision (arflow.vocabulary names)
+STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure", "reasons", "failed_gates", "warnings")
+
+
 def pg_type(duckdb_type: str) -> str:
-    """The PostgreSQL DDL type for one of arflow's (DuckDB) type names (``X[]`` too)."""
+    """The PostgreSQL DDL type for one of arflow's (DuckDB) type names (``X[]`` too).
+
+    A list of STRUCTs (``series_status.failed_gates``) is ``jsonb``: an array
+    of objects with the struct's field names (PostgreSQL drivers read
+    composite-type arrays poorly; every client reads jsonb).
+    """
+    if duckdb_type.upper().startswith("STRUCT(") and duckdb_type.endswith("[]"):
+        return "jsonb"
     if duckdb_type.endswith("[]"):
         return pg_type(duckdb_type[:-2]) + "[]"
     return _PG_TYPES[duckdb_type.upper()]
@@ -74,6 +86,8 @@ def pg_type(duckdb_type: str) -> str:
 
 def formatted(duckdb_type: str) -> str:
     """What PostgreSQL's ``format_type`` reports for a column created with :func:`pg_type`."""
+    if duckdb_type.upper().startswith("STRUCT("):
+        return pg_type(duckdb_type)
     if duckdb_type.endswith("[]"):
         return formatted(duckdb_type[:-2]) + "[]"
     base = pg_type(duckdb_type)
@@ -309,7 +323,7 @@ class PostgresTarget:
             if table == "models":
                 self._load(con, table, staged, record, columns)
                 if not held:
-                    self._insert_status(con, record)
+                    self._insert_status(con, staged, record)
                     fault_point("series_status")
             elif table == "forecasts":
                 if keep_vetted:  # uses this attempt's models rows, loaded above
@@ -366,8 +380,7 @@ class PostgresTarget:
         fix = "publish this job to another schema with [publish] schema"
         status = present.get("series_status")
         if status is not None:
-            fixed = ("run_id", "job", "as_of", "decision", "on_failure")
-            keys = [c for c in status if c not in fixed]
+            keys = [c for c in status if c not in STATUS_FIXED]
             period_type = _PERIOD_TYPES.get(status.get("as_of", ""), status.get("as_of", "?"))
             check_layout_match(where, keys, period_type, layout)
         expected = {t: [(c, formatted(typ)) for c, typ in cols] for t, cols in expected_columns(layout).items()}
@@ -379,6 +392,9 @@ class PostgresTarget:
         elif ours:
             for table in ours:
                 raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
+        # columns an earlier release named otherwise count under their new names (renamed when the run publishes)
+        present = {t: {renamed_column(t, c): typ for c, typ in cols.items()} for t, cols in present.items()}
+        recorded = {t: {renamed_column(t, c) for c in cols} for t, cols in recorded.items()}
         for table in ours:
             if table not in recorded:
                 raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
@@ -404,6 +420,8 @@ class PostgresTarget:
         self._version = version
         s = self._schema
         present = table_columns(con, self.layout.schema)
+        if rename_old_columns(con, self.layout.schema, present):
+            present = table_columns(con, self.layout.schema)
         missing, new_columns = self._check_schema(con, present)
         execute(con, f"CREATE SCHEMA IF NOT EXISTS {s}")
         execute(con, render_pg_sql(MARKER_FILE, self.layout))
@@ -485,15 +503,48 @@ class PostgresTarget:
         fields = [pa.field(n, arrow_type(have[n])) for n in values]
         self._send(con, table, pa.table({n: pa.array(v, f.type) for (n, v), f in zip(values.items(), fields)}), have)
 
-    def _insert_status(self, con: Any, record: RunRecord) -> None:
+    def _insert_status(self, con: Any, staged: Any, record: RunRecord) -> None:
+        """series_status from the loaded models rows; failed_gates and warnings (not in models) from the staged rows."""
         s = self._schema
-        keys = ", ".join(quote(k) for k in self.layout.keys)
+        keys = [quote(k) for k in self.layout.keys]
+        key_list = ", ".join(keys)
+        extra_cols, extra_sel, join = "", "", ""
+        if self._load_status_extras(con, staged):
+            on = " AND ".join(f"x.{k} = m.{k}" for k in keys)
+            extra_cols, extra_sel = ", failed_gates, warnings", ", x.failed_gates::jsonb, x.warnings"
+            join = f" LEFT JOIN arflow_status_extras AS x ON {on}"
         execute(
             con,
-            f"INSERT INTO {s}.series_status (run_id, job, as_of, {keys}, decision, on_failure) "
-            f"SELECT run_id, $2, $3::{pg_type(self.layout.period_type)}, {keys}, decision, $4 FROM {s}.models WHERE run_id = $1",
+            f"INSERT INTO {s}.series_status (run_id, job, as_of, {key_list}, decision, on_failure, reasons{extra_cols}) "
+            f"SELECT m.run_id, $2, $3::{pg_type(self.layout.period_type)}, {', '.join('m.' + k for k in keys)}, m.decision, "
+            f"$4, m.reasons{extra_sel} FROM {s}.models AS m{join} WHERE m.run_id = $1",
             (record.run_id, record.job, record.as_of, record.on_failure),
         )
+
+    def _load_status_extras(self, con: Any, staged: Any) -> bool:
+        """Stage each series' failed gates (as JSON text) and warnings in a temporary table; False when none."""
+        parts = [p for p in _parts(staged, "models") if "failed_gates" in p.column_names or "warnings" in p.column_names]
+        if not parts:
+            return False
+        keys = [quote(k) for k in self.layout.keys]
+        key_defs = ", ".join(f"{k} {pg_type(t)}" for k, t in zip(keys, self.layout.key_types))
+        execute(con, "DROP TABLE IF EXISTS arflow_status_extras")
+        execute(con, f"CREATE TEMPORARY TABLE arflow_status_extras ({key_defs}, failed_gates text, warnings text[]) "
+                     "ON COMMIT DROP")
+        types = {k: arrow_type(formatted(t)) for k, t in zip(self.layout.keys, self.layout.key_types)}
+        cur = con.cursor()
+        try:
+            for part in parts:
+                n = part.num_rows
+                gates = (failed_gates_json(part.column("failed_gates")) if "failed_gates" in part.column_names
+                         else pa.nulls(n, pa.string()))
+                warnings = part.column("warnings") if "warnings" in part.column_names else pa.nulls(n, pa.list_(pa.string()))
+                data = pa.table({**{k: part.column(k).cast(types[k]) for k in self.layout.keys},
+                                 "failed_gates": gates, "warnings": warnings.cast(pa.list_(pa.string()))})
+                cur.adbc_ingest("arflow_status_extras", data, mode="append", temporary=True)
+        finally:
+            cur.close()
+        return True
 
     def _delete_forecasts_keeping_vetted(self, con: Any, record: RunRecord) -> None:
         """An earlier attempt's forecasts go, except those of series this attempt quarantines (keep-previous)."""
@@ -541,7 +592,7 @@ class PostgresTarget:
         execute(
             con,
             f"""
-            INSERT INTO {s}.accuracy (run_id, job, {', '.join(keys)}, period, step, forecast, actual, error, abs_pct_error,
+            INSERT INTO {s}.accuracy (forecast_run_id, job, {', '.join(keys)}, period, step, forecast, actual, error, abs_pct_error,
                                       recorded_by{covered_cols})
             SELECT f.run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
                    a.value, a.value - f.forecast,
@@ -552,7 +603,7 @@ class PostgresTarget:
             JOIN arflow_actuals AS a ON {on} AND a.period = f.period
             WHERE a.value IS NOT NULL AND a.value NOT IN ('NaN'::float8, 'Infinity'::float8, '-Infinity'::float8)
               AND NOT EXISTS (
-                  SELECT 1 FROM {s}.accuracy AS x WHERE x.run_id = f.run_id AND x.period = f.period AND {same}
+                  SELECT 1 FROM {s}.accuracy AS x WHERE x.forecast_run_id = f.run_id AND x.period = f.period AND {same}
               )
             """,
             (record.run_id, record.job, record.as_of),
@@ -563,7 +614,7 @@ class PostgresTarget:
         self.insert_rows(con, "runs", {k: [v] for k, v in values.items()}, columns)
 
     def _ensure_views(self, con: Any, columns: dict[str, dict[str, str]]) -> None:
-        """(Re)create the two views when their text changed (new coverage columns): a no-op on most runs.
+        """(Re)create the views when their text changed (new coverage columns): a no-op on most runs.
 
         Columns are only ever added at the end, so ``CREATE OR REPLACE`` keeps
         the grants on the views; only a view whose columns moved is dropped
@@ -574,6 +625,7 @@ class PostgresTarget:
         for name, sql in (
             (VIEW_FILE, render_pg_sql(VIEW_FILE, self.layout, forecast_columns=forecast_cols)),
             (ACCURACY_VIEW, render_pg_sql(ACCURACY_VIEW, self.layout, labels)),
+            (STATUS_VIEW, render_pg_sql(STATUS_VIEW, self.layout)),
         ):
             stamp = "arflow " + hashlib.sha256(sql.encode()).hexdigest()[:16]
             found = fetch_rows(
@@ -758,3 +810,43 @@ def rollback_close(con: Any) -> None:
 
 def _utcnow() -> dt.datetime:
     return dt.datetime.now(dt.timezone.utc).replace(tzinfo=None)
+
+
+def failed_gates_json(column: pa.ChunkedArray | pa.Array) -> pa.Array:
+    """A list-of-struct column as JSON text per row (jsonb on the server); non-finite numbers become null."""
+    import json
+    import math
+
+    def clean(value: Any) -> Any:
+        return None if isinstance(value, float) and not math.isfinite(value) else value
+
+    out: list[str | None] = []
+    for row in column.to_pylist():
+        if row is None:
+            out.append(None)
+        elif not row:
+            out.append("[]")
+        else:
+            out.append(json.dumps([None if g is None else {k: clean(v) for k, v in g.items()} for g in row],
+                                  allow_nan=False))
+    return pa.array(out, pa.string())
+
+
+def rename_old_columns(con: Any, schema: str, present: dict[str, dict[str, str]]) -> list[str]:
+    """Rename, in place, the columns an earlier release named otherwise (inside the publishing transaction)."""
+    done: list[str] = []
+    s = quote(schema)
+    for table, pairs in RENAMED_COLUMNS.items():
+        have = list(present.get(table, {}))
+        for old, new in pairs:
+            for column in have:
+                if column == old or (old.endswith("_") and column.startswith(old)):
+                    target = new + column[len(old):]
+                    if target in have:
+                        continue
+                    execute(con, f"ALTER TABLE {s}.{quote(table)} RENAME COLUMN {quote(column)} TO {quote(target)}")
+                    if MARKER_TABLE in present:
+                        execute(con, f"UPDATE {s}.{MARKER_TABLE} SET columns = array_replace(columns, $1, $2) "
+                                     "WHERE table_name = $3", (column, target, table))
+                    done.append(f"{table}.{column} -> {target}")
+    return done
