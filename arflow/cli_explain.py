@@ -41,10 +41,11 @@ def add_commands(sub: Any, common: Any) -> None:
 
 
 def _cmd_explain(args: argparse.Namespace, reporter: Any) -> int:
-    from .explain import explain_series, format_explanation, parse_key_args
+    from .explain import explain_series, format_explanation, parse_key_args, refuse_postgres
     from .job_file import load_job
 
     spec = load_job(args.job_file)
+    refuse_postgres(spec, "explain")
     keys = parse_key_args(args.series, tuple(spec.source.keys))
     result = explain_series(spec, keys, args.as_of)
     if reporter.json:

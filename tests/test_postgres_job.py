@@ -253,7 +253,7 @@ def test_failure_policies_and_accuracy_match_duckdb(pg, tmp_path, capsys, policy
                 assert s01 == [("meters@2026-11-01", dt.date(2026, 11, 1), True)]
             else:
                 assert s01 == []
-            assert pg.fetch("SELECT count(*) > 0, count(DISTINCT run_id) FROM arflow.accuracy") == [(True, 2)]
+            assert pg.fetch("SELECT count(*) > 0, count(DISTINCT forecast_run_id) FROM arflow.accuracy") == [(True, 2)]
             # the fixed data re-run: s01 is current again
             job.load(frame)
             assert cli(capsys, "run", str(job.path))[0] == 0
@@ -512,6 +512,36 @@ def test_postgres_demo_command(pg, tmp_path, capsys):
     assert pg.fetch("SELECT count(*) FROM water.monthly_demand") == [(35262,)]
     assert pg.fetch("SELECT count(DISTINCT zone) > 200 FROM arflow.published_forecasts") == [(True,)]
     assert (tmp_path / "demo_job_postgres.toml").is_file()
+    # the HTML report reads DuckDB targets: the PostgreSQL demo says so instead of reporting on another file
+    assert "not written: arflow report reads a DuckDB target" in out and not (tmp_path / "vellmar_report.html").exists()
+    assert pg.fetch("SELECT count(*) FROM arflow.latest_series_status") == [(303,)]
+    code, out, err = cli(capsys, "explain", str(tmp_path / "demo_job_postgres.toml"), "zone=any")
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "publishes to PostgreSQL" in err, err
+
+
+def test_old_column_names_are_renamed_in_place(pg, tmp_path, capsys):
+    """A schema written with the earlier names (backtests.horizon / coverage_NN, accuracy.run_id) is upgraded."""
+    job = Job(tmp_path, pg)
+    assert cli(capsys, "run", str(job.path), "--as-of", "2026-11")[0] == 0
+    assert cli(capsys, "run", str(job.path))[0] == 0
+    current = pg_state(pg)
+    with pg.connect_as() as con:
+        hit = [r[0] for r in pg_server.fetch(con, "SELECT column_name FROM information_schema.columns WHERE "
+                                             "table_schema = 'arflow' AND table_name = 'backtests' AND column_name LIKE 'hit_rate_%'")]
+        assert hit
+        renames = [("backtests", "step", "horizon"), ("accuracy", "forecast_run_id", "run_id"),
+                   *(("backtests", c, "coverage_" + c[len("hit_rate_"):]) for c in hit)]
+        for table, new, old in renames:
+            pg_server.execute(con, f'ALTER TABLE arflow.{table} RENAME COLUMN "{new}" TO "{old}"')
+            pg_server.execute(con, f"UPDATE arflow.arflow_tables SET columns = array_replace(columns, '{new}', '{old}') "
+                                   f"WHERE table_name = '{table}'")
+    code, _, err = cli(capsys, "run", str(job.path))
+    assert code == 0, err
+    after = pg_state(pg)
+    for table in COMPARED:
+        assert after[table] == current[table], table
+    marked = dict(pg.fetch("SELECT table_name, array_to_string(columns, ',') FROM arflow.arflow_tables"))
+    assert "forecast_run_id" in marked["accuracy"].split(",") and "step" in marked["backtests"].split(",")
 
 
 def test_vintages_and_retract_on_postgres(pg, tmp_path, capsys):
