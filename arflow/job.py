@@ -27,7 +27,6 @@ from .runtime import bind_to_parent, stop_pool
 from .settings import coverage_label
 from .warehouse.duckdb_source import DuckDBSource
 from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, preflight_target, run_id_for
-from .warehouse.parquet_store import ParquetStore
 from .warehouse.stage import RunStage
 
 Event = dict[str, Any]
@@ -101,7 +100,9 @@ def _target_text(spec: JobSpec) -> str:
     pub = spec.publish
     texts = [f"{pub.database} (schema {pub.schema}, view {pub.schema}.published_forecasts)"] if pub.database else []
     if pub.lakehouse is not None:
-        texts.append(f"lakehouse {pub.lakehouse / pub.schema} (Parquet, committed runs only)")
+        from .warehouse.delta_target import schema_uri
+
+        texts.append(f"lakehouse {schema_uri(pub.lakehouse, pub.schema)} (Delta tables)")
     return "; ".join(texts)
 
 
@@ -299,11 +300,12 @@ def run_job(
                 stale_after_periods=spec.publish.stale_after_periods,
                 jump_limit=None if allow_jump else _jump_limit(spec),
             )
-            # lakehouse: files first (invisible), then the DuckDB transaction, then the lakehouse commit marker
+            # lakehouse: data files first (invisible), then the DuckDB transaction, then the lakehouse commits
             staged = None
             if spec.publish.lakehouse is not None:
-                frames = {t: _read_staged(stage, t) for t in _RUN_FRAMES}
-                staged = ParquetStore(spec.publish.lakehouse, layout).stage(record, frames)
+                from .warehouse.delta_target import DeltaTarget
+
+                staged = DeltaTarget.from_spec(spec.publish, layout).prepare(record, stage)
             try:
                 if spec.publish.database is not None:
                     attempt = DuckDBStore(spec.publish.database, layout).publish(

@@ -1,0 +1,959 @@
+"""Lakehouse output as Delta Lake tables, written by the ``deltalake`` package (no JVM).
+
+Layout under ``[publish] lakehouse`` (a folder or an object-store URI), one
+folder per ``[publish] schema``::
+
+    <lakehouse>/<schema>/<table>/_delta_log/...     one Delta table per result table
+    <lakehouse>/<schema>/_arflow/journal.json       the publication in progress (absent when none)
+
+Tables: ``runs``, ``vintages``, ``series_status``, ``models``, ``gates``,
+``residual_acf``, ``forecasts``, ``backtests``, ``accuracy``, ``job_policy``
+(the columns of the DuckDB tables of those names), ``published_forecasts``
+(the rows of the DuckDB view of that name, materialised), ``vintage_removals``
+and ``commits`` (one row per publication: the gate, see below). The run tables
+are partitioned by ``run_id`` (``accuracy`` by ``recorded_by``, the run that
+scored), so a re-run of a vintage replaces exactly its partition in one
+commit per table and earlier vintages stay.
+
+Publishing one run (:meth:`DeltaTarget.prepare`, then
+:meth:`PendingDelta.commit`):
+
+1. *prepare*: every new data file is written into its table's folder, but no
+   table's log names it yet, so no Delta reader sees it. The journal records the
+   files (state ``prepared``).
+2. *commit*: the journal records each table's current version and the plan
+   (state ``committing``); then one Delta commit per table in a fixed order:
+   the run tables, ``runs``, ``vintages``, ``job_policy``, ``published_forecasts``,
+   and last the run's row in ``commits`` (the gate), which lists the version
+   of every table after this run. The journal is then removed.
+
+Guarantees. Each table shows all or none of a run attempt's rows (one commit
+per table). ``published_forecasts``, the one table dashboards read, changes in
+one commit after every other table holds the run. The detail tables commit one
+after another (only small log writes: the data files were written in step 1),
+so a reader of two detail tables at the same moment can see one of them a run
+ahead; readers that need a consistent view of several tables read each at the
+versions recorded in the latest ``commits`` row (arflow's own readers here do).
+A run that died part-way is settled by the next publication (or
+:func:`recover`): if all its commits landed, its gate row is written (roll
+forward); otherwise every table it changed is restored to its version before
+the run (roll back) and its files are deleted. One writer per schema at a time:
+the journal doubles as the lock.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import os
+import re
+import socket
+import time
+import uuid
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from hashlib import sha1
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import polars as pl
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import PublishError, SourceError
+from ..runtime import fault_point
+from ..settings import coverage_label
+from .duckdb_store import COVERAGE_COLUMNS, DDL_FILES, VIEW_FILE, RunRecord, TableLayout, render_sql
+from .identifiers import check_identifier, quote
+
+EXTRA = "lakehouse"
+INSTALL_HINT = "pip install 'arflow-gated[lakehouse]'"
+#: run tables (partition column), in commit order
+RUN_TABLES: tuple[tuple[str, str], ...] = (
+    ("series_status", "run_id"), ("models", "run_id"), ("gates", "run_id"), ("residual_acf", "run_id"),
+    ("forecasts", "run_id"), ("backtests", "run_id"), ("accuracy", "recorded_by"),
+)
+#: small tables, rewritten whole in one commit
+WHOLE_TABLES = ("runs", "vintages", "job_policy", "published_forecasts", "vintage_removals")
+GATE = "commits"
+COMMIT_ORDER = (*(t for t, _ in RUN_TABLES), *WHOLE_TABLES, GATE)
+PARTITION = dict(RUN_TABLES)
+JOURNAL = "_arflow/journal.json"
+#: a journal whose writer is on another host is taken over after this long (its writer is presumed dead)
+JOURNAL_TAKEOVER_HOURS = 24.0
+FILE_ROWS = 2_000_000
+_TXN_KEY = "arflow.txn"
+_STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
+
+
+def _deltalake() -> Any:
+    try:
+        import deltalake
+    except ImportError:
+        raise PublishError(
+            f"[publish] lakehouse needs the {EXTRA} extra (the deltalake package), which is not installed; "
+            f"install it with: {INSTALL_HINT}"
+        ) from None
+    return deltalake
+
+
+def is_uri(location: str | Path) -> bool:
+    """True for an object-store URI (``s3://``, ``az://``, ``gs://``, ``file://`` ...)."""
+    return "://" in str(location)
+
+
+def schema_uri(lakehouse: str | Path, schema: str) -> str:
+    """The location of one schema's tables (a folder path or a URI)."""
+    check_identifier(schema, "publish.schema")
+    if is_uri(lakehouse):
+        return str(lakehouse).rstrip("/") + "/" + schema
+    return str(Path(lakehouse).expanduser() / schema)
+
+
+def _safe_dir(value: str) -> str:
+    """A partition value as one safe folder name (readable; a hash suffix when characters were replaced)."""
+    clean = re.sub(r"[^A-Za-z0-9@._-]", "_", value)
+    return clean if clean == value else f"{clean}-{sha1(value.encode()).hexdigest()[:8]}"
+
+
+def _utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.timezone.utc).replace(tzinfo=None)
+
+
+# ------------------------------------------------------------------------------------ storage
+
+
+class _Lake:
+    """One schema of a lakehouse: table locations, files and the journal, local or on an object store."""
+
+    def __init__(self, lakehouse: str | Path, schema: str, options: dict[str, str] | None = None) -> None:
+        self.lakehouse = lakehouse
+        self.schema = schema
+        self.root = schema_uri(lakehouse, schema)
+        self.options = dict(options or {})
+        self.local = not is_uri(lakehouse)
+        self._fs: Any = None
+
+    def uri(self, table: str) -> str:
+        return f"{self.root}/{table}"
+
+    @property
+    def fs(self) -> Any:
+        """A pyarrow file system rooted at the schema (deltalake's object store, same options)."""
+        if self._fs is None:
+            import pyarrow.fs as pafs
+
+            from deltalake.fs import DeltaStorageHandler
+
+            if self.local:
+                Path(self.root).mkdir(parents=True, exist_ok=True)
+            self._fs = pafs.PyFileSystem(DeltaStorageHandler(self.root, self.options or None))
+        return self._fs
+
+    def table(self, name: str, version: int | None = None) -> Any | None:
+        dl = _deltalake()
+        uri = self.uri(name)
+        try:
+            if not dl.DeltaTable.is_deltatable(uri, storage_options=self.options or None):
+                return None
+            return dl.DeltaTable(uri, version=version, storage_options=self.options or None)
+        except OSError as exc:
+            raise PublishError(f"cannot read lakehouse table {uri} ({_first(exc)}); check publish.lakehouse") from None
+
+    def read_json(self, path: str) -> dict[str, Any] | None:
+        if self.local:
+            try:
+                return json.loads((Path(self.root) / path).read_text(encoding="utf-8"))
+            except FileNotFoundError:
+                return None
+        try:
+            with self.fs.open_input_stream(path) as fh:
+                return json.loads(fh.read().decode("utf-8"))
+        except (FileNotFoundError, OSError) as exc:
+            if isinstance(exc, FileNotFoundError) or "not found" in str(exc).lower():
+                return None
+            raise
+
+    def write_json(self, path: str, payload: dict[str, Any]) -> None:
+        data = json.dumps(payload, indent=1, sort_keys=True, default=str).encode("utf-8")
+        if self.local:
+            target = Path(self.root) / path
+            target.parent.mkdir(parents=True, exist_ok=True)
+            tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.tmp")
+            with open(tmp, "wb") as fh:
+                fh.write(data)
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.replace(tmp, target)
+            return
+        with self.fs.open_output_stream(path) as fh:  # one PUT: atomic on object stores
+            fh.write(data)
+
+    def delete(self, path: str) -> None:
+        try:
+            if self.local:
+                (Path(self.root) / path).unlink(missing_ok=True)
+            else:
+                self.fs.delete_file(path)
+        except (FileNotFoundError, OSError):
+            pass
+
+
+def _first(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0][:300] if text else type(exc).__name__
+
+
+# ------------------------------------------------------------------------------------ schemas
+
+
+_SCHEMAS: dict[tuple, dict[str, pa.Schema]] = {}
+
+
+def table_schemas(layout: TableLayout, labels: tuple[str, ...]) -> dict[str, pa.Schema]:
+    """table -> Arrow schema, read off the DuckDB DDL (so both targets share one column list)."""
+    key = (layout.keys, layout.key_types, layout.period_type, labels)
+    if key not in _SCHEMAS:
+        con = _memory(layout, labels)
+        try:
+            out = {}
+            for name in (*DDL_FILES, VIEW_FILE):
+                if name == "vintage_removals" or name in PARTITION or name in WHOLE_TABLES:
+                    out[name] = _relation_schema(con, f"{quote(layout.schema)}.{quote(name)}")
+            out[GATE] = table_schemas_gate()
+            _SCHEMAS[key] = out
+        finally:
+            con.close()
+    return _SCHEMAS[key]
+
+
+def _memory(layout: TableLayout, labels: tuple[str, ...]) -> duckdb.DuckDBPyConnection:
+    """An in-memory DuckDB with arflow's DDL tables (and this run's coverage columns) under the job's schema."""
+    con = duckdb.connect(":memory:")
+    con.execute(f"CREATE SCHEMA {quote(layout.schema)}")
+    for name in DDL_FILES:
+        con.execute(render_sql(name, layout))
+    for table, prefixes in COVERAGE_COLUMNS.items():
+        kind = "BOOLEAN" if table == "accuracy" else "DOUBLE"
+        for label in labels:
+            for prefix in prefixes:
+                con.execute(f"ALTER TABLE {quote(layout.schema)}.{quote(table)} ADD COLUMN {quote(f'{prefix}_{label}')} {kind}")
+    con.execute(render_sql(VIEW_FILE, layout))
+    return con
+
+
+def _normal_type(t: pa.DataType) -> pa.DataType:
+    if pa.types.is_list(t) or pa.types.is_large_list(t):
+        return pa.list_(pa.field("element", _normal_type(t.value_type)))
+    if pa.types.is_large_string(t) or t == pa.string_view():
+        return pa.string()
+    return t
+
+
+def _relation_schema(con: duckdb.DuckDBPyConnection, relation: str) -> pa.Schema:
+    """Arrow schema of a DuckDB relation, lists named the Delta way (``element``)."""
+    schema = con.sql(f"SELECT * FROM {relation} LIMIT 0").to_arrow_table().schema
+    return pa.schema([pa.field(f.name, _normal_type(f.type)) for f in schema])
+
+
+def _layout_of(schema: pa.Schema) -> tuple[list[str], str]:
+    """(key columns, period type) of a ``series_status`` table's schema."""
+    keys = [f.name for f in schema if f.name not in _STATUS_FIXED]
+    t = schema.field("as_of").type
+    period_type = "DATE" if pa.types.is_date(t) else "TIMESTAMP" if pa.types.is_timestamp(t) else "BIGINT"
+    return keys, period_type
+
+
+# ------------------------------------------------------------------------------------ files
+
+
+@dataclass
+class _TableWrite:
+    """What one table's commit does: files to add and, for run tables, the partition they replace."""
+
+    table: str
+    mode: str  # "replace-partition" | "replace-all" | "append"
+    schema: pa.Schema
+    partition: tuple[str, str] | None = None  # (column, value)
+    actions: list[Any] = field(default_factory=list)
+    files: list[str] = field(default_factory=list)
+    rows: int = 0
+
+
+def _stats(batches: list[pa.RecordBatch], schema: pa.Schema) -> str:
+    """Delta file statistics: row count, null counts and min/max of integer, date and short text columns."""
+    import pyarrow.compute as pc
+
+    n = sum(b.num_rows for b in batches)
+    out: dict[str, Any] = {"numRecords": n, "minValues": {}, "maxValues": {}, "nullCount": {}}
+    if not n:
+        return json.dumps(out)
+    for i, f in enumerate(schema):
+        t = f.type
+        if pa.types.is_nested(t):
+            continue
+        col = pa.chunked_array([b.column(i) for b in batches], type=t)
+        out["nullCount"][f.name] = col.null_count
+        if col.null_count == n:
+            continue
+        if pa.types.is_integer(t) or pa.types.is_date(t) or pa.types.is_string(t):
+            mm = pc.min_max(col)
+            lo, hi = mm["min"].as_py(), mm["max"].as_py()
+            if isinstance(lo, str) and (len(lo) > 32 or len(hi) > 32):
+                continue
+            out["minValues"][f.name] = lo.isoformat() if isinstance(lo, dt.date) else lo
+            out["maxValues"][f.name] = hi.isoformat() if isinstance(hi, dt.date) else hi
+    return json.dumps(out)
+
+
+def _write_files(lake: _Lake, write: _TableWrite, reader: pa.RecordBatchReader, txn: str) -> None:
+    """Stream ``reader`` into Parquet files in the table's folder (not committed: no Delta reader sees them)."""
+    from deltalake.transaction import AddAction
+
+    part_col = write.partition[0] if write.partition else None
+    folder = f"{write.table}/{part_col}={_safe_dir(write.partition[1])}" if write.partition else write.table
+    file_schema = pa.schema([f for f in write.schema if f.name != part_col])
+    pending: list[pa.RecordBatch] = []
+    pending_rows = 0
+
+    def flush() -> None:
+        nonlocal pending, pending_rows
+        if not pending_rows:
+            pending, pending_rows = [], 0
+            return
+        rel = f"{folder}/part-{len(write.files):05d}-{txn}.parquet"
+        table = pa.Table.from_batches(pending, schema=file_schema)
+        write.files.append(rel)  # recorded before writing: a partial file is cleaned up with the rest
+        pq.write_table(table, rel, filesystem=lake.fs, compression="zstd")
+        size = lake.fs.get_file_info(rel).size
+        values = {part_col: write.partition[1]} if part_col else {}
+        write.actions.append(AddAction(rel.split("/", 1)[1], size, values, int(time.time() * 1000), True,
+                                       _stats(pending, file_schema)))
+        write.rows += pending_rows
+        pending, pending_rows = [], 0
+
+    for batch in reader:
+        batch = _conform(batch, write.schema, part_col)
+        if batch.num_rows == 0:
+            continue
+        pending.append(batch)
+        pending_rows += batch.num_rows
+        if pending_rows >= FILE_ROWS:
+            flush()
+    flush()
+
+
+def _conform(batch: pa.RecordBatch, schema: pa.Schema, drop: str | None) -> pa.RecordBatch:
+    """The batch with the table's columns in order (missing ones null), the partition column left out."""
+    names = batch.schema.names
+    arrays, fields = [], []
+    for f in schema:
+        if f.name == drop:
+            continue
+        col = batch.column(names.index(f.name)) if f.name in names else pa.nulls(batch.num_rows, f.type)
+        arrays.append(col if col.type == f.type else col.cast(f.type))
+        fields.append(f)
+    return pa.RecordBatch.from_arrays(arrays, schema=pa.schema(fields))
+
+
+# ------------------------------------------------------------------------------------ journal / lock
+
+
+def _start_time(pid: int) -> str | None:
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            stat = fh.read().decode("ascii", "replace")
+    except OSError:
+        return None
+    fields = stat[stat.rfind(")") + 2:].split()
+    return fields[19] if len(fields) > 19 else None
+
+
+def _owner() -> dict[str, Any]:
+    pid = os.getpid()
+    return {"host": socket.gethostname(), "pid": pid, "pid_started": _start_time(pid)}
+
+
+def _owner_alive(journal: dict[str, Any]) -> bool:
+    """True unless the journal's writer is certainly gone (same host, process ended) or the journal is stale."""
+    owner = journal.get("owner", {})
+    if owner.get("host") != socket.gethostname():
+        try:
+            started = dt.datetime.fromisoformat(journal["started_at"])
+        except (KeyError, ValueError):
+            return False
+        return (_utcnow() - started).total_seconds() < JOURNAL_TAKEOVER_HOURS * 3600
+    pid = int(owner.get("pid", -1))
+    if pid == os.getpid():
+        return False
+    if pid <= 0 or _start_time(pid) is None:
+        return False
+    return owner.get("pid_started") in (None, _start_time(pid))
+
+
+def _history_txns(table: Any, since: int) -> list[str | None]:
+    """The arflow transaction id of every commit of ``table`` after version ``since``."""
+    out = []
+    for h in table.history():
+        if int(h["version"]) > since:
+            out.append(h.get(_TXN_KEY))
+    return out
+
+
+def recover(lakehouse: str | Path, schema: str = "arflow", options: dict[str, str] | None = None) -> str | None:
+    """Settle a publication that died part-way (roll forward or back); returns what was done, or None."""
+    return _recover(_Lake(lakehouse, schema, options))
+
+
+def _recover(lake: _Lake) -> str | None:
+    journal = lake.read_json(JOURNAL)
+    if journal is None:
+        return None
+    if _owner_alive(journal):
+        owner = journal.get("owner", {})
+        raise PublishError(
+            f"another arflow run (host {owner.get('host')}, pid {owner.get('pid')}, started {journal.get('started_at')}) "
+            f"is publishing to lakehouse {lake.root}; retry when it finishes"
+        )
+    txn = journal["txn"]
+    done = None
+    if journal.get("state") == "committing":
+        before: dict[str, int] = {t: int(v) for t, v in journal["versions_before"].items()}
+        landed = {}
+        for t, v in before.items():
+            table = lake.table(t)
+            landed[t] = table is not None and txn in _history_txns(table, v)
+        gate = lake.table(GATE)
+        gate_landed = gate is not None and txn in _history_txns(gate, before.get(GATE, -1))
+        plan = journal["plan"]
+        if gate_landed:
+            done = f"completed run {journal.get('run_id')} (its last commit had landed)"
+        elif all(landed.get(t, False) for t in plan if t != GATE):
+            _commit_gate(lake, journal["run_id"], journal.get("job"), journal.get("kind", "publish"), txn, plan,
+                         journal.get("arflow_version", ""))
+            done = f"completed run {journal.get('run_id')} (rolled forward: every table had its commit)"
+        else:
+            dl = _deltalake()
+            for t, v in before.items():
+                table = lake.table(t)
+                if table is None or table.version() <= v:
+                    continue
+                foreign = [x for x in _history_txns(table, v) if x != txn]
+                if foreign:
+                    raise PublishError(
+                        f"lakehouse table {lake.uri(t)} changed after arflow's unfinished publication {txn} by another "
+                        "writer; restore it by hand (DeltaTable.restore) and delete " + f"{lake.root}/{JOURNAL}"
+                    )
+                table.restore(v, commit_properties=dl.CommitProperties(custom_metadata={_TXN_KEY: f"{txn}-rollback"}))
+            done = f"rolled back run {journal.get('run_id')} (it died before all its commits)"
+    for rel in journal.get("files", []):
+        if done is None or done.startswith("rolled back"):
+            lake.delete(rel)
+    lake.delete(JOURNAL)
+    return done or f"removed the uncommitted files of run {journal.get('run_id')}"
+
+
+def _commit_gate(lake: _Lake, run_id: str, job: str | None, kind: str, txn: str, plan: list[str], version: str) -> int:
+    dl = _deltalake()
+    versions = {}
+    for t in COMMIT_ORDER:
+        if t == GATE:
+            continue
+        table = lake.table(t)
+        if table is not None:
+            versions[t] = table.version()
+    row = pa.table({
+        "commit_id": [txn], "kind": [kind], "job": [job], "run_id": [run_id], "committed_at": [_utcnow()],
+        "table_versions": [json.dumps(versions, sort_keys=True)], "arflow_version": [version],
+    }, schema=table_schemas_gate())
+    dl.write_deltalake(lake.uri(GATE), row, mode="append", storage_options=lake.options or None,
+                       commit_properties=dl.CommitProperties(custom_metadata={_TXN_KEY: txn}))
+    return versions.get("runs", -1)
+
+
+def table_schemas_gate() -> pa.Schema:
+    return pa.schema([("commit_id", pa.string()), ("kind", pa.string()), ("job", pa.string()),
+                      ("run_id", pa.string()), ("committed_at", pa.timestamp("us")),
+                      ("table_versions", pa.string()), ("arflow_version", pa.string())])
+
+
+# ------------------------------------------------------------------------------------ target
+
+
+def _staged_files(staged: Any, table: str) -> list[str]:
+    return list(staged.files(table)) if hasattr(staged, "files") else []
+
+
+def _parquet(files: list[str]) -> str | None:
+    if not files:
+        return None
+    return "read_parquet([" + ", ".join("'" + f.replace("'", "''") + "'" for f in files) + "], union_by_name = true)"
+
+
+class DeltaTarget:
+    """Publishes runs to Delta tables under ``<lakehouse>/<schema>`` (see the module text)."""
+
+    commit_order = 10
+
+    def __init__(self, lakehouse: str | Path, layout: TableLayout, options: dict[str, str] | None = None) -> None:
+        _deltalake()
+        self.layout = layout
+        self.lake = _Lake(lakehouse, layout.schema, options)
+
+    @classmethod
+    def from_spec(cls, publish: Any, layout: TableLayout) -> "DeltaTarget":
+        return cls(publish.lakehouse, layout, getattr(publish, "lakehouse_options", None))
+
+    def describe(self) -> str:
+        return f"lakehouse {self.lake.root} (Delta tables)"
+
+    def preflight(self) -> None:
+        """The location can be written (a local folder's parent must exist)."""
+        if self.lake.local:
+            parent = Path(self.lake.lakehouse).expanduser().parent
+            if not parent.is_dir():
+                raise PublishError(f"folder {parent} of publish.lakehouse does not exist; create it or fix the path")
+            if Path(self.lake.lakehouse).exists() and not os.access(Path(self.lake.lakehouse), os.W_OK):
+                raise PublishError(f"lakehouse folder {self.lake.lakehouse} is read-only; make it writable or publish elsewhere")
+
+    def check_layout(self) -> str:
+        """Refuse a schema holding another job's key columns or period type; a status line otherwise."""
+        self.preflight()
+        status = self.lake.table("series_status")
+        if status is None:
+            return "tables will be created"
+        keys, period_type = _layout_of(_table_arrow_schema(status))
+        where = f"lakehouse {self.lake.root}"
+        fix = "publish this job to another schema with [publish] schema"
+        if [k.lower() for k in keys] != [k.lower() for k in self.layout.keys]:
+            raise PublishError(f"{where} holds results keyed by ({', '.join(keys)}), this job's keys are "
+                               f"({', '.join(self.layout.keys)}); {fix}")
+        if period_type != self.layout.period_type:
+            raise PublishError(f"{where} holds {period_type} periods, this job's are {self.layout.period_type}; {fix}")
+        return "tables exist"
+
+    def latest_vintage(self, job: str) -> Any | None:
+        table = _snapshot(self.lake, "vintages")
+        if table is None:
+            return None
+        frame = table.filter(pl.col("job") == job)
+        return frame["as_of"].max() if frame.height else None
+
+    def prepare(self, record: RunRecord, staged: Any) -> "PendingDelta":
+        """Write every data file of the run (invisible to readers) and plan the commits."""
+        try:
+            note = _recover(self.lake)
+            self.check_layout()
+        except OSError as exc:
+            raise PublishError(f"cannot write to lakehouse {self.lake.root} ({_first(exc)}); check publish.lakehouse") from None
+        pending = PendingDelta(self.lake, self.layout, record, uuid.uuid4().hex[:16], note)
+        try:
+            pending._prepare(staged)
+        except BaseException as exc:
+            pending.abort()
+            if isinstance(exc, OSError):
+                raise PublishError(
+                    f"writing to lakehouse {self.lake.root} failed ({_first(exc)}); nothing was committed there"
+                ) from None
+            raise
+        return pending
+
+
+class PendingDelta:
+    """A run whose files are written but not committed; :meth:`commit` or :meth:`abort` it."""
+
+    def __init__(self, lake: _Lake, layout: TableLayout, record: RunRecord, txn: str, note: str | None) -> None:
+        self.lake = lake
+        self.layout = layout
+        self.record = record
+        self.txn = txn
+        self.note = note
+        self.writes: list[_TableWrite] = []
+        self.attempt = 1
+        self.done = False
+        self.labels = tuple(coverage_label(c) for c in record.coverage)
+
+    # -- prepare
+    def _journal(self, state: str, **extra: Any) -> None:
+        rec = self.record
+        payload = {"txn": self.txn, "state": state, "kind": "publish", "run_id": rec.run_id, "job": rec.job,
+                   "started_at": _utcnow().isoformat(), "owner": _owner(), "arflow_version": rec.arflow_version,
+                   "files": [f for w in self.writes for f in w.files], **extra}
+        self.lake.write_json(JOURNAL, payload)
+
+    def _prepare(self, staged: Any) -> None:
+        lake, layout, rec = self.lake, self.layout, self.record
+        schemas = table_schemas(layout, self.labels)
+        self._journal("prepared")
+        self._ensure_tables(schemas)
+        con = _memory(layout, self.labels)
+        s = quote(layout.schema)
+        try:
+            current = {t: _snapshot_arrow(lake, t) for t in ("runs", "vintages", "job_policy")}
+            prev = current["runs"].filter(pl.col("run_id") == rec.run_id) if current["runs"] is not None else None
+            self.attempt = int(prev["attempt"].max()) + 1 if prev is not None and prev.height else 1
+            self._check_jump(current["vintages"])
+            models = _parquet(_staged_files(staged, "models"))
+            held = rec.held
+            run = "'" + rec.run_id.replace("'", "''") + "'"
+            for table, part in RUN_TABLES:
+                if held and table in ("series_status", "forecasts", "accuracy"):
+                    continue
+                mem = f"{s}.{quote(table)}"
+                if table == "series_status":
+                    if models:
+                        keys = ", ".join(quote(k) for k in layout.keys)
+                        con.execute(f"INSERT INTO {mem} BY NAME SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision, "
+                                    f"? AS on_failure FROM {models}", [rec.run_id, rec.job, rec.as_of, rec.on_failure])
+                elif table == "accuracy":
+                    self._accuracy(con, staged)
+                else:
+                    src = _parquet(_staged_files(staged, table))
+                    if src:
+                        have = {c for c, in con.execute(
+                            "SELECT column_name FROM information_schema.columns WHERE table_schema = ? AND table_name = ?",
+                            [layout.schema, table]).fetchall()}
+                        cols = [c for c in con.sql(f"SELECT * FROM {src} LIMIT 0").columns if c in have and c != "run_id"]
+                        con.execute(f"INSERT INTO {mem} BY NAME SELECT ? AS run_id, "
+                                    f"{', '.join(quote(c) for c in cols)} FROM {src}", [rec.run_id])
+                    if table == "forecasts" and rec.on_failure == "keep-previous" and models:
+                        self._keep_previous(con, models)
+                write = _TableWrite(table, "replace-partition", _relation_schema(con, mem), (part, rec.run_id))
+                _write_files(lake, write, con.sql(f"SELECT * FROM {mem}").fetch_arrow_reader(100_000), self.txn)
+                con.execute(f"DELETE FROM {mem}")
+                self.writes.append(write)
+                self._journal("prepared")
+                fault_point(f"lakehouse-prepare:{table}")
+            self._whole_tables(con, schemas, current, held)
+        finally:
+            con.close()
+        self._journal("prepared")
+
+    def _ensure_tables(self, schemas: dict[str, pa.Schema]) -> None:
+        dl = _deltalake()
+        for table in COMMIT_ORDER:
+            if self.lake.table(table) is None:
+                part = PARTITION.get(table)
+                dl.DeltaTable.create(self.lake.uri(table), schemas[table], partition_by=[part] if part else None,
+                                     mode="ignore", storage_options=self.lake.options or None,
+                                     name=f"{self.layout.schema}.{table}")
+
+    def _check_jump(self, vintages: pl.DataFrame | None) -> None:
+        rec = self.record
+        if rec.jump_limit is None or vintages is None:
+            return
+        mine = vintages.filter(pl.col("job") == rec.job)
+        latest = mine["as_of"].max() if mine.height else None
+        if latest is None or not rec.as_of > latest:
+            return
+        from .duckdb_source import periods_between
+
+        gap = periods_between(rec.frequency, latest, rec.as_of)
+        if gap > rec.jump_limit:
+            raise PublishError(
+                f"vintage {rec.as_of} is {gap:,} {rec.frequency} period(s) after this job's latest vintage {latest}, "
+                f"more than publish.max_periods_ahead = {rec.jump_limit}; nothing was published "
+                "(add --allow-jump to write it deliberately)"
+            )
+
+    def _register(self, con: duckdb.DuckDBPyConnection, table: str, name: str) -> bool:
+        """Register the lake table's current snapshot in ``con`` as ``name`` (False when it has no rows yet)."""
+        t = self.lake.table(table)
+        if t is None:
+            return False
+        con.register(name, t.to_pyarrow_dataset())
+        return True
+
+    def _keep_previous(self, con: duckdb.DuckDBPyConnection, models: str) -> None:
+        """keep-previous: an earlier attempt's forecasts of series this attempt quarantines stay (stale)."""
+        if not self._register(con, "forecasts", "lake_forecasts"):
+            return
+        s, keys = quote(self.layout.schema), [quote(k) for k in self.layout.keys]
+        same = " AND ".join(f"m.{k} = f.{k}" for k in keys)
+        have = set(con.sql(f"SELECT * FROM {s}.forecasts LIMIT 0").columns)
+        cols = ", ".join(f"f.{quote(c)}" for c in con.sql("SELECT * FROM lake_forecasts LIMIT 0").columns if c in have)
+        con.execute(
+            f"INSERT INTO {s}.forecasts BY NAME SELECT {cols} FROM lake_forecasts AS f "
+            f"WHERE f.run_id = ? AND EXISTS (SELECT 1 FROM {models} AS m WHERE m.decision <> 'published' AND {same})",
+            [self.record.run_id],
+        )
+
+    def _accuracy(self, con: duckdb.DuckDBPyConnection, staged: Any) -> None:
+        """Score earlier published vintages against the actuals this run saw (once each), as the DuckDB target does."""
+        actuals = _parquet(_staged_files(staged, "actuals"))
+        if actuals is None or not self._register(con, "forecasts", "lake_forecasts"):
+            return
+        if not self._register(con, "vintages", "lake_vintages"):
+            return
+        has_acc = self._register(con, "accuracy", "lake_accuracy")
+        rec, s = self.record, quote(self.layout.schema)
+        keys = [quote(k) for k in self.layout.keys]
+        on = " AND ".join(f"a.{k} = f.{k}" for k in keys)
+        same = " AND ".join(f"x.{k} = f.{k}" for k in keys)
+        fcols = set(con.sql("SELECT * FROM lake_forecasts LIMIT 0").columns)
+        labels = [lab for lab in self.labels if {f"lower_{lab}", f"upper_{lab}"} <= fcols]
+        acols = set(con.sql("SELECT * FROM lake_accuracy LIMIT 0").columns) if has_acc else set()
+        labels += [c[len("covered_"):] for c in sorted(acols) if c.startswith("covered_")
+                   and c[len("covered_"):] not in labels and {f"lower_{c[8:]}", f"upper_{c[8:]}"} <= fcols]
+        for lab in labels:
+            if f"covered_{lab}" not in {c for c, in con.execute(
+                    "SELECT column_name FROM information_schema.columns WHERE table_schema = ? AND table_name = 'accuracy'",
+                    [self.layout.schema]).fetchall()}:
+                con.execute(f"ALTER TABLE {s}.accuracy ADD COLUMN {quote('covered_' + lab)} BOOLEAN")
+        covered = "".join(
+            f", CASE WHEN f.{quote('lower_' + lab)} IS NULL THEN NULL "
+            f"ELSE a.value BETWEEN f.{quote('lower_' + lab)} AND f.{quote('upper_' + lab)} END AS {quote('covered_' + lab)}"
+            for lab in labels
+        )
+        seen = (f"AND NOT EXISTS (SELECT 1 FROM lake_accuracy AS x WHERE x.recorded_by <> ? AND x.run_id = f.run_id "
+                f"AND x.period = f.period AND {same})") if has_acc else "AND ? IS NOT NULL"
+        con.execute(
+            f"""
+            INSERT INTO {s}.accuracy BY NAME
+            SELECT f.run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
+                   a.value AS actual, a.value - f.forecast AS error,
+                   CASE WHEN a.value <> 0 THEN abs((a.value - f.forecast) / a.value) END AS abs_pct_error,
+                   ? AS recorded_by{covered}
+            FROM lake_forecasts AS f
+            JOIN lake_vintages AS v ON v.run_id = f.run_id AND v.job = ? AND v.as_of < ?
+            JOIN {actuals} AS a ON {on} AND a.period = f.period
+            WHERE a.value IS NOT NULL AND isfinite(a.value) {seen}
+            """,
+            [rec.run_id, rec.job, rec.as_of, rec.run_id],
+        )
+
+    def _whole_tables(self, con: duckdb.DuckDBPyConnection, schemas: dict[str, pa.Schema],
+                      current: dict[str, pl.DataFrame | None], held: bool) -> None:
+        rec, s, layout = self.record, quote(self.layout.schema), self.layout
+        duration = (rec.finished_at - rec.started_at).total_seconds()
+        run_row = {
+            "run_id": rec.run_id, "job": rec.job, "as_of": rec.as_of, "attempt": self.attempt,
+            "started_at": rec.started_at, "finished_at": rec.finished_at, "duration_seconds": duration,
+            "status": rec.status, "series_total": rec.series_total, "series_published": rec.series_published,
+            "series_quarantined": rec.series_quarantined, "quarantine_share": rec.quarantine_share,
+            "reason_counts": json.dumps(rec.reason_counts, sort_keys=True), "on_failure": rec.on_failure,
+            "frequency": rec.frequency, "horizon": rec.horizon, "coverage": list(rec.coverage), "source": rec.source,
+            "config_sha256": rec.config_sha256, "arflow_version": rec.arflow_version,
+        }
+        self._whole(con, "runs", schemas, current["runs"], pl.col("run_id") != rec.run_id,
+                    f"INSERT INTO {s}.runs ({', '.join(quote(c) for c in run_row)}) VALUES ({', '.join('?' for _ in run_row)})",
+                    list(run_row.values()))
+        if held:
+            return
+        self._whole(con, "vintages", schemas, current["vintages"], ~((pl.col("job") == rec.job) & (pl.col("as_of") == rec.as_of)),
+                    f"INSERT INTO {s}.vintages VALUES (?, ?, ?, ?, ?)",
+                    [rec.job, rec.as_of, rec.run_id, self.attempt, rec.finished_at])
+        self._whole(con, "job_policy", schemas, current["job_policy"], pl.col("job") != rec.job,
+                    f"INSERT INTO {s}.job_policy VALUES (?, ?, ?)", [rec.job, rec.frequency, rec.stale_after_periods])
+        # published_forecasts over the tables as they will be after this run
+        for table in ("series_status", "forecasts"):
+            write = next(w for w in self.writes if w.table == table)
+            new = [f"{self.lake.root}/{f}" if not self.lake.local else str(Path(self.lake.root) / f) for f in write.files]
+            lake_has = self._register(con, table, f"lake_{table}")
+            parts = []
+            if lake_has:
+                parts.append(f"SELECT * FROM lake_{table} WHERE run_id <> {_lit(rec.run_id)}")
+            if new and self.lake.local:
+                parts.append(f"SELECT {_lit(rec.run_id)} AS run_id, * FROM read_parquet([{', '.join(_lit(f) for f in new)}], "
+                             "union_by_name = true, hive_partitioning = false)")
+            elif new:
+                import pyarrow.dataset as pads
+
+                con.register(f"new_{table}", pads.dataset(write.files, filesystem=self.lake.fs, format="parquet"))
+                parts.append(f"SELECT {_lit(rec.run_id)} AS run_id, * FROM new_{table}")
+            con.execute(f"DROP TABLE {s}.{quote(table)}")
+            if parts:
+                con.execute(f"CREATE VIEW {s}.{quote(table)} AS " + " UNION ALL BY NAME ".join(parts))
+            else:
+                con.execute(render_sql(table, layout).replace("CREATE TABLE IF NOT EXISTS", "CREATE TABLE"))
+        con.execute(render_sql(VIEW_FILE, layout))
+        keys = ", ".join(quote(k) for k in layout.keys)
+        view = con.sql(f"SELECT * FROM {s}.published_forecasts ORDER BY job, {keys}, step")
+        pf_schema = _merge_schema(schemas["published_forecasts"], _relation_schema(con, f"{s}.published_forecasts"))
+        write = _TableWrite("published_forecasts", "replace-all", pf_schema)
+        _write_files(self.lake, write, view.fetch_arrow_reader(100_000), self.txn)
+        self.writes.append(write)
+
+    def _whole(self, con: duckdb.DuckDBPyConnection, table: str, schemas: dict[str, pa.Schema], frame: pl.DataFrame | None,
+               keep: pl.Expr, insert: str, params: list[Any]) -> None:
+        s = quote(self.layout.schema)
+        con.execute(insert, params)
+        new = con.sql(f"SELECT * FROM {s}.{quote(table)}").to_arrow_table()
+        parts = [new]
+        if frame is not None and frame.height:
+            parts.insert(0, frame.filter(keep).to_arrow().select(new.schema.names).cast(new.schema))
+        full = pa.concat_tables(parts)
+        write = _TableWrite(table, "replace-all", schemas[table])
+        _write_files(self.lake, write, full.to_reader(), self.txn)
+        self.writes.append(write)
+        con.register("arflow_whole", full)  # the memory table holds the whole table now (the view reads job_policy)
+        con.execute(f"DELETE FROM {s}.{quote(table)}")
+        con.execute(f"INSERT INTO {s}.{quote(table)} SELECT * FROM arflow_whole")
+        con.unregister("arflow_whole")
+
+    # -- commit / abort
+    def commit(self) -> int:
+        """Commit every table in order, the gate row last; returns the vintage's attempt number."""
+        if self.done:
+            return self.attempt
+        dl = _deltalake()
+        lake = self.lake
+        plan = [w.table for w in self.writes] + [GATE]
+        before = {}
+        for t in plan:
+            table = lake.table(t)
+            before[t] = table.version() if table is not None else -1
+        self._journal("committing", plan=plan, versions_before=before)
+        fault_point("lakehouse:committing")
+        props = dl.CommitProperties(custom_metadata={_TXN_KEY: self.txn, "arflow.run_id": self.record.run_id,
+                                                     "arflow.attempt": str(self.attempt)})
+        hooks = dl.PostCommitHookProperties(create_checkpoint=True, cleanup_expired_logs=None)
+        try:
+            for w in self.writes:
+                table = lake.table(w.table)
+                schema = w.schema
+                schema = _merge_schema(_table_arrow_schema(table), schema)
+                if w.mode == "replace-partition":
+                    col, value = w.partition
+                    table.create_write_transaction(w.actions, "overwrite", schema, partition_by=[col],
+                                                   partition_filters=[(col, "=", value)], commit_properties=props,
+                                                   post_commithook_properties=hooks)
+                else:
+                    table.create_write_transaction(w.actions, "overwrite", schema, commit_properties=props,
+                                                   post_commithook_properties=hooks)
+                fault_point(f"lakehouse:{w.table}")
+            _commit_gate(lake, self.record.run_id, self.record.job, "publish", self.txn, plan, self.record.arflow_version)
+            fault_point("lakehouse:commits")
+        except BaseException as exc:
+            # settle now: roll back what landed (the journal says what), unless every commit landed
+            try:
+                _recover_own(lake)
+            except Exception:  # noqa: BLE001 - the next run settles it from the journal
+                pass
+            self.done = True
+            if isinstance(exc, OSError):
+                raise PublishError(f"committing to lakehouse {lake.root} failed ({_first(exc)}); "
+                                   "the lakehouse was rolled back to before this run") from None
+            raise
+        lake.delete(JOURNAL)
+        self.done = True
+        return self.attempt
+
+    def abort(self) -> None:
+        """Delete this run's uncommitted files and its journal (no-op after commit)."""
+        if self.done:
+            return
+        self.done = True
+        for w in self.writes:
+            for f in w.files:
+                self.lake.delete(f)
+        journal = self.lake.read_json(JOURNAL)
+        if journal is not None and journal.get("txn") == self.txn:
+            if journal.get("state") == "committing":
+                _recover_own(self.lake)
+            else:
+                for f in journal.get("files", []):
+                    self.lake.delete(f)
+                self.lake.delete(JOURNAL)
+
+
+def _recover_own(lake: _Lake) -> None:
+    """Settle this process's own unfinished journal (its owner is us, so the liveness check is skipped)."""
+    journal = lake.read_json(JOURNAL)
+    if journal is None:
+        return
+    journal["owner"] = {"host": socket.gethostname(), "pid": -1}
+    lake.write_json(JOURNAL, journal)
+    _recover(lake)
+
+
+def _lit(text: str) -> str:
+    return "'" + str(text).replace("'", "''") + "'"
+
+
+def _table_arrow_schema(table: Any) -> pa.Schema:
+    return pa.schema(table.schema().to_arrow())
+
+
+def _merge_schema(base: pa.Schema, extra: pa.Schema) -> pa.Schema:
+    """``base`` plus the columns of ``extra`` it lacks (coverage levels new to the table), in order."""
+    names = set(base.names)
+    out = list(base)
+    for f in extra:
+        if f.name not in names:
+            out.append(f)
+    return pa.schema(out)
+
+
+# ------------------------------------------------------------------------------------ readers
+
+
+def _gate_versions(lake: _Lake) -> dict[str, int] | None:
+    """Table versions after the last complete publication (None when nothing was published yet)."""
+    gate = lake.table(GATE)
+    if gate is None:
+        return None
+    frame = pl.from_arrow(gate.to_pyarrow_table())
+    if not frame.height:
+        return None
+    last = frame.sort("committed_at").row(-1, named=True)
+    return {k: int(v) for k, v in json.loads(last["table_versions"]).items()}
+
+
+def _snapshot(lake: _Lake, table: str) -> pl.DataFrame | None:
+    """A table as of the last complete publication (None when it does not exist)."""
+    versions = _gate_versions(lake)
+    if versions is None or table not in versions:
+        t = lake.table(table)
+        if t is None or versions is None:
+            return None
+        return pl.from_arrow(t.to_pyarrow_table())
+    t = lake.table(table, version=versions[table])
+    return pl.from_arrow(t.to_pyarrow_table()) if t is not None else None
+
+
+def _snapshot_arrow(lake: _Lake, table: str) -> pl.DataFrame | None:
+    t = lake.table(table)
+    return pl.from_arrow(t.to_pyarrow_table()) if t is not None else None
+
+
+def _open(lakehouse: str | Path, schema: str, options: dict[str, str] | None) -> _Lake:
+    _deltalake()
+    lake = _Lake(lakehouse, schema, options)
+    if lake.local and not Path(lake.root).is_dir():
+        raise SourceError(f"lakehouse folder {lake.root} does not exist; check the lakehouse path and schema")
+    return lake
+
+
+def read_table(lakehouse: str | Path, table: str, schema: str = "arflow",
+               options: dict[str, str] | None = None) -> pl.DataFrame:
+    """All rows of ``table`` as of the last complete publication (only complete runs)."""
+    lake = _open(lakehouse, schema, options)
+    frame = _snapshot(lake, check_identifier(table, "table"))
+    return frame if frame is not None else pl.DataFrame()
+
+
+def published_forecasts(lakehouse: str | Path, schema: str = "arflow",
+                        options: dict[str, str] | None = None) -> pl.DataFrame:
+    """The lakehouse's ``published_forecasts`` (the same rows as the DuckDB view of that name)."""
+    return read_table(lakehouse, "published_forecasts", schema, options)
+
+
+def committed_runs(lakehouse: str | Path, schema: str = "arflow", options: dict[str, str] | None = None) -> pl.DataFrame:
+    """The ``runs`` table as of the last complete publication, ordered by run id."""
+    frame = read_table(lakehouse, "runs", schema, options)
+    return frame.sort("run_id") if frame.height else frame
+
+
+def is_delta_lakehouse(lakehouse: str | Path, schema: str = "arflow", options: dict[str, str] | None = None) -> bool:
+    """True when ``<lakehouse>/<schema>`` holds arflow's Delta tables."""
+    lake = _Lake(lakehouse, schema, options)
+    if lake.local and not Path(lake.root).is_dir():
+        return False
+    return lake.table(GATE) is not None or lake.table("runs") is not None
+
+
+def iter_tables() -> Iterator[str]:
+    """Every table name of a lakehouse schema, in commit order."""
+    yield from COMMIT_ORDER
