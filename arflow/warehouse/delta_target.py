@@ -520,6 +520,14 @@ class DeltaTarget:
     def check_layout(self) -> str:
         """Refuse a schema holding another job's key columns or period type; a status line otherwise."""
         self.preflight()
+        if self.lake.local:
+            from .parquet_legacy import is_legacy
+
+            if is_legacy(self.lake.lakehouse, self.layout.schema):
+                raise PublishError(
+                    f"lakehouse {self.lake.root} holds the old Parquet-marker layout of arflow 0.1; convert it once "
+                    "with: arflow lakehouse-convert JOB.toml"
+                )
         status = self.lake.table("series_status")
         if status is None:
             return "tables will be created"
@@ -580,6 +588,7 @@ class PendingDelta:
         payload = {"txn": self.txn, "state": state, "kind": "publish", "run_id": rec.run_id, "job": rec.job,
                    "started_at": _utcnow().isoformat(), "owner": _owner(), "arflow_version": rec.arflow_version,
                    "files": [f for w in self.writes for f in w.files], **extra}
+        payload["kind"] = getattr(self, "kind", "publish")
         self.lake.write_json(JOURNAL, payload)
 
     def _prepare(self, staged: Any) -> None:
@@ -596,7 +605,6 @@ class PendingDelta:
             self._check_jump(current["vintages"])
             models = _parquet(_staged_files(staged, "models"))
             held = rec.held
-            run = "'" + rec.run_id.replace("'", "''") + "'"
             for table, part in RUN_TABLES:
                 if held and table in ("series_status", "forecasts", "accuracy"):
                     continue
@@ -620,7 +628,7 @@ class PendingDelta:
                     if table == "forecasts" and rec.on_failure == "keep-previous" and models:
                         self._keep_previous(con, models)
                 write = _TableWrite(table, "replace-partition", _relation_schema(con, mem), (part, rec.run_id))
-                _write_files(lake, write, con.sql(f"SELECT * FROM {mem}").fetch_arrow_reader(100_000), self.txn)
+                _write_files(lake, write, con.sql(f"SELECT * FROM {mem}").to_arrow_reader(100_000), self.txn)
                 con.execute(f"DELETE FROM {mem}")
                 self.writes.append(write)
                 self._journal("prepared")
@@ -725,7 +733,7 @@ class PendingDelta:
 
     def _whole_tables(self, con: duckdb.DuckDBPyConnection, schemas: dict[str, pa.Schema],
                       current: dict[str, pl.DataFrame | None], held: bool) -> None:
-        rec, s, layout = self.record, quote(self.layout.schema), self.layout
+        rec, s = self.record, quote(self.layout.schema)
         duration = (rec.finished_at - rec.started_at).total_seconds()
         run_row = {
             "run_id": rec.run_id, "job": rec.job, "as_of": rec.as_of, "attempt": self.attempt,
@@ -746,10 +754,14 @@ class PendingDelta:
                     [rec.job, rec.as_of, rec.run_id, self.attempt, rec.finished_at])
         self._whole(con, "job_policy", schemas, current["job_policy"], pl.col("job") != rec.job,
                     f"INSERT INTO {s}.job_policy VALUES (?, ?, ?)", [rec.job, rec.frequency, rec.stale_after_periods])
-        # published_forecasts over the tables as they will be after this run
+        self._view(con, schemas, {t: next(w for w in self.writes if w.table == t).files for t in ("series_status", "forecasts")})
+
+    def _view(self, con: duckdb.DuckDBPyConnection, schemas: dict[str, pa.Schema], new_files: dict[str, list[str]]) -> None:
+        """Write ``published_forecasts`` over the tables as they will be after this commit (the run's partition replaced)."""
+        rec, s, layout = self.record, quote(self.layout.schema), self.layout
         for table in ("series_status", "forecasts"):
-            write = next(w for w in self.writes if w.table == table)
-            new = [f"{self.lake.root}/{f}" if not self.lake.local else str(Path(self.lake.root) / f) for f in write.files]
+            files = new_files.get(table, [])
+            new = [str(Path(self.lake.root) / f) for f in files]
             lake_has = self._register(con, table, f"lake_{table}")
             parts = []
             if lake_has:
@@ -760,7 +772,7 @@ class PendingDelta:
             elif new:
                 import pyarrow.dataset as pads
 
-                con.register(f"new_{table}", pads.dataset(write.files, filesystem=self.lake.fs, format="parquet"))
+                con.register(f"new_{table}", pads.dataset(files, filesystem=self.lake.fs, format="parquet"))
                 parts.append(f"SELECT {_lit(rec.run_id)} AS run_id, * FROM new_{table}")
             con.execute(f"DROP TABLE {s}.{quote(table)}")
             if parts:
@@ -772,7 +784,7 @@ class PendingDelta:
         view = con.sql(f"SELECT * FROM {s}.published_forecasts ORDER BY job, {keys}, step")
         pf_schema = _merge_schema(schemas["published_forecasts"], _relation_schema(con, f"{s}.published_forecasts"))
         write = _TableWrite("published_forecasts", "replace-all", pf_schema)
-        _write_files(self.lake, write, view.fetch_arrow_reader(100_000), self.txn)
+        _write_files(self.lake, write, view.to_arrow_reader(100_000), self.txn)
         self.writes.append(write)
 
     def _whole(self, con: duckdb.DuckDBPyConnection, table: str, schemas: dict[str, pa.Schema], frame: pl.DataFrame | None,
@@ -814,7 +826,9 @@ class PendingDelta:
                 table = lake.table(w.table)
                 schema = w.schema
                 schema = _merge_schema(_table_arrow_schema(table), schema)
-                if w.mode == "replace-partition":
+                if w.mode == "delete-where":
+                    table.delete(w.partition[1], commit_properties=props, post_commithook_properties=hooks)
+                elif w.mode == "replace-partition":
                     col, value = w.partition
                     table.create_write_transaction(w.actions, "overwrite", schema, partition_by=[col],
                                                    partition_filters=[(col, "=", value)], commit_properties=props,
@@ -823,7 +837,8 @@ class PendingDelta:
                     table.create_write_transaction(w.actions, "overwrite", schema, commit_properties=props,
                                                    post_commithook_properties=hooks)
                 fault_point(f"lakehouse:{w.table}")
-            _commit_gate(lake, self.record.run_id, self.record.job, "publish", self.txn, plan, self.record.arflow_version)
+            _commit_gate(lake, self.record.run_id, self.record.job, getattr(self, "kind", "publish"), self.txn, plan,
+                         self.record.arflow_version)
             fault_point("lakehouse:commits")
         except BaseException as exc:
             # settle now: roll back what landed (the journal says what), unless every commit landed
@@ -957,3 +972,244 @@ def is_delta_lakehouse(lakehouse: str | Path, schema: str = "arflow", options: d
 def iter_tables() -> Iterator[str]:
     """Every table name of a lakehouse schema, in commit order."""
     yield from COMMIT_ORDER
+
+
+# ------------------------------------------------------------------------------------ vintages
+
+
+@dataclass(frozen=True)
+class LakeVintage:
+    """One vintage of a job in a lakehouse (what ``arflow vintages`` lists)."""
+
+    as_of: Any
+    run_id: str
+    attempts: int
+    status: str
+    series_total: int
+    series_published: int
+    series_quarantined: int
+    visible: int
+    published_at: dt.datetime | None
+    current: bool
+
+
+def lake_vintages(lakehouse: str | Path, schema: str, job: str, options: dict[str, str] | None = None) -> list[LakeVintage]:
+    """The job's vintages in a lakehouse, oldest first (as of the last complete publication)."""
+    lake = _Lake(lakehouse, schema, options)
+    if lake.local and not Path(lake.root).is_dir():
+        return []
+    runs = _snapshot(lake, "runs")
+    if runs is None or not runs.height:
+        return []
+    vintages = _snapshot(lake, "vintages")
+    view = _snapshot(lake, "published_forecasts")
+    shown: dict[str, int] = {}
+    if view is not None and view.height:
+        for run_id, n in view.filter(pl.col("step") == 1).group_by("run_id").len().iter_rows():
+            shown[run_id] = int(n)
+    published = {} if vintages is None else {r["run_id"]: r["published_at"] for r in vintages.iter_rows(named=True)}
+    mine = vintages.filter(pl.col("job") == job) if vintages is not None else None
+    current = mine["as_of"].max() if mine is not None and mine.height else None
+    out = []
+    for r in runs.filter(pl.col("job") == job).sort("as_of").iter_rows(named=True):
+        out.append(LakeVintage(r["as_of"], r["run_id"], int(r["attempt"]), r["status"], int(r["series_total"]),
+                               int(r["series_published"]), int(r["series_quarantined"]), shown.get(r["run_id"], 0),
+                               published.get(r["run_id"]), r["as_of"] == current))
+    return out
+
+
+def lake_latest_vintage(lakehouse: str | Path, schema: str, job: str, options: dict[str, str] | None = None) -> Any | None:
+    """The job's latest vintage that changed the view (None when none)."""
+    lake = _Lake(lakehouse, schema, options)
+    if lake.local and not Path(lake.root).is_dir():
+        return None
+    vintages = _snapshot(lake, "vintages")
+    if vintages is None:
+        return None
+    mine = vintages.filter(pl.col("job") == job)
+    return mine["as_of"].max() if mine.height else None
+
+
+def lake_period_type(lakehouse: str | Path, schema: str, options: dict[str, str] | None = None) -> str | None:
+    """DATE, TIMESTAMP or BIGINT: the period type of a lakehouse schema (None when it has no tables)."""
+    lake = _Lake(lakehouse, schema, options)
+    if lake.local and not Path(lake.root).is_dir():
+        return None
+    status = lake.table("series_status")
+    return None if status is None else _layout_of(_table_arrow_schema(status))[1]
+
+
+def prepare_removal(lakehouse: str | Path, schema: str, job: str, as_of: Any, who: str, host: str, version: str,
+                    options: dict[str, str] | None = None) -> tuple["PendingDelta", dict[str, int]]:
+    """Plan removing one vintage from every table (rows counted per table); commit or abort the result.
+
+    Raises :class:`PublishError` when the lakehouse holds no such vintage.
+    """
+    lake = _Lake(lakehouse, schema, options)
+    _recover(lake)
+    runs = _snapshot(lake, "runs")
+    mine = runs.filter((pl.col("job") == job) & (pl.col("as_of") == as_of)) if runs is not None and runs.height else None
+    if mine is None or not mine.height:
+        raise PublishError(f"lakehouse {lake.root} has no vintage {as_of} of job {job}; see arflow vintages")
+    row = mine.row(0, named=True)
+    status = lake.table("series_status")
+    keys, period_type = _layout_of(_table_arrow_schema(status))
+    key_types = tuple(_duck_type(_table_arrow_schema(status).field(k).type) for k in keys)
+    layout = TableLayout(schema, tuple(keys), key_types, period_type)
+    record = RunRecord(run_id=row["run_id"], job=job, as_of=as_of, started_at=row["started_at"],
+                       finished_at=row["finished_at"], status=row["status"], series_total=0, series_published=0,
+                       series_quarantined=0, quarantine_share=0.0, on_failure=row["on_failure"],
+                       frequency=row["frequency"] or "month", horizon=int(row["horizon"] or 1), coverage=(),
+                       source="", config_sha256="", arflow_version=version)
+    pending = PendingDelta(lake, layout, record, uuid.uuid4().hex[:16], None)
+    pending.kind = "retract"
+    counts: dict[str, int] = {}
+    try:
+        pending._journal("prepared")
+        pending._prepare_removal(row, who, host, counts)
+    except BaseException:
+        pending.abort()
+        raise
+    return pending, counts
+
+
+def _duck_type(t: pa.DataType) -> str:
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return "VARCHAR"
+    if pa.types.is_boolean(t):
+        return "BOOLEAN"
+    if pa.types.is_date(t):
+        return "DATE"
+    if pa.types.is_timestamp(t):
+        return "TIMESTAMP"
+    return {pa.int8(): "TINYINT", pa.int16(): "SMALLINT", pa.int32(): "INTEGER"}.get(t, "BIGINT")
+
+
+def _prepare_removal(self: PendingDelta, row: dict[str, Any], who: str, host: str, counts: dict[str, int]) -> None:
+    lake, rec, s = self.lake, self.record, quote(self.layout.schema)
+    run = rec.run_id
+    for table, part in RUN_TABLES:
+        t = lake.table(table)
+        if t is None:
+            continue
+        n = _count(t, part, run)
+        counts["accuracy (recorded by it)" if table == "accuracy" else table] = n
+        self.writes.append(_TableWrite(table, "replace-partition", _table_arrow_schema(t), (part, run)))
+        if table == "accuracy":
+            scored = _count(t, "run_id", run)
+            counts["accuracy"] = scored
+            if scored:
+                self.writes.append(_TableWrite(table, "delete-where", _table_arrow_schema(t), ("run_id", f"run_id = {_lit(run)}")))
+    schemas = {name: _table_arrow_schema(lake.table(name)) for name in ("runs", "vintages", "published_forecasts",
+                                                                     "vintage_removals", "job_policy")}
+    con = _memory(self.layout, ())
+    try:
+        for table, cond in (("runs", pl.col("run_id") != run), ("vintages", pl.col("run_id") != run)):
+            frame = _snapshot(lake, table)
+            counts[table] = 0 if frame is None else frame.height - frame.filter(cond).height
+            kept = frame.filter(cond) if frame is not None else None
+            write = _TableWrite(table, "replace-all", schemas[table])
+            arrow = kept.to_arrow() if kept is not None else schemas[table].empty_table()
+            _write_files(lake, write, arrow.to_reader(), self.txn)
+            self.writes.append(write)
+            if table == "vintages" and kept is not None and kept.height:
+                con.register("arflow_whole", arrow)
+                con.execute(f"INSERT INTO {s}.vintages BY NAME SELECT * FROM arflow_whole")
+        policy = _snapshot(lake, "job_policy")
+        if policy is not None and policy.height:
+            con.register("arflow_policy", policy.to_arrow())
+            con.execute(f"INSERT INTO {s}.job_policy BY NAME SELECT * FROM arflow_policy")
+        self._view(con, schemas, {})
+        removals = _snapshot(lake, "vintage_removals")
+        audit = pa.table({
+            "removed_at": [_utcnow()], "removed_by": [who], "host": [host], "job": [rec.job], "as_of": [rec.as_of],
+            "run_id": [run], "attempts": [int(row["attempt"])], "rows_removed": [json.dumps(counts, sort_keys=True)],
+            "arflow_version": [rec.arflow_version],
+        })
+        parts = ([removals.to_arrow()] if removals is not None and removals.height else []) + [audit]
+        write = _TableWrite("vintage_removals", "replace-all", schemas["vintage_removals"])
+        _write_files(lake, write, _concat(parts, schemas["vintage_removals"]).to_reader(), self.txn)
+        self.writes.append(write)
+    finally:
+        con.close()
+    self._journal("prepared")
+
+
+PendingDelta._prepare_removal = _prepare_removal  # type: ignore[attr-defined]
+
+
+def _concat(parts: list[pa.Table], schema: pa.Schema) -> pa.Table:
+    return pa.concat_tables([p.select([f.name for f in schema]).cast(schema) for p in parts])
+
+
+def _count(table: Any, column: str, value: str) -> int:
+    ds = table.to_pyarrow_dataset()
+    import pyarrow.dataset as pads
+
+    return int(ds.count_rows(filter=pads.field(column) == value))
+
+
+def convert_frames(lakehouse: str | Path, layout: TableLayout, tables: dict[str, pl.DataFrame], runs: pl.DataFrame,
+                   view: pl.DataFrame, vintages: list[dict[str, Any]], policy: list[dict[str, Any]]) -> dict[str, int]:
+    """Write an old lakehouse's rows as Delta tables (the conversion from the marker layout); rows per table."""
+    dl = _deltalake()
+    labels = tuple(sorted(c[len("lower_"):] for c in tables.get("forecasts", pl.DataFrame()).columns if c.startswith("lower_")))
+    schemas = table_schemas(layout, labels)
+    lake = _Lake(lakehouse, layout.schema)
+    txn = uuid.uuid4().hex[:16]
+    props = dl.CommitProperties(custom_metadata={_TXN_KEY: txn, "arflow.operation": "convert"})
+    frames: dict[str, pl.DataFrame] = dict(tables)
+    frames["runs"] = runs
+    frames["published_forecasts"] = view
+    frames["vintages"] = pl.DataFrame(vintages) if vintages else pl.DataFrame()
+    frames["job_policy"] = pl.DataFrame(policy) if policy else pl.DataFrame()
+    counts = {}
+    for table in COMMIT_ORDER:
+        if table == GATE:
+            continue
+        schema = schemas[table]
+        if table == "published_forecasts" and view.width:
+            schema = _merge_schema(schema, pa.schema([pa.field(c, pa.float64()) for c in view.columns
+                                                      if c.startswith(("lower_", "upper_"))]))
+        frame = frames.get(table)
+        data = _cast_frame(frame, schema) if frame is not None and frame.height else schema.empty_table()
+        part = PARTITION.get(table)
+        dl.write_deltalake(lake.uri(table), data, partition_by=[part] if part else None, mode="error",
+                           commit_properties=props, name=f"{layout.schema}.{table}")
+        counts[table] = data.num_rows
+    _commit_gate(lake, "", None, "convert", txn, list(COMMIT_ORDER), "")
+    return counts
+
+
+def _cast_frame(frame: pl.DataFrame, schema: pa.Schema) -> pa.Table:
+    """A polars frame as an Arrow table of ``schema`` (text dates and times parsed; missing columns null)."""
+    arrow = frame.to_arrow()
+    cols = []
+    for f in schema:
+        if f.name not in arrow.column_names:
+            cols.append(pa.nulls(arrow.num_rows, f.type))
+            continue
+        col = arrow.column(f.name)
+        if (pa.types.is_date(f.type) or pa.types.is_timestamp(f.type)) and (
+                pa.types.is_string(col.type) or pa.types.is_large_string(col.type)):
+            parsed = pl.Series(col.to_pylist(), dtype=pl.String).str.to_datetime(strict=False)
+            col = (parsed.dt.date() if pa.types.is_date(f.type) else parsed).to_arrow()
+        cols.append(col.cast(f.type))
+    return pa.table(cols, schema=schema)
+
+
+def removal_counts(lakehouse: str | Path, schema: str, run_id: str, options: dict[str, str] | None = None) -> dict[str, int]:
+    """Rows per table that removing ``run_id`` would drop (for ``retract --dry-run``)."""
+    lake = _Lake(lakehouse, schema, options)
+    counts: dict[str, int] = {}
+    for table, part in RUN_TABLES:
+        t = lake.table(table)
+        if t is None:
+            continue
+        counts["accuracy (recorded by it)" if table == "accuracy" else table] = _count(t, part, run_id)
+        if table == "accuracy":
+            counts["accuracy"] = _count(t, "run_id", run_id)
+    for table in ("runs", "vintages"):
+        frame = _snapshot(lake, table)
+        counts[table] = 0 if frame is None else frame.filter(pl.col("run_id") == run_id).height
+    return counts
