@@ -106,6 +106,13 @@ def _target_text(spec: JobSpec) -> str:
     return "; ".join(texts)
 
 
+def _lakehouse_status(spec: JobSpec, layout: TableLayout) -> str:
+    """The lakehouse's status line (refuses another job's layout or the old marker layout)."""
+    from .warehouse.delta_target import DeltaTarget
+
+    return "lakehouse: " + DeltaTarget.from_spec(spec.publish, layout).check_layout()
+
+
 def _open_source(spec: JobSpec) -> Any:
     """The job's source: DuckDB (default) or, with ``[source] engine = "spark"``, Spark."""
     if spec.source.engine == "spark":
@@ -124,7 +131,7 @@ def validate_job(spec: JobSpec) -> ValidationReport:
         latest, as_of_notes = place_as_of(spec, source, None, previous=previous)
         rows, series, first = source.stats(latest)
         layout = _layout(spec, source)
-    status = check_target(spec.publish.database, layout) if spec.publish.database else "lakehouse only"
+    status = check_target(spec.publish.database, layout) if spec.publish.database else _lakehouse_status(spec, layout)
     wanted = {*spec.source.keys, spec.source.period, spec.source.value}
     columns = tuple((n, t) for n, t in src.columns if n in wanted)
     return ValidationReport(spec.name, spec.source.describe(), columns, rows, series, first, latest, _target_text(spec), status,
@@ -232,6 +239,10 @@ def run_job(
     spark = spec.source.engine == "spark"
     if spec.publish.database is not None and not dry_run:
         preflight_target(spec.publish.database)  # writable and not held by another program, before any work
+    if spec.publish.lakehouse is not None:
+        from .warehouse.delta_target import require_extra
+
+        require_extra()
     previous = _previous_vintage(spec, strict=not dry_run)
     with _open_source(spec) as source:
         source.layout()
@@ -251,6 +262,9 @@ def run_job(
         layout = _layout(spec, source)
         # before any fitting: the target's schema is arflow's, with this job's layout
         target_note = check_target(spec.publish.database, layout) if spec.publish.database is not None else None
+        if spec.publish.lakehouse is not None:
+            lake_note = _lakehouse_status(spec, layout)
+            target_note = lake_note if target_note is None else f"{target_note}; {lake_note}"
         run_id = run_id_for(spec.name, as_of_value)
         emit({
             "event": "start", "job": spec.name, "run_id": run_id, "as_of": as_of_value, "dry_run": dry_run,

@@ -61,7 +61,7 @@ import polars as pl
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..errors import PublishError, SourceError
+from ..errors import PublishError, SettingsError, SourceError
 from ..runtime import fault_point
 from ..settings import coverage_label
 from .duckdb_store import COVERAGE_COLUMNS, DDL_FILES, VIEW_FILE, RunRecord, TableLayout, render_sql
@@ -87,11 +87,16 @@ _TXN_KEY = "arflow.txn"
 _STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
 
 
+def require_extra() -> None:
+    """Raise a one-line :class:`SettingsError` when the lakehouse extra (deltalake) is not installed."""
+    _deltalake()
+
+
 def _deltalake() -> Any:
     try:
         import deltalake
     except ImportError:
-        raise PublishError(
+        raise SettingsError(
             f"[publish] lakehouse needs the {EXTRA} extra (the deltalake package), which is not installed; "
             f"install it with: {INSTALL_HINT}"
         ) from None
@@ -139,17 +144,33 @@ class _Lake:
         return f"{self.root}/{table}"
 
     @property
-    def fs(self) -> Any:
-        """A pyarrow file system rooted at the schema (deltalake's object store, same options)."""
+    def store(self) -> Any:
+        """deltalake's object store rooted at the schema (same storage options as the tables)."""
         if self._fs is None:
-            import pyarrow.fs as pafs
-
             from deltalake.fs import DeltaStorageHandler
 
-            if self.local:
-                Path(self.root).mkdir(parents=True, exist_ok=True)
-            self._fs = pafs.PyFileSystem(DeltaStorageHandler(self.root, self.options or None))
+            self._fs = DeltaStorageHandler(self.root, self.options or None)
         return self._fs
+
+    def write_parquet(self, rel: str, table: pa.Table) -> int:
+        """Write one Parquet file at ``rel`` (under the schema); returns its size in bytes."""
+        if self.local:
+            path = Path(self.root) / rel
+            path.parent.mkdir(parents=True, exist_ok=True)
+            pq.write_table(table, path, compression="zstd")
+            return path.stat().st_size
+        sink = pa.BufferOutputStream()
+        pq.write_table(table, sink, compression="zstd")
+        data = sink.getvalue().to_pybytes()
+        self._put(rel, data)
+        return len(data)
+
+    def _put(self, rel: str, data: bytes) -> None:
+        out = self.store._handler.open_output_stream(rel, None)  # the raw stream takes bytes (pyarrow's wrapper does not)
+        try:
+            out.write(data)
+        finally:
+            out.close()
 
     def table(self, name: str, version: int | None = None) -> Any | None:
         dl = _deltalake()
@@ -167,13 +188,17 @@ class _Lake:
                 return json.loads((Path(self.root) / path).read_text(encoding="utf-8"))
             except FileNotFoundError:
                 return None
+        import pyarrow.fs as pafs
+
+        (info,) = self.store.get_file_info([path])
+        if info.type == pafs.FileType.NotFound:
+            return None
+        handle = self.store.open_input_file(path)
         try:
-            with self.fs.open_input_stream(path) as fh:
-                return json.loads(fh.read().decode("utf-8"))
-        except (FileNotFoundError, OSError) as exc:
-            if isinstance(exc, FileNotFoundError) or "not found" in str(exc).lower():
-                return None
-            raise
+            data = handle.read(handle.size())
+        finally:
+            handle.close()
+        return json.loads(bytes(data).decode("utf-8")) if data else None
 
     def write_json(self, path: str, payload: dict[str, Any]) -> None:
         data = json.dumps(payload, indent=1, sort_keys=True, default=str).encode("utf-8")
@@ -187,15 +212,14 @@ class _Lake:
                 os.fsync(fh.fileno())
             os.replace(tmp, target)
             return
-        with self.fs.open_output_stream(path) as fh:  # one PUT: atomic on object stores
-            fh.write(data)
+        self._put(path, data)  # one PUT: atomic on object stores
 
     def delete(self, path: str) -> None:
         try:
             if self.local:
                 (Path(self.root) / path).unlink(missing_ok=True)
             else:
-                self.fs.delete_file(path)
+                self.store.delete_file(path)
         except (FileNotFoundError, OSError):
             pass
 
@@ -325,8 +349,7 @@ def _write_files(lake: _Lake, write: _TableWrite, reader: pa.RecordBatchReader, 
         rel = f"{folder}/part-{len(write.files):05d}-{txn}.parquet"
         table = pa.Table.from_batches(pending, schema=file_schema)
         write.files.append(rel)  # recorded before writing: a partial file is cleaned up with the rest
-        pq.write_table(table, rel, filesystem=lake.fs, compression="zstd")
-        size = lake.fs.get_file_info(rel).size
+        size = lake.write_parquet(rel, table)
         values = {part_col: write.partition[1]} if part_col else {}
         write.actions.append(AddAction(rel.split("/", 1)[1], size, values, int(time.time() * 1000), True,
                                        _stats(pending, file_schema)))
@@ -629,7 +652,8 @@ class PendingDelta:
                         self._keep_previous(con, models)
                 write = _TableWrite(table, "replace-partition", _relation_schema(con, mem), (part, rec.run_id))
                 _write_files(lake, write, con.sql(f"SELECT * FROM {mem}").to_arrow_reader(100_000), self.txn)
-                con.execute(f"DELETE FROM {mem}")
+                if table not in ("series_status", "forecasts"):  # kept for published_forecasts
+                    con.execute(f"DELETE FROM {mem}")
                 self.writes.append(write)
                 self._journal("prepared")
                 fault_point(f"lakehouse-prepare:{table}")
@@ -754,31 +778,23 @@ class PendingDelta:
                     [rec.job, rec.as_of, rec.run_id, self.attempt, rec.finished_at])
         self._whole(con, "job_policy", schemas, current["job_policy"], pl.col("job") != rec.job,
                     f"INSERT INTO {s}.job_policy VALUES (?, ?, ?)", [rec.job, rec.frequency, rec.stale_after_periods])
-        self._view(con, schemas, {t: next(w for w in self.writes if w.table == t).files for t in ("series_status", "forecasts")})
+        self._view(con, schemas, True)
 
-    def _view(self, con: duckdb.DuckDBPyConnection, schemas: dict[str, pa.Schema], new_files: dict[str, list[str]]) -> None:
-        """Write ``published_forecasts`` over the tables as they will be after this commit (the run's partition replaced)."""
+    def _view(self, con: duckdb.DuckDBPyConnection, schemas: dict[str, pa.Schema], with_new: bool) -> None:
+        """Write ``published_forecasts`` over the tables as they will be after this commit (the run's partition replaced).
+
+        The memory tables ``series_status`` and ``forecasts`` hold this run's new rows (``with_new``) or none.
+        """
         rec, s, layout = self.record, quote(self.layout.schema), self.layout
         for table in ("series_status", "forecasts"):
-            files = new_files.get(table, [])
-            new = [str(Path(self.lake.root) / f) for f in files]
             lake_has = self._register(con, table, f"lake_{table}")
-            parts = []
+            con.execute(f"ALTER TABLE {s}.{quote(table)} RENAME TO {quote('new_' + table)}")
+            parts = [f"SELECT * FROM {s}.{quote('new_' + table)}"] if with_new else []
             if lake_has:
                 parts.append(f"SELECT * FROM lake_{table} WHERE run_id <> {_lit(rec.run_id)}")
-            if new and self.lake.local:
-                parts.append(f"SELECT {_lit(rec.run_id)} AS run_id, * FROM read_parquet([{', '.join(_lit(f) for f in new)}], "
-                             "union_by_name = true, hive_partitioning = false)")
-            elif new:
-                import pyarrow.dataset as pads
-
-                con.register(f"new_{table}", pads.dataset(files, filesystem=self.lake.fs, format="parquet"))
-                parts.append(f"SELECT {_lit(rec.run_id)} AS run_id, * FROM new_{table}")
-            con.execute(f"DROP TABLE {s}.{quote(table)}")
-            if parts:
-                con.execute(f"CREATE VIEW {s}.{quote(table)} AS " + " UNION ALL BY NAME ".join(parts))
-            else:
-                con.execute(render_sql(table, layout).replace("CREATE TABLE IF NOT EXISTS", "CREATE TABLE"))
+            if not parts:
+                parts = [f"SELECT * FROM {s}.{quote('new_' + table)}"]
+            con.execute(f"CREATE VIEW {s}.{quote(table)} AS " + " UNION ALL BY NAME ".join(parts))
         con.execute(render_sql(VIEW_FILE, layout))
         keys = ", ".join(quote(k) for k in layout.keys)
         view = con.sql(f"SELECT * FROM {s}.published_forecasts ORDER BY job, {keys}, step")
@@ -1119,7 +1135,7 @@ def _prepare_removal(self: PendingDelta, row: dict[str, Any], who: str, host: st
         if policy is not None and policy.height:
             con.register("arflow_policy", policy.to_arrow())
             con.execute(f"INSERT INTO {s}.job_policy BY NAME SELECT * FROM arflow_policy")
-        self._view(con, schemas, {})
+        self._view(con, schemas, False)
         removals = _snapshot(lake, "vintage_removals")
         audit = pa.table({
             "removed_at": [_utcnow()], "removed_by": [who], "host": [host], "job": [rec.job], "as_of": [rec.as_of],
