@@ -254,7 +254,9 @@ def table_schemas(layout: TableLayout, labels: tuple[str, ...]) -> dict[str, pa.
 
 def _memory(layout: TableLayout, labels: tuple[str, ...]) -> duckdb.DuckDBPyConnection:
     """An in-memory DuckDB with arflow's DDL tables (and this run's coverage columns) under the job's schema."""
-    con = duckdb.connect(":memory:")
+    from .duckdb_source import engine_config
+
+    con = duckdb.connect(":memory:", config=engine_config())
     con.execute(f"CREATE SCHEMA {quote(layout.schema)}")
     for name in DDL_FILES:
         con.execute(render_sql(name, layout))
@@ -690,12 +692,19 @@ class PendingDelta:
             )
 
     def _register(self, con: duckdb.DuckDBPyConnection, table: str, name: str) -> bool:
-        """Register the lake table's current snapshot in ``con`` as ``name`` (False when it has no rows yet)."""
-        t = self.lake.table(table)
-        if t is None:
-            return False
-        con.register(name, t.to_pyarrow_dataset())
-        return True
+        """Load the lake table's current rows into ``con`` as table ``name`` once (False when there is no table).
+
+        Streamed by deltalake's own reader into DuckDB, which spills to disk past its memory limit.
+        """
+        loaded = self.__dict__.setdefault("_loaded", {})
+        if name not in loaded:
+            t = self.lake.table(table)
+            loaded[name] = t is not None
+            if t is not None:
+                con.register("arflow_reader", _reader(t))
+                con.execute(f"CREATE TEMP TABLE {quote(name)} AS SELECT * FROM arflow_reader")
+                con.unregister("arflow_reader")
+        return loaded[name]
 
     def _keep_previous(self, con: duckdb.DuckDBPyConnection, models: str) -> None:
         """keep-previous: an earlier attempt's forecasts of series this attempt quarantines stay (stale)."""
@@ -899,6 +908,11 @@ def _recover_own(lake: _Lake) -> None:
     _recover(lake)
 
 
+def _reader(table: Any, columns: list[str] | None = None, predicate: str | None = None) -> pa.RecordBatchReader:
+    """A table's rows through deltalake's own scan (no pandas import, predicate pushed down)."""
+    return pa.RecordBatchReader.from_stream(table.scan(columns=columns, predicate=predicate))
+
+
 def _lit(text: str) -> str:
     return "'" + str(text).replace("'", "''") + "'"
 
@@ -925,7 +939,7 @@ def _gate_versions(lake: _Lake) -> dict[str, int] | None:
     gate = lake.table(GATE)
     if gate is None:
         return None
-    frame = pl.from_arrow(gate.to_pyarrow_table())
+    frame = pl.from_arrow(_reader(gate).read_all())
     if not frame.height:
         return None
     last = frame.sort("committed_at").row(-1, named=True)
@@ -939,14 +953,14 @@ def _snapshot(lake: _Lake, table: str) -> pl.DataFrame | None:
         t = lake.table(table)
         if t is None or versions is None:
             return None
-        return pl.from_arrow(t.to_pyarrow_table())
+        return pl.from_arrow(_reader(t).read_all())
     t = lake.table(table, version=versions[table])
-    return pl.from_arrow(t.to_pyarrow_table()) if t is not None else None
+    return pl.from_arrow(_reader(t).read_all()) if t is not None else None
 
 
 def _snapshot_arrow(lake: _Lake, table: str) -> pl.DataFrame | None:
     t = lake.table(table)
-    return pl.from_arrow(t.to_pyarrow_table()) if t is not None else None
+    return pl.from_arrow(_reader(t).read_all()) if t is not None else None
 
 
 def _open(lakehouse: str | Path, schema: str, options: dict[str, str] | None) -> _Lake:
@@ -1159,10 +1173,7 @@ def _concat(parts: list[pa.Table], schema: pa.Schema) -> pa.Table:
 
 
 def _count(table: Any, column: str, value: str) -> int:
-    ds = table.to_pyarrow_dataset()
-    import pyarrow.dataset as pads
-
-    return int(ds.count_rows(filter=pads.field(column) == value))
+    return _reader(table, [column], f"{column} = {_lit(value)}").read_all().num_rows
 
 
 def convert_frames(lakehouse: str | Path, layout: TableLayout, tables: dict[str, pl.DataFrame], runs: pl.DataFrame,
