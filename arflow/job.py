@@ -24,10 +24,10 @@ from .allocator import tune_for_batch
 from .errors import SettingsError, SourceError
 from .job_file import JobSpec, load_job
 from .runtime import bind_to_parent, stop_pool
-from .settings import coverage_label
-from .warehouse.duckdb_source import DuckDBSource
-from .warehouse.duckdb_store import DuckDBStore, RunRecord, TableLayout, check_target, preflight_target, run_id_for
-from .warehouse.stage import RunStage
+from .results import RESULT_TABLES
+from .warehouse.contract import PendingPublication, RunRecord, TableLayout, Target, run_id_for
+from .warehouse.registry import source_for, targets_for
+from .warehouse.stage import StagedRun
 
 Event = dict[str, Any]
 EventSink = Callable[[Event], None]
@@ -91,26 +91,18 @@ def arflow_version() -> str:
         return "0+unknown"
 
 
-def _layout(spec: JobSpec, source: DuckDBSource) -> TableLayout:
+def _layout(spec: JobSpec, source: Any) -> TableLayout:
     src = source.layout()
     return TableLayout(spec.publish.schema, spec.source.keys, src.key_types, src.period_type)
 
 
-def _target_text(spec: JobSpec) -> str:
-    pub = spec.publish
-    texts = [f"{pub.database} (schema {pub.schema}, view {pub.schema}.published_forecasts)"] if pub.database else []
-    if pub.lakehouse is not None:
-        from .warehouse.delta_target import schema_uri
-
-        texts.append(f"lakehouse {schema_uri(pub.lakehouse, pub.schema)} (Delta tables)")
-    return "; ".join(texts)
+def _target_text(targets: list[Target]) -> str:
+    return "; ".join(t.describe() for t in targets)
 
 
-def _lakehouse_status(spec: JobSpec, layout: TableLayout) -> str:
-    """The lakehouse's status line (refuses another job's layout or the old marker layout)."""
-    from .warehouse.delta_target import DeltaTarget
-
-    return "lakehouse: " + DeltaTarget.from_spec(spec.publish, layout).check_layout()
+def _check_targets(targets: list[Target]) -> str:
+    """Every target's layout check (raises on the first mismatch); their status lines joined."""
+    return "; ".join(t.check_layout() for t in targets)
 
 
 def _open_source(spec: JobSpec) -> Any:
@@ -119,7 +111,7 @@ def _open_source(spec: JobSpec) -> Any:
         from .spark_engine import SparkSource
 
         return SparkSource(spec)
-    return DuckDBSource(spec.source, spec.settings.frequency)
+    return source_for(spec.source, spec.settings.frequency)
 
 
 def validate_job(spec: JobSpec) -> ValidationReport:
@@ -129,13 +121,14 @@ def validate_job(spec: JobSpec) -> ValidationReport:
         src = source.layout()
         source.check_rows()
         latest, as_of_notes = place_as_of(spec, source, None, previous=previous)
-        rows, series, first = source.stats(latest)
+        stats = source.stats(latest)
         layout = _layout(spec, source)
-    status = check_target(spec.publish.database, layout) if spec.publish.database else _lakehouse_status(spec, layout)
+    targets = targets_for(spec.publish, layout)
+    status = _check_targets(targets)
     wanted = {*spec.source.keys, spec.source.period, spec.source.value}
     columns = tuple((n, t) for n, t in src.columns if n in wanted)
-    return ValidationReport(spec.name, spec.source.describe(), columns, rows, series, first, latest, _target_text(spec), status,
-                            tuple(as_of_notes))
+    return ValidationReport(spec.name, spec.source.describe(), columns, stats.rows, stats.series, stats.first_period, latest,
+                            _target_text(targets), status, tuple(as_of_notes))
 
 
 #: [publish] max_periods_ahead when the job file leaves it out: about a year (five for yearly data)
@@ -149,9 +142,13 @@ def _previous_vintage(spec: JobSpec, strict: bool) -> Any:
     by the target checks, and the publishing transaction checks the far-ahead
     guard again.
     """
-    from .warehouse.vintages import latest_vintage
-
-    return latest_vintage(spec, strict=False)
+    # the column types are not known before the source is open; the vintage lookup needs only the names
+    lookup = TableLayout(spec.publish.schema, spec.source.keys, (), "")
+    for target in targets_for(spec.publish, lookup):
+        value = target.latest_vintage(spec.name)
+        if value is not None:
+            return value
+    return None
 
 
 def place_as_of(
@@ -237,12 +234,9 @@ def run_job(
     settings = spec.settings
     notes: list[str] = []
     spark = spec.source.engine == "spark"
-    if spec.publish.database is not None and not dry_run:
-        preflight_target(spec.publish.database)  # writable and not held by another program, before any work
-    if spec.publish.lakehouse is not None:
-        from .warehouse.delta_target import require_extra
-
-        require_extra()
+    if not dry_run:  # writable and not held by another program, before any work
+        for target in targets_for(spec.publish, TableLayout(spec.publish.schema, spec.source.keys, (), "")):
+            target.preflight()
     previous = _previous_vintage(spec, strict=not dry_run)
     with _open_source(spec) as source:
         source.layout()
@@ -251,7 +245,8 @@ def run_job(
             spec, source, as_of, previous=previous, allow_beyond_data=allow_beyond_data, allow_jump=allow_jump
         )
         notes.extend(as_of_notes)
-        rows, series, _ = source.stats(as_of_value)
+        stats = source.stats(as_of_value)
+        rows, series = stats.rows, stats.series
         if rows == 0:
             raise SourceError(f"the source has no rows at or before --as-of {as_of}; pick a later period")
         chunk_series = spec.run.chunk_series
@@ -260,18 +255,16 @@ def run_job(
             notes.append("gates.series_fdr adjusts across all series of a run, so the run used one chunk")
         n_chunks = source.task_count(series, chunk_series) if spark else -(-series // chunk_series)
         layout = _layout(spec, source)
-        # before any fitting: the target's schema is arflow's, with this job's layout
-        target_note = check_target(spec.publish.database, layout) if spec.publish.database is not None else None
-        if spec.publish.lakehouse is not None:
-            lake_note = _lakehouse_status(spec, layout)
-            target_note = lake_note if target_note is None else f"{target_note}; {lake_note}"
+        targets = targets_for(spec.publish, layout)
+        # before any fitting: every target is arflow's, with this job's layout
+        target_note = _check_targets(targets)
         run_id = run_id_for(spec.name, as_of_value)
         emit({
             "event": "start", "job": spec.name, "run_id": run_id, "as_of": as_of_value, "dry_run": dry_run,
-            "source": spec.source.describe(), "target": _target_text(spec), "rows": rows, "series": series,
+            "source": spec.source.describe(), "target": _target_text(targets), "rows": rows, "series": series,
             "chunks": n_chunks, "workers": spec.run.workers, "notes": notes,
         })
-        stage = RunStage()
+        stage = StagedRun()
         summary = ChunkSummary()
         phases: dict[str, float] = {}
         try:
@@ -298,11 +291,10 @@ def run_job(
     attempt: int | None = None
     try:
         if dry_run:
-            status_note = target_note or "lakehouse only"
-            notes.append(f"dry run: nothing was written; target {status_note}")
+            notes.append(f"dry run: nothing was written; target {target_note}")
         else:
             t_pub = time.perf_counter()
-            emit({"event": "publish", "run_id": run_id, "target": _target_text(spec)})
+            emit({"event": "publish", "run_id": run_id, "target": _target_text(targets)})
             record = RunRecord(
                 run_id=run_id, job=spec.name, as_of=as_of_value, started_at=started_at, finished_at=_utcnow(),
                 status="held" if held else ("alarm" if alarm else "ok"), series_total=total, series_published=summary.series_published,
@@ -314,23 +306,7 @@ def run_job(
                 stale_after_periods=spec.publish.stale_after_periods,
                 jump_limit=None if allow_jump else _jump_limit(spec),
             )
-            # lakehouse: data files first (invisible), then the DuckDB transaction, then the lakehouse commits
-            staged = None
-            if spec.publish.lakehouse is not None:
-                from .warehouse.delta_target import DeltaTarget
-
-                staged = DeltaTarget.from_spec(spec.publish, layout).prepare(record, stage)
-            try:
-                if spec.publish.database is not None:
-                    attempt = DuckDBStore(spec.publish.database, layout).publish(
-                        record, tables=stage, coverage_labels=tuple(coverage_label(c) for c in settings.forecast.coverage),
-                    )
-                if staged is not None:
-                    lake_attempt = staged.commit()
-                    attempt = attempt if attempt is not None else lake_attempt
-            finally:
-                if staged is not None:
-                    staged.abort()  # no-op after a commit
+            attempt = publish_run(targets, record, stage)
             phases["publish"] = time.perf_counter() - t_pub
     finally:
         stage.cleanup()
@@ -339,11 +315,32 @@ def run_job(
         series_published=summary.series_published, series_quarantined=summary.series_quarantined,
         reason_counts=summary.reason_counts, quarantine_share=share,
         max_quarantine_share=settings.gates.max_quarantine_share, chunks=summary.chunks,
-        seconds=time.perf_counter() - clock, target=_target_text(spec), attempt=attempt, notes=tuple(notes),
+        seconds=time.perf_counter() - clock, target=_target_text(targets), attempt=attempt, notes=tuple(notes),
         phase_seconds={k: round(v, 3) for k, v in phases.items()}, held=held,
     )
     emit({"event": "finish", **outcome_dict(outcome)})
     return outcome
+
+
+def publish_run(targets: list[Target], record: RunRecord, staged: StagedRun) -> int | None:
+    """Prepare the run on every target, then commit them in ``commit_order``; the first commit's attempt.
+
+    A failure while preparing (or before the first commit) aborts every
+    pending publication, so no target shows the run; aborting after a commit
+    is a no-op for the committed ones.
+    """
+    pending: list[PendingPublication] = []
+    attempt: int | None = None
+    try:
+        for target in targets:  # already in commit order
+            pending.append(target.prepare(record, staged))
+        for publication in pending:
+            number = publication.commit()
+            attempt = number if attempt is None else attempt
+    finally:
+        for publication in pending:
+            publication.abort()  # no-op after a commit
+    return attempt
 
 
 def outcome_dict(outcome: JobOutcome) -> dict[str, Any]:
@@ -380,10 +377,6 @@ class ChunkSummary:
                             reasons, self.chunks + other.chunks)
 
 
-#: frames of a run that are staged per chunk (``actuals`` feeds the accuracy table)
-_RUN_FRAMES = ("models", "gates", "residual_acf", "forecasts", "backtests")
-
-
 def _actuals(frame: pl.DataFrame, keys: list[str], period: str, value: str, periods: int) -> pl.DataFrame:
     """The last ``periods`` distinct periods of a chunk, as (keys, period, value) for accuracy tracking."""
     recent = frame.get_column(period).unique().sort().tail(periods)
@@ -396,9 +389,9 @@ def _actuals(frame: pl.DataFrame, keys: list[str], period: str, value: str, peri
 
 
 def _stage_run(run: api.ForecastRun, stage_dir: str | Path, chunk_no: int, actuals: pl.DataFrame | None) -> ChunkSummary:
-    frames = {t: getattr(run, t) for t in _RUN_FRAMES}
+    frames = {t: getattr(run, t) for t in RESULT_TABLES}
     frames["actuals"] = actuals
-    RunStage.write_to(stage_dir, chunk_no, frames)
+    StagedRun.write_to(stage_dir, chunk_no, frames)
     return ChunkSummary(run.series_total, run.series_published, run.reason_counts(), 1)
 
 
@@ -413,8 +406,8 @@ def _stage_chunk(
 
 
 def _forecast_chunks(
-    spec: JobSpec, source: DuckDBSource, as_of: Any, chunk_series: int, n_chunks: int, series: int, emit: EventSink,
-    stage: RunStage,
+    spec: JobSpec, source: Any, as_of: Any, chunk_series: int, n_chunks: int, series: int, emit: EventSink,
+    stage: StagedRun,
 ) -> ChunkSummary:
     """Forecast chunk by chunk, staging each chunk's rows; ``[run] workers`` > 1 uses worker processes.
 
@@ -469,11 +462,6 @@ def _start_worker(parent: int | None = None) -> None:
         bind_to_parent(parent)
     tune_for_batch()
     from .core import pipeline  # noqa: F401  (imports numpy, scipy.special and the core once)
-
-
-def _read_staged(stage: RunStage, table: str) -> pl.DataFrame:
-    files = stage.files(table)
-    return pl.concat([pl.read_parquet(f) for f in files], how="diagonal_relaxed") if files else pl.DataFrame()
 
 
 def _utcnow() -> dt.datetime:

@@ -30,9 +30,9 @@ def reserved_columns() -> frozenset[str]:
     """Column names of arflow's output tables (lower-case); a key column may not reuse one.
 
     Read off the table definitions themselves
-    (:func:`arflow.warehouse.duckdb_store.output_columns`), so the two never drift apart.
+    (:func:`arflow.warehouse.duckdb_target.output_columns`), so the two never drift apart.
     """
-    from .warehouse.duckdb_store import output_columns
+    from .warehouse.duckdb_target import output_columns
 
     return output_columns()
 
@@ -308,7 +308,7 @@ def _parse_columns(section: dict[str, Any]) -> tuple[tuple[str, ...], str, str, 
     lowered = [c.lower() for c in (*keys_t, period, value)]
     if len(set(lowered)) != len(lowered):
         raise SettingsError("source.keys, source.period and source.value must name different columns")
-    from .warehouse.duckdb_store import output_column_prefixes
+    from .warehouse.duckdb_target import output_column_prefixes
 
     reserved, prefixes = reserved_columns(), output_column_prefixes()
     for k in keys_t:

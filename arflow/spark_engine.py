@@ -53,7 +53,8 @@ import pyarrow.parquet as pq
 from . import api, errors
 from .errors import ArflowError, SchemaError, SettingsError, SourceError
 from .settings import Settings
-from .warehouse.duckdb_source import DuckDBSource, SourceLayout
+from .warehouse.contract import SourceLayout, SourceStats
+from .warehouse.duckdb_source import DuckDBSource
 
 #: the project's own distribution name (the import package and command stay ``arflow``)
 INSTALL_HINT = "pip install 'arflow-gated[spark]'"
@@ -602,18 +603,18 @@ class SparkSource:
 
         return self.df.where(self._period() <= _literal(F, as_of, self.layout().period_type))
 
-    def stats(self, as_of: Any) -> tuple[int, int, Any]:
-        """(rows, series, first period) at or before ``as_of``."""
+    def stats(self, as_of: Any) -> SourceStats:
+        """Rows, series and the first period at or before ``as_of``."""
         from pyspark.sql import functions as F
 
         if self._checked is not None and as_of == self._checked[1]:  # every row: counted by check_rows already
-            return self._checked[0], self._checked[2], self._checked[3]
+            return SourceStats(self._checked[0], self._checked[2], self._checked[3])
         clock = time.perf_counter()
         row = self._run_spark(lambda: self._rows_to(as_of).agg(
             F.count(F.lit(1)), F.count_distinct(*[F.col(k) for k in self.src.keys]), F.min(self._period())
         ).first())
         self.timings["checks"] = self.timings.get("checks", 0.0) + time.perf_counter() - clock
-        return int(row[0]), int(row[1]), row[2]
+        return SourceStats(int(row[0]), int(row[1]), row[2])
 
     # -- the work -------------------------------------------------------------------------------
     def task_count(self, series: int, chunk_series: int) -> int:

@@ -20,7 +20,8 @@ import time
 
 import duckdb
 
-from arflow.warehouse.duckdb_store import DDL_FILES, TableLayout, render_sql
+from arflow.warehouse.contract import TableLayout
+from arflow.warehouse.duckdb_target import DDL_FILES, render_sql
 
 
 def best(con: duckdb.DuckDBPyConnection, sql: str) -> tuple[float, tuple]:

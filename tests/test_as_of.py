@@ -14,7 +14,7 @@ from arflow.cli import main
 from arflow.job_file import SourceSpec
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
 from arflow.warehouse.duckdb_source import DuckDBSource, SourceCalendar
-from arflow.warehouse.duckdb_store import run_id_for
+from arflow.warehouse.contract import run_id_for
 
 D = dt.date
 

@@ -24,7 +24,7 @@ import pytest
 
 from arflow.cli import main
 from arflow.sample.panels import ar_panel, default_job, job_toml, mixed_panel, warehouse_state, write_table
-from arflow.warehouse.duckdb_store import output_column_prefixes, output_columns
+from arflow.warehouse.duckdb_target import output_column_prefixes, output_columns
 
 
 def digest(db: Path) -> str:
@@ -139,7 +139,7 @@ def test_full_temporary_folder(published: Path, monkeypatch) -> None:
         raise polars.exceptions.ComputeError(
             "parquet: File out of specification: underlying IO error: No space left on device (os error 28)")
 
-    monkeypatch.setattr(stage.RunStage, "write_to", staticmethod(full))
+    monkeypatch.setattr(stage.StagedRun, "write_to", staticmethod(full))
     job = default_job()
     _refused(published, _write_job(published, job), 3, "No space left on device")
 

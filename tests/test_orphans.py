@@ -24,7 +24,7 @@ import pytest
 
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
 from arflow.warehouse import stage as stage_module
-from arflow.warehouse.stage import STAGE_PREFIX, RunStage, sweep_stale
+from arflow.warehouse.stage import STAGE_PREFIX, StagedRun, sweep_stale
 
 
 def _big_panel(n_series: int = 4_000, n_periods: int = 120, seed: int = 7) -> pl.DataFrame:
@@ -200,7 +200,7 @@ def test_sweep_keeps_live_and_unknown_owners_and_removes_dead_ones(tmp_path: Pat
 
 
 def test_stage_records_its_owner_and_cleans_up(tmp_path: Path) -> None:
-    stage = RunStage(tmp_path)
+    stage = StagedRun(tmp_path)
     owner = (stage.dir / "owner").read_text(encoding="ascii").split()
     assert int(owner[0]) == os.getpid()
     assert sweep_stale(tmp_path) == [] and stage.dir.is_dir()  # a live run's folder is never touched

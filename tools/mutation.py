@@ -45,7 +45,7 @@ TARGETS: dict[str, tuple[list[str], list[str]]] = {
         ],
     ),
     "publish": (
-        ["arflow/warehouse/duckdb_store.py"],
+        ["arflow/warehouse/duckdb_target.py"],
         [
             "tests/test_published_reference.py", "tests/test_accuracy_tracking.py",
             "tests/test_job_atomicity.py", "tests/test_cli_run.py",

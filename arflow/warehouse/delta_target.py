@@ -64,16 +64,16 @@ import pyarrow.parquet as pq
 from ..errors import PublishError, SettingsError, SourceError
 from ..runtime import fault_point
 from ..settings import coverage_label
-from .duckdb_store import COVERAGE_COLUMNS, DDL_FILES, VIEW_FILE, RunRecord, TableLayout, render_sql
+from ..results import RUN_TABLES as RESULTS_RUN_TABLES
+from ..results import VIEW_TABLES
+from .contract import LAKEHOUSE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
+from .duckdb_target import COVERAGE_COLUMNS, DDL_FILES, VIEW_FILE, render_sql
 from .identifiers import check_identifier, quote
 
 EXTRA = "lakehouse"
 INSTALL_HINT = "pip install 'arflow-gated[lakehouse]'"
-#: run tables (partition column), in commit order
-RUN_TABLES: tuple[tuple[str, str], ...] = (
-    ("series_status", "run_id"), ("models", "run_id"), ("gates", "run_id"), ("residual_acf", "run_id"),
-    ("forecasts", "run_id"), ("backtests", "run_id"), ("accuracy", "recorded_by"),
-)
+#: run tables (partition column), in commit order: accuracy rows belong to the run that scored them
+RUN_TABLES: tuple[tuple[str, str], ...] = tuple((t, "recorded_by" if t == "accuracy" else "run_id") for t in RESULTS_RUN_TABLES)
 #: small tables, rewritten whole in one commit
 WHOLE_TABLES = ("runs", "vintages", "job_policy", "published_forecasts", "vintage_removals")
 GATE = "commits"
@@ -519,7 +519,7 @@ def _parquet(files: list[str]) -> str | None:
 class DeltaTarget:
     """Publishes runs to Delta tables under ``<lakehouse>/<schema>`` (see the module text)."""
 
-    commit_order = 10
+    commit_order = LAKEHOUSE_ORDER
 
     def __init__(self, lakehouse: str | Path, layout: TableLayout, options: dict[str, str] | None = None) -> None:
         _deltalake()
@@ -557,13 +557,7 @@ class DeltaTarget:
         if status is None:
             return "tables will be created"
         keys, period_type = _layout_of(_table_arrow_schema(status))
-        where = f"lakehouse {self.lake.root}"
-        fix = "publish this job to another schema with [publish] schema"
-        if [k.lower() for k in keys] != [k.lower() for k in self.layout.keys]:
-            raise PublishError(f"{where} holds results keyed by ({', '.join(keys)}), this job's keys are "
-                               f"({', '.join(self.layout.keys)}); {fix}")
-        if period_type != self.layout.period_type:
-            raise PublishError(f"{where} holds {period_type} periods, this job's are {self.layout.period_type}; {fix}")
+        check_layout_match(f"lakehouse {self.lake.root}", keys, period_type, self.layout)
         return "tables exist"
 
     def latest_vintage(self, job: str) -> Any | None:
@@ -631,7 +625,7 @@ class PendingDelta:
             models = _parquet(_staged_files(staged, "models"))
             held = rec.held
             for table, part in RUN_TABLES:
-                if held and table in ("series_status", "forecasts", "accuracy"):
+                if held and table in (*VIEW_TABLES, "accuracy"):
                     continue
                 mem = f"{s}.{quote(table)}"
                 if table == "series_status":
@@ -767,16 +761,7 @@ class PendingDelta:
     def _whole_tables(self, con: duckdb.DuckDBPyConnection, schemas: dict[str, pa.Schema],
                       current: dict[str, pl.DataFrame | None], held: bool) -> None:
         rec, s = self.record, quote(self.layout.schema)
-        duration = (rec.finished_at - rec.started_at).total_seconds()
-        run_row = {
-            "run_id": rec.run_id, "job": rec.job, "as_of": rec.as_of, "attempt": self.attempt,
-            "started_at": rec.started_at, "finished_at": rec.finished_at, "duration_seconds": duration,
-            "status": rec.status, "series_total": rec.series_total, "series_published": rec.series_published,
-            "series_quarantined": rec.series_quarantined, "quarantine_share": rec.quarantine_share,
-            "reason_counts": json.dumps(rec.reason_counts, sort_keys=True), "on_failure": rec.on_failure,
-            "frequency": rec.frequency, "horizon": rec.horizon, "coverage": list(rec.coverage), "source": rec.source,
-            "config_sha256": rec.config_sha256, "arflow_version": rec.arflow_version,
-        }
+        run_row = {"run_id": rec.run_id, **runs_row(rec, self.attempt)}
         self._whole(con, "runs", schemas, current["runs"], pl.col("run_id") != rec.run_id,
                     f"INSERT INTO {s}.runs ({', '.join(quote(c) for c in run_row)}) VALUES ({', '.join('?' for _ in run_row)})",
                     list(run_row.values()))

@@ -29,6 +29,7 @@ import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
 from ..runtime import fault_point, unwatch_connection, watch_connection
+from .contract import SourceLayout, SourceStats
 from .identifiers import quote, quote_qualified
 
 _INTEGER_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "HUGEINT", "UHUGEINT"}
@@ -117,6 +118,23 @@ def normalise_as_of(value: Any, period_type: str) -> Any:
     return value
 
 
+def parse_vintage(text: Any, period_type: str) -> Any:
+    """A vintage as the user typed it, as a value of the target's period type (normalised like --as-of)."""
+    if not isinstance(text, str):
+        return normalise_as_of(text, period_type)
+    raw = text.strip()
+    try:
+        if period_type == "BIGINT":
+            return int(raw)
+        if re.fullmatch(r"\d{4}-\d{2}", raw):
+            raw += "-01"
+        if re.fullmatch(r"\d{4}-\d{2}-\d{2}", raw):
+            return normalise_as_of(dt.date.fromisoformat(raw), period_type)
+        return normalise_as_of(dt.datetime.fromisoformat(raw), period_type)
+    except (ValueError, OverflowError):
+        raise SettingsError(f"--as-of {raw[:40]!r} is not a period like the target's ({period_type}); e.g. 2025-06-01") from None
+
+
 def _cut(text: str, limit: int = 40) -> str:
     """Printable text, cut to ``limit`` characters (for error messages)."""
     clean = "".join(c if c.isprintable() else "?" for c in text)
@@ -187,16 +205,6 @@ def periods_between(frequency: str, earlier: Any, later: Any) -> int:
         return (b - a).days // 7
     months = (b.year - a.year) * 12 + (b.month - a.month)
     return months // {"month": 1, "quarter": 3, "year": 12}[frequency]
-
-
-@dataclass(frozen=True)
-class SourceLayout:
-    """Checked types of the source: DuckDB type names used in the output DDL."""
-
-    key_types: tuple[str, ...]
-    period_type: str  # DATE, TIMESTAMP or BIGINT
-    value_type: str
-    columns: tuple[tuple[str, str], ...]
 
 
 class DuckDBSource:
@@ -474,14 +482,14 @@ class DuckDBSource:
     def _period_expr(self) -> str:
         return f"CAST({quote(self.spec.period)} AS {self.layout().period_type})"
 
-    def stats(self, as_of: Any) -> tuple[int, int, Any]:
-        """(rows, series, first period) at or before ``as_of``."""
+    def stats(self, as_of: Any) -> SourceStats:
+        """Rows, series and the first period at or before ``as_of``."""
         keys = ", ".join(quote(k) for k in self.spec.keys)
         rows, series, first = self._sql(
             f"SELECT count(*), count(DISTINCT ({keys})), min({self._period_expr()}) FROM {self._from()} WHERE {self._period_expr()} <= ?",
             [as_of],
         )[0]
-        return int(rows), int(series), first
+        return SourceStats(int(rows), int(series), first)
 
     def chunks(self, as_of: Any, chunk_series: int, batch_rows: int = 8_192) -> Iterator[pl.DataFrame]:
         """Rows at or before ``as_of``, grouped by series, in chunks of about ``chunk_series`` whole series.

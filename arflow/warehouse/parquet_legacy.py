@@ -27,7 +27,8 @@ import duckdb
 import polars as pl
 
 from ..errors import PublishError, SourceError
-from .duckdb_store import VIEW_FILE, TableLayout, render_sql
+from .contract import TableLayout
+from .duckdb_target import VIEW_FILE, render_sql
 from .identifiers import check_identifier
 
 COMMITS = "_commits"

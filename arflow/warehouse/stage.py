@@ -4,7 +4,7 @@ Holding every result of a million-series run in memory until the publishing
 transaction would cost gigabytes; writing each chunk's frames to a private
 temporary folder keeps memory bounded by one chunk, and DuckDB streams the
 files into the warehouse inside the single publishing transaction
-(:meth:`arflow.warehouse.duckdb_store.DuckDBStore.publish`). The folder is
+(each target's ``prepare``, see ``warehouse/contract.py``). The folder is
 removed afterwards whatever happens (normal end, error, SIGTERM, Ctrl-C; and at
 interpreter exit as a last resort); nothing there is ever visible to readers.
 
@@ -23,17 +23,11 @@ import sys
 import tempfile
 from pathlib import Path
 
-import duckdb
+from collections.abc import Iterator
+
 import polars as pl
-
-from .duckdb_store import RunTables
-
-STAGED_TABLES = ("models", "gates", "residual_acf", "forecasts", "backtests", "actuals")
-
-
-def _literal(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 STAGE_PREFIX = "arflow-stage-"
 OWNER_FILE = "owner"
@@ -124,10 +118,14 @@ def _remove_live_stages() -> None:
     _live.clear()
 
 
-class RunStage(RunTables):
-    """Parquet parts per table under a fresh temporary folder.
+class StagedRun:
+    """A run's rows as Parquet parts per table under a fresh temporary folder (what targets publish).
 
-    >>> stage = RunStage()
+    Tables are those of :data:`arflow.results.STAGED_TABLES`; ``actuals``
+    (keys, ``period``, ``value``) are the recent observations accuracy tracking
+    scores earlier vintages with.
+
+    >>> stage = StagedRun()
     >>> stage.write(0, {"models": pl.DataFrame({"k": [1], "decision": ["published"]})})
     >>> len(stage.files("models")), stage.files("gates")
     (1, [])
@@ -166,17 +164,28 @@ class RunStage(RunTables):
                 seen.setdefault(c, None)
         return list(seen)
 
-    def relation(self, con: duckdb.DuckDBPyConnection, table: str) -> str | None:
-        files = self.files(table)
-        if not files:
+    def arrow(self, table: str) -> pa.Table | None:
+        """All rows of ``table`` as one Arrow table (columns unioned by name); None when there are none."""
+        parts = [pq.read_table(f) for f in self.files(table)]
+        if not parts:
             return None
-        return f"read_parquet([{', '.join(_literal(f) for f in files)}], union_by_name = true)"
+        return pa.concat_tables(parts, promote_options="permissive")
+
+    def batches(self, table: str) -> Iterator[pa.RecordBatch]:
+        """``table``'s rows part by part (memory bounded by one part)."""
+        for f in self.files(table):
+            yield from pq.ParquetFile(f).iter_batches()
+
+    def frame(self, table: str) -> pl.DataFrame:
+        """All rows of ``table`` as a polars frame (empty when there are none)."""
+        files = self.files(table)
+        return pl.concat([pl.read_parquet(f) for f in files], how="diagonal_relaxed") if files else pl.DataFrame()
 
     def cleanup(self) -> None:
         shutil.rmtree(self.dir, ignore_errors=True)
         _live.discard(self.dir)
 
-    def __enter__(self) -> "RunStage":
+    def __enter__(self) -> "StagedRun":
         return self
 
     def __exit__(self, *exc: object) -> None:

@@ -15,7 +15,6 @@ import datetime as dt
 import getpass
 import json
 import os
-import re
 import socket
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -24,8 +23,10 @@ from typing import Any
 import duckdb
 
 from ..errors import PublishError, SettingsError
-from .duckdb_source import first_line, is_lock_error, lock_message, normalise_as_of
-from .duckdb_store import RUN_TABLES, TableLayout, _open, render_sql
+from ..results import RUN_TABLES
+from .contract import TableLayout
+from .duckdb_source import first_line, is_lock_error, lock_message, parse_vintage
+from .duckdb_target import _open, render_sql
 from .identifiers import quote
 
 #: every table holding a vintage's rows, with the column naming its run (accuracy twice: scores of
@@ -107,23 +108,6 @@ def _read_only(database: Path) -> duckdb.DuckDBPyConnection | None:
         if is_lock_error(exc):
             raise PublishError(f"target {lock_message(database)}") from None
         raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
-
-
-def parse_vintage(text: Any, period_type: str) -> Any:
-    """A vintage as the user typed it, as a value of the target's period type (normalised like --as-of)."""
-    if not isinstance(text, str):
-        return normalise_as_of(text, period_type)
-    raw = text.strip()
-    try:
-        if period_type == "BIGINT":
-            return int(raw)
-        if re.fullmatch(r"\d{4}-\d{2}", raw):
-            raw += "-01"
-        if re.fullmatch(r"\d{4}-\d{2}-\d{2}", raw):
-            return normalise_as_of(dt.date.fromisoformat(raw), period_type)
-        return normalise_as_of(dt.datetime.fromisoformat(raw), period_type)
-    except (ValueError, OverflowError):
-        raise SettingsError(f"--as-of {raw[:40]!r} is not a period like the target's ({period_type}); e.g. 2025-06-01") from None
 
 
 # ------------------------------------------------------------------------------------ latest

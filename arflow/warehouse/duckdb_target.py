@@ -1,8 +1,11 @@
-"""Publish one run to a DuckDB warehouse in a single transaction.
+"""The DuckDB warehouse target: one run published in a single transaction.
 
 Tables are created from the ``arflow.sql`` DDL files on first use. A run's
-rows go in with bulk Arrow inserts between ``BEGIN`` and ``COMMIT``; any error
-(or a kill) before ``COMMIT`` leaves the warehouse exactly as it was.
+rows go in with bulk inserts from the staged Parquet parts between ``BEGIN``
+and ``COMMIT``: :meth:`DuckDBTarget.prepare` does everything up to ``COMMIT``
+on an open transaction, the returned :class:`DuckDBPending` commits or rolls
+back. Any error (or a kill) before ``COMMIT`` leaves the warehouse exactly as
+it was.
 
 The run id is deterministic, ``"<job>@<as_of>"``: re-running a vintage deletes
 and rewrites that vintage's rows inside the same transaction (``runs.attempt``
@@ -13,27 +16,25 @@ no duplicates, while other vintages stay for audit.
 from __future__ import annotations
 
 import datetime as dt
-import json
 import os
 import re
 import tempfile
-from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
 from string import Template
 from typing import Any
 
 import duckdb
-import polars as pl
 
 from ..errors import PublishError
+from ..results import ACTUALS, RUN_TABLES, SERIES_STATUS
 from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
-from ..settings import MAX_COVERAGE_LEVELS
+from ..settings import MAX_COVERAGE_LEVELS, coverage_label
+from .contract import DATABASE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
 from .duckdb_source import engine_config, first_line, is_lock_error, lock_message
 from .identifiers import quote
+from .stage import StagedRun
 
-#: Tables written per run, in insert order (the fault hook names these).
-RUN_TABLES = ("series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy")
 DDL_FILES = ("runs", "vintages", "series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy",
              "job_policy", "vintage_removals")
 VIEW_FILE = "published_forecasts"
@@ -41,52 +42,6 @@ ACCURACY_VIEW = "accuracy_by_horizon"
 #: per coverage level: table -> column prefixes added with ALTER TABLE
 COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("coverage",), "accuracy": ("covered",)}
 _STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
-
-
-def run_id_for(job: str, as_of: Any) -> str:
-    """The deterministic id of a job's vintage."""
-    text = as_of.isoformat() if isinstance(as_of, (dt.date, dt.datetime)) else str(as_of)
-    return f"{job}@{text}"
-
-
-@dataclass(frozen=True)
-class TableLayout:
-    """What the output tables are templated by: schema, key columns and types, period type."""
-
-    schema: str
-    keys: tuple[str, ...]
-    key_types: tuple[str, ...]
-    period_type: str
-
-
-@dataclass(frozen=True)
-class RunRecord:
-    """The ``runs`` row of one run (``attempt`` is set by the store)."""
-
-    run_id: str
-    job: str
-    as_of: Any
-    started_at: dt.datetime
-    finished_at: dt.datetime
-    status: str
-    series_total: int
-    series_published: int
-    series_quarantined: int
-    quarantine_share: float
-    on_failure: str
-    frequency: str
-    horizon: int
-    coverage: tuple[float, ...]
-    source: str
-    config_sha256: str
-    arflow_version: str
-    reason_counts: dict[str, int] = field(default_factory=dict)
-    #: hold_on_alarm: write the run's records but leave series_status, forecasts and the view as they were
-    held: bool = False
-    #: [publish] stale_after_periods (None: kept forecasts expire only when all their periods are past)
-    stale_after_periods: int | None = None
-    #: refuse (inside the transaction) a vintage more than this many periods after the job's latest one (None: no check)
-    jump_limit: int | None = None
 
 
 def load_sql(name: str) -> str:
@@ -158,19 +113,8 @@ def _existing_layout(con: duckdb.DuckDBPyConnection, schema: str) -> tuple[list[
 def check_layout(con: duckdb.DuckDBPyConnection, layout: TableLayout, database: Path) -> None:
     """Refuse to mix jobs with different keys or period types in one schema."""
     existing = _existing_layout(con, layout.schema)
-    if existing is None:
-        return
-    keys, period_type = existing
-    if [k.lower() for k in keys] != [k.lower() for k in layout.keys]:
-        raise PublishError(
-            f"schema {layout.schema} in {database} holds results keyed by ({', '.join(keys)}), this job's keys are "
-            f"({', '.join(layout.keys)}); publish this job to another schema with [publish] schema"
-        )
-    if period_type != layout.period_type:
-        raise PublishError(
-            f"schema {layout.schema} in {database} holds {period_type} periods, this job's are {layout.period_type}; "
-            "publish this job to another schema with [publish] schema"
-        )
+    if existing is not None:
+        check_layout_match(f"schema {layout.schema} in {database}", *existing, layout)
 
 
 def check_target(database: Path, layout: TableLayout) -> str:
@@ -411,71 +355,83 @@ def preflight_target(database: Path) -> None:
         raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
 
 
-class DuckDBStore:
-    """Writes runs to ``database`` under ``layout.schema``."""
+class DuckDBTarget:
+    """Publishes runs to the DuckDB file ``database`` under ``layout.schema`` (``[publish] database``)."""
+
+    commit_order = DATABASE_ORDER
 
     def __init__(self, database: Path, layout: TableLayout) -> None:
-        self.database = database
+        self.database = Path(database)
         self.layout = layout
         self._schema = quote(layout.schema)
+
+    @classmethod
+    def from_spec(cls, publish: Any, layout: TableLayout) -> "DuckDBTarget":
+        """The target of ``[publish] database`` (``publish``: a ``PublishSpec``)."""
+        return cls(publish.database, layout)
 
     def describe(self) -> str:
         return f"{self.database} (schema {self.layout.schema}, view {self.layout.schema}.published_forecasts)"
 
-    def publish(
-        self,
-        record: RunRecord,
-        *,
-        coverage_labels: tuple[str, ...],
-        tables: "RunTables | None" = None,
-        **frames: pl.DataFrame | None,
-    ) -> int:
-        """Write one run atomically; returns the attempt number of this vintage.
+    def preflight(self) -> None:
+        preflight_target(self.database)
 
-        The run's rows come from ``tables`` (frames in memory or Parquet files
-        staged on disk, see :class:`RunTables`) or, for convenience, from
-        keyword frames (``models=``, ``gates=``, ``residual_acf=``,
-        ``forecasts=``, ``backtests=``, ``actuals=``). ``actuals`` (keys,
-        period, value) lets the run record, once, how earlier published
-        vintages fared (table ``accuracy``).
+    def check_layout(self) -> str:
+        return check_target(self.database, self.layout)
+
+    def latest_vintage(self, job: str) -> Any | None:
+        """The job's latest vintage in ``vintages`` (None when none, or the file is locked by another process)."""
+        if not self.database.exists():
+            return None
+        try:
+            con = duckdb.connect(str(self.database), read_only=True)
+        except duckdb.Error as exc:
+            if is_lock_error(exc):
+                return None  # reported by the target checks; the transaction checks the far-ahead guard again
+            raise PublishError(f"cannot open target database {self.database} ({first_line(exc)}); check publish.database") from None
+        try:
+            (n,) = con.execute(
+                "SELECT count(*) FROM information_schema.tables WHERE table_schema = ? AND table_name = 'vintages'",
+                [self.layout.schema],
+            ).fetchone() or (0,)
+            if not n:
+                return None
+            (value,) = con.execute(
+                f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = ?", [job]
+            ).fetchone() or (None,)
+            return value
+        finally:
+            con.close()
+
+    def publish(self, record: RunRecord, staged: StagedRun) -> int:
+        """:meth:`prepare` and commit in one call; returns the attempt number of this vintage."""
+        return self.prepare(record, staged).commit()
+
+    def prepare(self, record: RunRecord, staged: StagedRun) -> "DuckDBPending":
+        """Write one run inside an open transaction, everything but ``COMMIT``.
+
+        The run's rows come from the staged Parquet parts; ``actuals`` (keys,
+        period, value) let the run record, once, how earlier published vintages
+        fared (table ``accuracy``).
         """
-        tables = tables if tables is not None else FrameTables(frames)
+        coverage_labels = tuple(coverage_label(c) for c in record.coverage)
+        tables = _StagedRelations(staged)
         con = _open(self.database)
         watch_connection(con)  # a stop signal before COMMIT interrupts the running statement (then rolls back)
+        pending = DuckDBPending(self.database, con)
         try:
             con.execute("BEGIN TRANSACTION")
             self._ensure_tables(con, coverage_labels)
             (previous,) = con.execute(
                 f"SELECT max(attempt) FROM {self._schema}.runs WHERE run_id = ?", [record.run_id]
             ).fetchone() or (None,)
-            attempt = int(previous or 0) + 1
+            pending.attempt = attempt = int(previous or 0) + 1
             self._check_jump(con, record)
-            held = record.held
-            # a held run replaces the vintage's records but not what the view reads (series_status, forecasts)
-            untouched = ("series_status", "forecasts", "accuracy") if held else ()
-            for table in (*RUN_TABLES, "runs"):
-                if table in untouched:
-                    continue
-                if table == "forecasts" and record.on_failure == "keep-previous":
-                    self._delete_forecasts_keeping_vetted(con, tables, record)
-                    continue
-                column = "recorded_by" if table == "accuracy" else "run_id"
-                con.execute(f"DELETE FROM {self._schema}.{quote(table)} WHERE {column} = ?", [record.run_id])
-            if not held:
-                con.execute(f"DELETE FROM {self._schema}.vintages WHERE job = ? AND as_of = ?", [record.job, record.as_of])
-            for table in RUN_TABLES:
-                if table in untouched:
-                    pass
-                elif table == "series_status":
-                    self._insert_status(con, tables, record)
-                elif table == "accuracy":
-                    self._record_accuracy(con, tables, record, coverage_labels)
-                else:
-                    self._insert(con, table, tables, record)
-                fault_point(table)
+            self._delete_attempt(con, tables, record)
+            self._insert_tables(con, tables, record, coverage_labels)
             self._insert_run(con, record, attempt)
             fault_point("runs")
-            if not held:
+            if not record.held:
                 con.execute(
                     f"INSERT INTO {self._schema}.vintages VALUES (?, ?, ?, ?, ?)",
                     [record.job, record.as_of, record.run_id, attempt, record.finished_at],
@@ -484,28 +440,46 @@ class DuckDBStore:
             fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
             con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
-            hold_signals()  # from here a stop signal waits: a committed run exits with its real status
-            con.execute("COMMIT")
-            fault_point("commit")
-            return attempt
         except BaseException as exc:
-            release_signals()
-            try:
-                con.execute("ROLLBACK")
-            except duckdb.Error:
-                pass
+            pending.abort()
             if isinstance(exc, duckdb.Error):
-                raise PublishError(
-                    f"publishing to {self.database} failed and was rolled back ({first_line(exc)}); earlier results are unchanged"
-                ) from None
+                raise pending.failed(exc) from None
             raise
-        finally:
-            unwatch_connection(con)
-            tables.release(con)
-            con.close()
+        return pending
+
+    def _untouched(self, record: RunRecord) -> tuple[str, ...]:
+        """A held run replaces the vintage's records but not what the view reads (series_status, forecasts)."""
+        return (SERIES_STATUS, "forecasts", "accuracy") if record.held else ()
+
+    def _delete_attempt(self, con: duckdb.DuckDBPyConnection, tables: "_StagedRelations", record: RunRecord) -> None:
+        """Remove an earlier attempt's rows of this vintage (keep-previous keeps quarantined series' forecasts)."""
+        for table in (*RUN_TABLES, "runs"):
+            if table in self._untouched(record):
+                continue
+            if table == "forecasts" and record.on_failure == "keep-previous":
+                self._delete_forecasts_keeping_vetted(con, tables, record)
+                continue
+            column = "recorded_by" if table == "accuracy" else "run_id"
+            con.execute(f"DELETE FROM {self._schema}.{quote(table)} WHERE {column} = ?", [record.run_id])
+        if not record.held:
+            con.execute(f"DELETE FROM {self._schema}.vintages WHERE job = ? AND as_of = ?", [record.job, record.as_of])
+
+    def _insert_tables(
+        self, con: duckdb.DuckDBPyConnection, tables: "_StagedRelations", record: RunRecord, coverage_labels: tuple[str, ...]
+    ) -> None:
+        for table in RUN_TABLES:
+            if table in self._untouched(record):
+                pass
+            elif table == SERIES_STATUS:
+                self._insert_status(con, tables, record)
+            elif table == "accuracy":
+                self._record_accuracy(con, tables, record, coverage_labels)
+            else:
+                self._insert(con, table, tables, record)
+            fault_point(table)
 
     def _delete_forecasts_keeping_vetted(
-        self, con: duckdb.DuckDBPyConnection, tables: "RunTables", record: RunRecord
+        self, con: duckdb.DuckDBPyConnection, tables: "_StagedRelations", record: RunRecord
     ) -> None:
         """Delete an earlier attempt's forecasts of this vintage, except for series this attempt quarantines.
 
@@ -598,7 +572,7 @@ class DuckDBStore:
         ).fetchall()
         return {r[0] for r in rows}
 
-    def _insert(self, con: duckdb.DuckDBPyConnection, table: str, tables: "RunTables", record: RunRecord) -> None:
+    def _insert(self, con: duckdb.DuckDBPyConnection, table: str, tables: "_StagedRelations", record: RunRecord) -> None:
         source = tables.relation(con, table)
         if source is None:
             return
@@ -610,7 +584,7 @@ class DuckDBStore:
             [record.run_id],
         )
 
-    def _insert_status(self, con: duckdb.DuckDBPyConnection, tables: "RunTables", record: RunRecord) -> None:
+    def _insert_status(self, con: duckdb.DuckDBPyConnection, tables: "_StagedRelations", record: RunRecord) -> None:
         source = tables.relation(con, "models")
         if source is None:
             return
@@ -622,10 +596,10 @@ class DuckDBStore:
         )
 
     def _record_accuracy(
-        self, con: duckdb.DuckDBPyConnection, tables: "RunTables", record: RunRecord, coverage_labels: tuple[str, ...]
+        self, con: duckdb.DuckDBPyConnection, tables: "_StagedRelations", record: RunRecord, coverage_labels: tuple[str, ...]
     ) -> None:
         """Score earlier published vintages of this job against the actuals this run saw (once each)."""
-        source = tables.relation(con, "actuals")
+        source = tables.relation(con, ACTUALS)
         if source is None:
             return
         s = self._schema
@@ -659,79 +633,79 @@ class DuckDBStore:
         )
 
     def _insert_run(self, con: duckdb.DuckDBPyConnection, record: RunRecord, attempt: int) -> None:
-        duration = (record.finished_at - record.started_at).total_seconds()
-        values = {
-            "run_id": record.run_id,
-            "job": record.job,
-            "as_of": record.as_of,
-            "attempt": attempt,
-            "started_at": record.started_at,
-            "finished_at": record.finished_at,
-            "duration_seconds": duration,
-            "status": record.status,
-            "series_total": record.series_total,
-            "series_published": record.series_published,
-            "series_quarantined": record.series_quarantined,
-            "quarantine_share": record.quarantine_share,
-            "reason_counts": json.dumps(record.reason_counts, sort_keys=True),
-            "on_failure": record.on_failure,
-            "frequency": record.frequency,
-            "horizon": record.horizon,
-            "coverage": list(record.coverage),
-            "source": record.source,
-            "config_sha256": record.config_sha256,
-            "arflow_version": record.arflow_version,
-        }
+        values = {"run_id": record.run_id, **runs_row(record, attempt)}
         cols = ", ".join(quote(c) for c in values)
         marks = ", ".join("?" for _ in values)
         con.execute(f"INSERT INTO {self._schema}.runs ({cols}) VALUES ({marks})", list(values.values()))
 
 
-class RunTables:
-    """The rows of one run, as DuckDB can read them inside the publishing transaction.
+class DuckDBPending:
+    """A run written inside an open DuckDB transaction: :meth:`commit` or :meth:`abort` it."""
 
-    Subclasses hold them in memory (:class:`FrameTables`) or as Parquet files
-    staged on local disk (:class:`arflow.warehouse.stage.RunStage`), which keeps
-    a large run's memory bounded by one chunk.
-    """
+    def __init__(self, database: Path, con: duckdb.DuckDBPyConnection) -> None:
+        self.database = database
+        self.attempt = 0
+        self._con: duckdb.DuckDBPyConnection | None = con
+
+    def failed(self, exc: BaseException) -> PublishError:
+        return PublishError(
+            f"publishing to {self.database} failed and was rolled back ({first_line(exc)}); earlier results are unchanged"
+        )
+
+    def commit(self) -> int:
+        """``COMMIT``: the run becomes visible; returns the vintage's attempt number."""
+        con = self._con
+        assert con is not None, "publication already finished"
+        try:
+            hold_signals()  # from here a stop signal waits: a committed run exits with its real status
+            con.execute("COMMIT")
+            fault_point("commit")
+        except BaseException as exc:
+            release_signals()
+            self.abort()
+            if isinstance(exc, duckdb.Error):
+                raise self.failed(exc) from None
+            raise
+        self._close()
+        return self.attempt
+
+    def abort(self) -> None:
+        """``ROLLBACK`` (idempotent; nothing to do after a commit)."""
+        con = self._con
+        if con is None:
+            return
+        try:
+            con.execute("ROLLBACK")
+        except duckdb.Error:
+            pass
+        self._close()
+
+    def _close(self) -> None:
+        con, self._con = self._con, None
+        if con is not None:
+            unwatch_connection(con)
+            con.close()
+
+
+def _literal(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+class _StagedRelations:
+    """A staged run's tables as FROM-clause expressions DuckDB streams inside the transaction."""
 
     value_column = "value"
     period_column = "period"
 
-    def columns(self, table: str) -> list[str]:  # pragma: no cover - interface
-        raise NotImplementedError
-
-    def relation(self, con: duckdb.DuckDBPyConnection, table: str) -> str | None:  # pragma: no cover
-        """A FROM-clause expression for ``table`` (None when the run has no such rows)."""
-        raise NotImplementedError
-
-    def release(self, con: duckdb.DuckDBPyConnection) -> None:
-        """Undo what :meth:`relation` registered on ``con``."""
-
-
-class FrameTables(RunTables):
-    """A run's tables as polars frames (``actuals`` carries keys, ``period`` and ``value``)."""
-
-    def __init__(self, frames: dict[str, pl.DataFrame | None]) -> None:
-        self.frames = {k: v for k, v in frames.items() if v is not None and v.height}
-        self._registered: list[str] = []
+    def __init__(self, staged: StagedRun) -> None:
+        self.staged = staged
 
     def columns(self, table: str) -> list[str]:
-        return self.frames[table].columns
+        return self.staged.columns(table)
 
     def relation(self, con: duckdb.DuckDBPyConnection, table: str) -> str | None:
-        frame = self.frames.get(table)
-        if frame is None:
+        """A FROM-clause expression for ``table`` (None when the run has no such rows)."""
+        files = self.staged.files(table)
+        if not files:
             return None
-        name = f"arflow_stage_{table}"
-        con.register(name, frame.to_arrow())
-        self._registered.append(name)
-        return name
-
-    def release(self, con: duckdb.DuckDBPyConnection) -> None:
-        for name in self._registered:
-            try:
-                con.unregister(name)
-            except duckdb.Error:
-                pass
-        self._registered.clear()
+        return f"read_parquet([{', '.join(_literal(f) for f in files)}], union_by_name = true)"
