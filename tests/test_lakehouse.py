@@ -493,3 +493,39 @@ def test_old_marker_layout_is_read_and_converted(tmp_path: Path, capsys) -> None
     assert_same_rows(duck_table(db, "published_forecasts"), lake.published_forecasts(root), ["job", "site", "step"], "after")
     assert main(["lakehouse-convert", str(path)]) == 3
     assert "does not hold the old Parquet-marker layout" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("period", ["step", "timestamp"])
+def test_step_and_timestamp_periods_with_integer_keys_equal_duckdb(tmp_path: Path, capsys, period: str) -> None:
+    """BIGINT and TIMESTAMP periods, an INTEGER key: Delta types (long, timestamp_ntz, int) carry them exactly."""
+    frame = ar_panel(5, 60, seed=7).with_columns(pl.col("site").str.extract(r"(\d+)").cast(pl.Int32).alias("site"))
+    if period == "step":
+        frame = frame.with_columns(pl.col("month").rank("dense").over("site").cast(pl.Int64).alias("month"))
+    else:
+        frame = frame.with_columns(pl.col("month").cast(pl.Datetime("us")))
+    write_table(tmp_path / "warehouse.duckdb", frame)
+    sections = default_job()
+    sections["source"]["frequency"] = "step" if period == "step" else "month"
+    sections["publish"]["lakehouse"] = "lake"
+    path = tmp_path / "job.toml"
+    path.write_text(job_toml(sections), encoding="utf-8")
+    assert main(["run", str(path)]) == 0
+    assert main(["run", str(path)]) == 0  # a re-run
+    capsys.readouterr()
+    assert_lake_equals_duckdb(tmp_path / "warehouse.duckdb", tmp_path / "lake", ["site"])
+    as_of = pl.read_delta(str(tmp_path / "lake" / "arflow" / "runs"))["as_of"]
+    assert as_of.dtype == (pl.Int64 if period == "step" else pl.Datetime("us"))
+
+
+def test_unsigned_key_is_refused_with_the_cast_to_use(tmp_path: Path, capsys) -> None:
+    frame = ar_panel(3, 60, seed=5).with_columns(pl.col("site").str.extract(r"(\d+)").cast(pl.UInt32).alias("site"))
+    write_table(tmp_path / "warehouse.duckdb", frame)
+    sections = default_job()
+    sections["publish"]["lakehouse"] = "lake"
+    path = tmp_path / "job.toml"
+    path.write_text(job_toml(sections), encoding="utf-8")
+    assert main(["run", str(path)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err == ("arflow: error: source.keys: column site is UINTEGER, which Delta tables cannot hold; cast it in a "
+                   "[source] query (e.g. SELECT CAST(site AS BIGINT) AS site ...) to publish to a lakehouse")
+    assert not (tmp_path / "lake" / "arflow" / "runs").exists()  # refused before any work

@@ -84,6 +84,9 @@ JOURNAL = "_arflow/journal.json"
 JOURNAL_TAKEOVER_HOURS = 24.0
 FILE_ROWS = 2_000_000
 _TXN_KEY = "arflow.txn"
+#: key types DuckDB has and Delta Lake does not, with the cast to suggest
+_NO_DELTA_TYPE = {"UTINYINT": "SMALLINT", "USMALLINT": "INTEGER", "UINTEGER": "BIGINT", "UBIGINT": "VARCHAR",
+                  "UUID": "VARCHAR"}
 _STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
 
 
@@ -200,17 +203,24 @@ class _Lake:
             handle.close()
         return json.loads(bytes(data).decode("utf-8")) if data else None
 
-    def write_json(self, path: str, payload: dict[str, Any]) -> None:
+    def write_json(self, path: str, payload: dict[str, Any], exclusive: bool = False) -> None:
+        """Write a small JSON file atomically (``exclusive``: fail with FileExistsError when it exists; local only)."""
         data = json.dumps(payload, indent=1, sort_keys=True, default=str).encode("utf-8")
         if self.local:
             target = Path(self.root) / path
             target.parent.mkdir(parents=True, exist_ok=True)
             tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.tmp")
-            with open(tmp, "wb") as fh:
-                fh.write(data)
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, target)
+            try:
+                with open(tmp, "wb") as fh:
+                    fh.write(data)
+                    fh.flush()
+                    os.fsync(fh.fileno())
+                if exclusive:
+                    os.link(tmp, target)  # fails if another writer created it first
+                else:
+                    os.replace(tmp, target)
+            finally:
+                tmp.unlink(missing_ok=True)
             return
         self._put(path, data)  # one PUT: atomic on object stores
 
@@ -553,6 +563,12 @@ class DeltaTarget:
                     f"lakehouse {self.lake.root} holds the old Parquet-marker layout of arflow 0.1; convert it once "
                     "with: arflow lakehouse-convert JOB.toml"
                 )
+        for key, kind in zip(self.layout.keys, self.layout.key_types):
+            if kind in _NO_DELTA_TYPE:
+                raise SettingsError(
+                    f"source.keys: column {key} is {kind}, which Delta tables cannot hold; cast it in a [source] query "
+                    f"(e.g. SELECT CAST({key} AS {_NO_DELTA_TYPE[kind]}) AS {key} ...) to publish to a lakehouse"
+                )
         status = self.lake.table("series_status")
         if status is None:
             return "tables will be created"
@@ -608,7 +624,16 @@ class PendingDelta:
                    "started_at": _utcnow().isoformat(), "owner": _owner(), "arflow_version": rec.arflow_version,
                    "files": [f for w in self.writes for f in w.files], **extra}
         payload["kind"] = getattr(self, "kind", "publish")
-        self.lake.write_json(JOURNAL, payload)
+        first = not self.__dict__.get("_journal_written")
+        try:
+            self.lake.write_json(JOURNAL, payload, exclusive=first)
+        except FileExistsError:
+            self.done = True  # the journal is the other writer's: abort must not touch it
+            raise PublishError(
+                f"another arflow run started publishing to lakehouse {self.lake.root} at the same moment; "
+                "retry when it finishes"
+            ) from None
+        self._journal_written = True
 
     def _prepare(self, staged: Any) -> None:
         lake, layout, rec = self.lake, self.layout, self.record
