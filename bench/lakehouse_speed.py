@@ -59,7 +59,7 @@ def task(kind: str, db: str, workdir: str) -> dict:
         import duckdb
 
         con = duckdb.connect(str(wd / "published.duckdb"), read_only=True)
-        rows = len(con.execute("SELECT * FROM arflow.published_forecasts").fetchall())
+        rows = con.sql("SELECT * FROM arflow.published_forecasts").to_arrow_table().num_rows  # Arrow, like polars
         con.close()
     read = time.perf_counter() - t1
     return {"kind": kind, "total": total, "publish": outcome.phase_seconds.get("publish"), "attempt": outcome.attempt,
