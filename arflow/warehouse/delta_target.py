@@ -255,7 +255,7 @@ def table_schemas(layout: TableLayout, labels: tuple[str, ...]) -> dict[str, pa.
             for name in (*DDL_FILES, VIEW_FILE):
                 if name == "vintage_removals" or name in PARTITION or name in WHOLE_TABLES:
                     out[name] = _relation_schema(con, f"{quote(layout.schema)}.{quote(name)}")
-            out[GATE] = table_schemas_gate()
+            out[GATE] = _gate_schema()
             _SCHEMAS[key] = out
         finally:
             con.close()
@@ -501,13 +501,13 @@ def _commit_gate(lake: _Lake, run_id: str, job: str | None, kind: str, txn: str,
     row = pa.table({
         "commit_id": [txn], "kind": [kind], "job": [job], "run_id": [run_id], "committed_at": [_utcnow()],
         "table_versions": [json.dumps(versions, sort_keys=True)], "arflow_version": [version],
-    }, schema=table_schemas_gate())
+    }, schema=_gate_schema())
     dl.write_deltalake(lake.uri(GATE), row, mode="append", storage_options=lake.options or None,
                        commit_properties=dl.CommitProperties(custom_metadata={_TXN_KEY: txn}))
     return versions.get("runs", -1)
 
 
-def table_schemas_gate() -> pa.Schema:
+def _gate_schema() -> pa.Schema:
     return pa.schema([("commit_id", pa.string()), ("kind", pa.string()), ("job", pa.string()),
                       ("run_id", pa.string()), ("committed_at", pa.timestamp("us")),
                       ("table_versions", pa.string()), ("arflow_version", pa.string())])
@@ -999,14 +999,6 @@ def committed_runs(lakehouse: str | Path, schema: str = "arflow", options: dict[
     """The ``runs`` table as of the last complete publication, ordered by run id."""
     frame = read_table(lakehouse, "runs", schema, options)
     return frame.sort("run_id") if frame.height else frame
-
-
-def is_delta_lakehouse(lakehouse: str | Path, schema: str = "arflow", options: dict[str, str] | None = None) -> bool:
-    """True when ``<lakehouse>/<schema>`` holds arflow's Delta tables."""
-    lake = _Lake(lakehouse, schema, options)
-    if lake.local and not Path(lake.root).is_dir():
-        return False
-    return lake.table(GATE) is not None or lake.table("runs") is not None
 
 
 def iter_tables() -> Iterator[str]:
