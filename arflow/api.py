@@ -9,71 +9,17 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
 import polars as pl
 
+from .frames import as_polars, is_spark_frame
+from .results import ForecastRun
 from .settings import Settings
 
-
-@dataclass(frozen=True)
-class ForecastRun:
-    """Results of one run, each a polars DataFrame keyed by the user's key columns.
-
-    models
-        One row per series: keys, ``transform`` ("level" or "difference"),
-        ``lags`` (list[int]), ``intercept``, ``intercept_std_error``,
-        ``coefficients`` / ``std_errors`` / ``t_stats`` (lists aligned with
-        ``lags``), ``sigma`` (df-adjusted residual s.d.), ``n_obs``,
-        ``r_squared``, ``aic``, ``bic``, ``hqic``, ``max_root_modulus``,
-        ``stationary``, ``mean_reverting_level`` (null when not stationary),
-        ``adf_statistic``, ``adf_p_value``, ``kpss_statistic``,
-        ``kpss_p_value``, ``first_period``, ``last_period``, ``quality_flags``
-        (list[str]), ``decision`` ("published" / "quarantined"), ``reasons``
-        (list[str]).
-    gates
-        One row per series and gate: keys, ``gate``, ``statistic``,
-        ``p_value``, ``threshold``, ``passed``.
-    residual_acf
-        keys, ``lag``, ``autocorrelation``, ``t_stat``, ``p_value``.
-    forecasts
-        Published series only: keys, ``period``, ``step``, ``forecast``,
-        ``lower_NN`` / ``upper_NN`` per coverage level.
-    backtests
-        When the backtest is enabled: keys, ``model`` ("ar", "naive",
-        "seasonal_naive"), ``horizon`` (step), ``rmse``, ``mae``, ``mase``,
-        ``coverage_NN`` (empirical interval coverage of the AR model),
-        ``origins`` (origins scored).
-    """
-
-    models: pl.DataFrame
-    gates: pl.DataFrame
-    residual_acf: pl.DataFrame
-    forecasts: pl.DataFrame
-    as_of: Any
-    settings: Settings
-    backtests: pl.DataFrame | None = None
-
-    @property
-    def series_total(self) -> int:
-        return self.models.height
-
-    @property
-    def series_published(self) -> int:
-        return int((self.models["decision"] == "published").sum()) if self.models.height else 0
-
-    @property
-    def series_quarantined(self) -> int:
-        return self.series_total - self.series_published
-
-    def reason_counts(self) -> dict[str, int]:
-        """How many series each reason code held back."""
-        if self.models.height == 0:
-            return {}
-        counts = self.models.select(pl.col("reasons").explode().drop_nulls().value_counts(sort=True)).unnest("reasons")
-        return {row[0]: int(row[1]) for row in counts.iter_rows()}
+__all__ = ["ForecastRun", "forecast", "infer_frequency"]
 
 
 def forecast(
@@ -92,7 +38,7 @@ def forecast(
     ``frame`` is a polars DataFrame (or LazyFrame) or a pyarrow Table with one
     row per series and period, or a Spark DataFrame (needs the ``spark``
     extra; the work then runs in Spark tasks on buckets of whole series, see
-    :mod:`arflow.spark_engine`). ``keys`` name the columns that identify a
+    :mod:`arflow.engines.spark`). ``keys`` name the columns that identify a
     series; ``period`` is a Date/Datetime/ISO-text column (or integers with
     ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
     or int) ignores later rows; by default it is the latest period present.
@@ -118,50 +64,18 @@ def forecast(
     >>> run.models["decision"].to_list(), run.forecasts.height
     (['published'], 12)
     """
-    from .core.panel import build_panel
-    from .core.pipeline import run_core
-    from .frames import encode_as_of, result_frames, to_panel_inputs
-
     key_list = [keys] if isinstance(keys, str) else list(keys)
-    if not _is_spark_frame(frame):
-        settings = _settings_with_frequency(frame, key_list, period, value, frequency, settings)
-    else:
+    if is_spark_frame(frame):  # computed by Spark tasks, each running the same chunk of work on whole series
+        from .engines.spark.frame import forecast_spark_frame
+
         settings = settings or Settings()
         if frequency is not None:
             settings = replace(settings, frequency=frequency)
-    if _is_spark_frame(frame):  # computed by Spark tasks, each calling this function on whole series
-        from .spark_engine import forecast_spark_frame
-
         return forecast_spark_frame(frame, keys=key_list, period=period, value=value, settings=settings, as_of=as_of)
-    inp = to_panel_inputs(frame, key_list, period, value, settings.frequency)
-    as_of_ord = encode_as_of(as_of, inp.codec)
-    panel = build_panel(
-        inp.codes,
-        inp.ordinals,
-        inp.values,
-        len(inp.keys),
-        as_of=as_of_ord,
-        min_observations=settings.gates.min_observations,
-    )
-    if inp.flags is not None:  # what only the frame adapter can see (resolved duplicates, off-calendar labels)
-        panel = replace(panel, flags=panel.flags | inp.flags)
-    core = run_core(panel, settings, workers=workers)
-    frames = result_frames(inp, core, settings)
-    as_of_label = inp.codec.decode(np.array([panel.as_of])).item()
-    return ForecastRun(
-        models=frames["models"],
-        gates=frames["gates"],
-        residual_acf=frames["residual_acf"],
-        forecasts=frames["forecasts"],
-        as_of=as_of_label,
-        settings=settings,
-        backtests=frames.get("backtests"),
-    )
+    from .run import forecast_frame
 
-
-def _is_spark_frame(frame: Any) -> bool:
-    """A Spark DataFrame, recognised without importing pyspark."""
-    return type(frame).__module__.startswith("pyspark.") and hasattr(frame, "sparkSession") and hasattr(frame, "groupBy")
+    settings = _settings_with_frequency(frame, key_list, period, value, frequency, settings)
+    return forecast_frame(frame, key_list, period, value, settings, as_of, workers)
 
 
 #: Typical spacing in days between consecutive periods of each calendar frequency.
@@ -176,11 +90,9 @@ def infer_frequency(frame: Any, period: str) -> str | None:
     7 week, 28-31 month, 89-92 quarter, 365-366 year; anything else (or fewer
     than three distinct periods) is None.
     """
-    from .frames import _as_polars
-
-    if _is_spark_frame(frame):
+    if is_spark_frame(frame):
         return None
-    df = _as_polars(frame)
+    df = as_polars(frame)
     if period not in df.columns:
         return None  # the frame adapter reports the missing column
     s = df.get_column(period)

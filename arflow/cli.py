@@ -100,7 +100,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _version() -> str:
-    from .job import arflow_version
+    from .version import arflow_version
 
     return arflow_version()
 
@@ -241,7 +241,7 @@ def _cmd_validate(args: argparse.Namespace, reporter: _Reporter) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
-    from .job import run_demo
+    from .demo import run_demo
 
     directory = args.dir.expanduser().resolve()
     outcome = run_demo(directory, on_event=reporter)
@@ -255,10 +255,6 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
 
 
 # -- entry point ------------------------------------------------------------
-
-def _one_line(text: object) -> str:
-    return clean_message(text)
-
 
 _INTERRUPTED = "interrupted; nothing was published by this run"
 
@@ -289,7 +285,7 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
     except ArflowError as exc:
         if _interrupted_by_signal():
             return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
-        return _fail(reporter, exc.exit_code, type(exc).__name__, _one_line(str(exc)))
+        return _fail(reporter, exc.exit_code, type(exc).__name__, clean_message(str(exc)))
     except KeyboardInterrupt:
         return _fail(reporter, EXIT_INTERRUPTED, "Interrupted", _INTERRUPTED)
     except Exception as exc:  # noqa: BLE001 - last line of defence
@@ -300,7 +296,7 @@ def main(argv: list[str] | None = None, *, out: TextIO | None = None, err: TextI
             return _fail(reporter, EXIT_DATA, "DiskFull", full)
         if os.environ.get("ARFLOW_DEBUG"):
             traceback.print_exc(file=err)
-        message = f"internal error ({type(exc).__name__}: {_one_line(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
+        message = f"internal error ({type(exc).__name__}: {clean_message(str(exc))}); nothing was published by this run; please report it (ARFLOW_DEBUG=1 shows the traceback)"
         return _fail(reporter, EXIT_INTERNAL, type(exc).__name__, message)
     finally:
         # as the program itself (no argv given) the status is decided now: a late stop signal must not
@@ -499,7 +495,7 @@ def _disk_full(exc: BaseException) -> str | None:
 
 def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:
     reporter.clear()
-    message = _one_line(message)
+    message = clean_message(message)
     if reporter.json:
         reporter.emit({"event": "error", "exit_code": code, "error": kind, "message": message})
     reporter.err.write(f"arflow: error: {message}\n")

@@ -48,6 +48,26 @@ def clean_message(value: object, limit: int = MAX_LINE) -> str:
     return _escape(_cut(text, limit, 200))
 
 
+def one_line(exc: BaseException, limit: int = 300) -> str:
+    """A short one-line description of a library's exception (DuckDB, Spark/Py4J, the OS).
+
+    A Python traceback inside the message (a Spark worker's) gives its last
+    line; otherwise the first line, without a leading ``"... Error: "`` prefix.
+    """
+    import re
+
+    text = str(exc).strip()
+    lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
+    if not lines:
+        return type(exc).__name__
+    if "Traceback" in text:
+        tail = [ln for ln in lines if not ln.startswith(("at ", "File ", "^", "~"))]
+        line = tail[-1]
+    else:
+        line = re.sub(r"^[A-Za-z ]*Error: ", "", lines[0])
+    return " ".join(line.split())[:limit]
+
+
 class ArflowError(Exception):
     """Base class of errors caused by input or configuration (not bugs).
 

@@ -92,7 +92,12 @@ class PanelInputs:
     flags: np.ndarray | None = None
 
 
-def _as_polars(frame: Any) -> pl.DataFrame:
+def is_spark_frame(frame: Any) -> bool:
+    """True for a Spark DataFrame (duck-typed: pyspark is not imported)."""
+    return type(frame).__module__.startswith("pyspark.") and hasattr(frame, "sparkSession") and hasattr(frame, "groupBy")
+
+
+def as_polars(frame: Any) -> pl.DataFrame:
     if isinstance(frame, pl.DataFrame):
         return frame
     if isinstance(frame, pl.LazyFrame):
@@ -207,7 +212,7 @@ def encode_as_of(as_of: Any, codec: PeriodCodec) -> int | None:
 
 def to_panel_inputs(frame: Any, keys: list[str], period: str, value: str, frequency: str) -> PanelInputs:
     """Validate a long frame and flatten it for the core; schema problems raise one clear error."""
-    df = _as_polars(frame)
+    df = as_polars(frame)
     if not keys:
         raise SchemaError("no key columns given; name at least one column that identifies a series")
     for k in keys:
@@ -334,17 +339,26 @@ def _nullable(a: np.ndarray) -> pl.Series:
 
 
 def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.DataFrame]:
-    """Key the core's arrays back to the user's columns."""
+    """Key the core's arrays back to the user's columns: one frame per result table."""
+    out = {
+        "models": models_frame(inp.keys, res, inp.codec),
+        "gates": gates_frame(inp.keys, res),
+        "residual_acf": residual_acf_frame(inp.keys, res),
+        "forecasts": forecasts_frame(inp.keys, res, inp.codec),
+    }
+    if res.backtest is not None:
+        out["backtests"] = backtest_frame(inp.keys, res)
+    return out
+
+
+def models_frame(keys: pl.DataFrame, res: CoreResult, codec: PeriodCodec) -> pl.DataFrame:
+    """One row per series: the fitted model, its tests, quality flags and the decision with its reasons."""
     fit, out, G = res.fit, res.outcome, res.panel.n_series
-    keys = inp.keys
-    K = len(fit.lags)
-    lagmat = np.broadcast_to(fit.lags, (G, K))
-    published = out.published
+    lagmat = np.broadcast_to(fit.lags, (G, len(fit.lags)))
     flag_bits = np.array(list(QUALITY_FLAG_NAMES), dtype=np.int64)
     flag_mask = (res.panel.flags[:, None] & flag_bits[None, :]) != 0
     flag_names = np.array(list(QUALITY_FLAG_NAMES.values()), dtype=object)
     reason_names = np.array(core_gates.REASONS, dtype=object)
-    codec = inp.codec
     models = keys.with_columns(
         pl.Series("transform", np.where(res.differenced, "difference", "level")),
         _list_column("lags", fit.lag_mask, lagmat, pa.int32()),
@@ -369,19 +383,21 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
         codec.decode(res.panel.first_period).alias("first_period"),
         codec.decode(res.panel.last_period).alias("last_period"),
         _list_column("quality_flags", flag_mask, np.broadcast_to(flag_names, flag_mask.shape), pa.string()),
-        pl.Series("decision", np.where(published, "published", "quarantined")),
+        pl.Series("decision", np.where(out.published, "published", "quarantined")),
         _list_column("reasons", out.reasons, np.broadcast_to(reason_names, out.reasons.shape), pa.string()),
     )
     models = models.with_columns(*_outlier_columns(res, codec))
     # the level of a differenced model is a random walk with drift: no mean-reverting level
-    models = models.with_columns(
+    return models.with_columns(
         pl.when(pl.col("transform") == "difference").then(None).otherwise(pl.col("mean_reverting_level"))
         .alias("mean_reverting_level")
     )
 
-    # gates: long, one row per series and applicable gate
+
+def gates_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:
+    """Long: one row per series and applicable gate."""
     parts = []
-    for name, row in out.gates.items():
+    for name, row in res.outcome.gates.items():
         idx = np.flatnonzero(row.applies)
         if not len(idx):
             continue
@@ -395,23 +411,27 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
             )
         )
     gate_schema = {"gate": pl.String, "statistic": pl.Float64, "p_value": pl.Float64, "threshold": pl.Float64, "passed": pl.Boolean}
-    gates_df = pl.concat(parts) if parts else keys.clear().with_columns(
+    return pl.concat(parts) if parts else keys.clear().with_columns(
         *[pl.Series(c, [], dtype=t) for c, t in gate_schema.items()]
     )
 
-    # residual autocorrelations of fitted series
-    fitted = np.flatnonzero(fit.fitted)
+
+def residual_acf_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:
+    """Residual autocorrelations of the fitted series, one row per series and lag."""
+    fitted = np.flatnonzero(res.fit.fitted)
     Kacf = res.acf.acf.shape[1]
     rep = np.repeat(fitted, Kacf)
-    acf = keys[rep].with_columns(
+    return keys[rep].with_columns(
         pl.Series("lag", np.tile(np.arange(1, Kacf + 1, dtype=np.int32), len(fitted))),
         _nullable(res.acf.acf[fitted].ravel()).alias("autocorrelation"),
         _nullable(res.acf.t_stat[fitted].ravel()).alias("t_stat"),
         _nullable(res.acf.pvalue[fitted].ravel()).alias("p_value"),
     ).filter(pl.col("autocorrelation").is_not_null())
 
-    # forecasts of published series only
-    pub = np.flatnonzero(published)
+
+def forecasts_frame(keys: pl.DataFrame, res: CoreResult, codec: PeriodCodec) -> pl.DataFrame:
+    """Forecasts of the published series only: one row per series and step, with interval bounds per level."""
+    pub = np.flatnonzero(res.outcome.published)
     H = res.forecasts.mean.shape[1]
     rep = np.repeat(pub, H)
     steps = np.tile(np.arange(1, H + 1, dtype=np.int64), len(pub))
@@ -424,11 +444,7 @@ def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.D
         lab = coverage_label(level)
         cols.append(pl.Series(f"lower_{lab}", res.forecasts.lower[ci][pub].ravel()))
         cols.append(pl.Series(f"upper_{lab}", res.forecasts.upper[ci][pub].ravel()))
-    fc = keys[rep].with_columns(*cols)
-    out = {"models": models, "gates": gates_df, "residual_acf": acf, "forecasts": fc}
-    if res.backtest is not None:
-        out["backtests"] = backtest_frame(keys, res)
-    return out
+    return keys[rep].with_columns(*cols)
 
 
 def _outlier_columns(res: CoreResult, codec) -> list[pl.Series]:

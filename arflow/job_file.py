@@ -4,6 +4,10 @@
 (unknown key, wrong type, impossible value, unsafe identifier) raises
 :class:`~arflow.errors.SettingsError` with one line naming the key and what
 is allowed. Relative paths resolve against the job file's folder.
+
+The specs check themselves when built (``__post_init__``), rules that span
+fields included, so a spec built in code gets every check a job file gets;
+the parsing here only turns TOML values into fields.
 """
 
 from __future__ import annotations
@@ -18,7 +22,9 @@ from pathlib import Path
 from typing import Any
 
 from .errors import SettingsError
-from .settings import FREQUENCIES, BacktestSettings, ForecastSettings, GateSettings, ModelSettings, Settings
+from .settings import (
+    FREQUENCIES, BacktestSettings, ForecastSettings, GateSettings, ModelSettings, Settings, refuse_series_fdr_on_spark,
+)
 from .warehouse.identifiers import check_identifier, check_qualified, is_identifier
 
 ON_FAILURE_POLICIES = ("keep-previous", "withdraw")
@@ -83,6 +89,15 @@ class SourceSpec:
     query: str | None = None
     engine: str = "duckdb"
 
+    def __post_init__(self) -> None:
+        if self.engine not in ENGINES:
+            raise SettingsError(f"source.engine = {self.engine!r} is not allowed; use " + " / ".join(f'"{e}"' for e in ENGINES))
+        if self.engine == "spark":
+            _check_spark_source(self)
+        else:
+            _check_duckdb_source(self)
+        _check_columns(self.keys, self.period, self.value)
+
     def describe(self) -> str:
         """Short human description for logs."""
         if self.engine == "spark":
@@ -114,6 +129,26 @@ class PublishSpec:
     #: refuse a vintage more than this many periods after the job's latest one (None: per-frequency default)
     max_periods_ahead: int | None = None
 
+    def __post_init__(self) -> None:
+        from .warehouse.registry import TARGETS
+
+        if not any(getattr(self, key, None) is not None for key in TARGETS):
+            raise SettingsError(
+                "publish.database is missing; name the DuckDB file to publish to (or publish.lakehouse, a folder)"
+            )
+        check_identifier(self.schema, "publish.schema")
+        if self.on_failure not in ON_FAILURE_POLICIES:
+            raise SettingsError(
+                f"publish.on_failure = {self.on_failure!r} is not allowed; use "
+                + " / ".join(f'"{p}"' for p in ON_FAILURE_POLICIES)
+            )
+        if not isinstance(self.hold_on_alarm, bool):
+            raise SettingsError(f"publish.hold_on_alarm = {self.hold_on_alarm!r} is not allowed; use true or false")
+        for key, low in (("stale_after_periods", 0), ("max_periods_ahead", 1)):
+            value = getattr(self, key)
+            if value is not None and not (isinstance(value, int) and not isinstance(value, bool) and low <= value <= 100_000):
+                raise SettingsError(f"publish.{key} = {value!r} is not allowed; use an integer from {low} to 100000")
+
 
 @dataclass(frozen=True)
 class RunOptions:
@@ -121,6 +156,13 @@ class RunOptions:
 
     chunk_series: int = 20_000
     workers: int = 1
+
+    def __post_init__(self) -> None:
+        chunk, workers = self.chunk_series, self.workers
+        if not (isinstance(chunk, int) and not isinstance(chunk, bool) and chunk >= 1):
+            raise SettingsError(f"run.chunk_series = {chunk!r} is not allowed; use an integer of at least 1")
+        if not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
+            raise SettingsError(f"run.workers = {workers!r} is not allowed; use an integer from 1 to 256")
 
 
 @dataclass(frozen=True)
@@ -138,6 +180,21 @@ class SparkOptions:
     partitions: int | None = None
     config: tuple[tuple[str, str], ...] = ()
 
+    def __post_init__(self) -> None:
+        master, partitions = self.master, self.partitions
+        if master is not None and not (isinstance(master, str) and master.strip() == master and master):
+            raise SettingsError(f"spark.master = {master!r} is not allowed; use a Spark master URL such as \"local[2]\"")
+        if partitions is not None and not (
+            isinstance(partitions, int) and not isinstance(partitions, bool) and 1 <= partitions <= 100_000
+        ):
+            raise SettingsError(f"spark.partitions = {partitions!r} is not allowed; use an integer from 1 to 100000")
+        for key, value in self.config:
+            if not (isinstance(key, str) and key.startswith("spark.") and isinstance(value, str)):
+                raise SettingsError(
+                    f"spark.config: {key} = {value!r} is not allowed; use Spark setting names (spark.*) with text, "
+                    "number or true/false values"
+                )
+
 
 @dataclass(frozen=True)
 class JobSpec:
@@ -151,6 +208,13 @@ class JobSpec:
     config_sha256: str
     path: Path | None = None
     spark: SparkOptions | None = None
+
+    def __post_init__(self) -> None:
+        _check_job_name(self.name)
+        if self.source.engine != "spark" and self.spark is not None:
+            raise SettingsError('[spark] is only used with [source] engine = "spark"; remove it or set the engine')
+        if self.source.engine == "spark":
+            refuse_series_fdr_on_spark(self.settings)
 
 
 def load_job(path: str | Path) -> JobSpec:
@@ -184,11 +248,7 @@ def parse_job(data: dict[str, Any], *, base_dir: Path, path: Path | None = None)
             if key not in allowed:
                 raise SettingsError(_unknown(f"{section}.{key}", key, allowed, f"keys in [{section}]"))
     job = data.get("job", {})
-    name = _required(job, "job", "name")
-    if not isinstance(name, str) or not JOB_NAME_RE.fullmatch(name):
-        raise SettingsError(
-            f"job.name = {name!r} is not allowed; use 1-64 letters, digits, '_', '-' or '.', starting with a letter or digit"
-        )
+    name = _check_job_name(_required(job, "job", "name"))
     source, frequency = _parse_source(data.get("source"), base_dir)
     settings = Settings(
         frequency=frequency,
@@ -204,6 +264,14 @@ def parse_job(data: dict[str, Any], *, base_dir: Path, path: Path | None = None)
     return JobSpec(
         name=name, source=source, settings=settings, publish=publish, run=run, config_sha256=digest, path=path, spark=spark
     )
+
+
+def _check_job_name(name: Any) -> str:
+    if not isinstance(name, str) or not JOB_NAME_RE.fullmatch(name):
+        raise SettingsError(
+            f"job.name = {name!r} is not allowed; use 1-64 letters, digits, '_', '-' or '.', starting with a letter or digit"
+        )
+    return name
 
 
 def _unknown(full: str, key: str, allowed: tuple[str, ...], what: str) -> str:
@@ -233,93 +301,98 @@ def _parse_source(section: Any, base_dir: Path) -> tuple[SourceSpec, str]:
     if section is None:
         raise SettingsError("[source] is missing; add it with database (or parquet), table (or query), keys, period, value and frequency")
     engine = section.get("engine", "duckdb")
-    if engine not in ENGINES:
-        raise SettingsError(f"source.engine = {engine!r} is not allowed; use " + " / ".join(f'"{e}"' for e in ENGINES))
-    if engine == "spark":
-        return _parse_spark_source(section, base_dir)
-    has_db, has_pq = "database" in section, "parquet" in section
-    if has_db == has_pq:
-        raise SettingsError("[source] needs exactly one of database (a DuckDB file) and parquet (a path or glob)")
-    database = _resolve(section["database"], "source.database", base_dir) if has_db else None
-    parquet = str(_resolve(section["parquet"], "source.parquet", base_dir)) if has_pq else None
-    table: tuple[str, ...] | None = None
-    query: str | None = None
-    if "table" in section:
-        if has_pq:
-            raise SettingsError("source.table is not used with source.parquet; leave it out (or use query, reading the files as `source`)")
-        table = check_qualified(section["table"], "source.table")
-    if "query" in section:
-        query = section["query"]
-        if not isinstance(query, str) or not query.strip():
-            raise SettingsError("source.query must be a non-empty string holding one SELECT statement")
-        if table is not None:
-            raise SettingsError("[source] takes either table or query, not both; remove one")
-        _check_deterministic(query)
-    if has_db and table is None and query is None:
-        raise SettingsError("[source] needs table (e.g. table = \"sales\") or query (one SELECT statement)")
-    keys_t, period, value, frequency = _parse_columns(section)
-    spec = SourceSpec(keys=keys_t, period=period, value=value, database=database, parquet=parquet, table=table, query=query)
-    return spec, frequency
-
-
-def _parse_spark_source(section: dict[str, Any], base_dir: Path) -> tuple[SourceSpec, str]:
+    fields_: dict[str, Any] = {"engine": engine}
     if "database" in section:
-        raise SettingsError(
-            'source.database names a DuckDB file, which Spark does not read; with engine = "spark" give table '
-            "(a Spark table) or parquet (a path Spark reads)"
-        )
-    if "query" in section:
-        raise SettingsError(
-            'source.query is not used with engine = "spark"; register your query as a Spark view and name it in table'
-        )
-    if ("table" in section) == ("parquet" in section):
-        raise SettingsError('with engine = "spark", [source] needs exactly one of table (a Spark table) and parquet (a path)')
-    table: tuple[str, ...] | None = None
-    parquet: str | None = None
+        fields_["database"] = _resolve(section["database"], "source.database", base_dir)
+    if "parquet" in section:
+        raw = section["parquet"]
+        if engine == "spark" and isinstance(raw, str) and re.match(r"^[A-Za-z][A-Za-z0-9+.-]*://", raw):
+            fields_["parquet"] = raw  # a URI (s3a://, hdfs://, file://): Spark resolves it
+        else:
+            fields_["parquet"] = str(_resolve(raw, "source.parquet", base_dir))
     if "table" in section:
         name = section["table"]
-        parts = name.split(".") if isinstance(name, str) else []
-        if not (1 <= len(parts) <= 3 and all(is_identifier(p) for p in parts)):
-            raise SettingsError(
-                f"source.table = {name!r} is not allowed; use table, schema.table or catalog.schema.table "
-                "made of letters, digits and underscores"
-            )
-        table = tuple(parts)
-    else:
-        raw = section["parquet"]
-        if isinstance(raw, str) and re.match(r"^[A-Za-z][A-Za-z0-9+.-]*://", raw):
-            parquet = raw  # a URI (s3a://, hdfs://, file://): Spark resolves it
-        else:
-            parquet = str(_resolve(raw, "source.parquet", base_dir))
-    keys_t, period, value, frequency = _parse_columns(section)
-    spec = SourceSpec(keys=keys_t, period=period, value=value, parquet=parquet, table=table, engine="spark")
-    return spec, frequency
-
-
-def _parse_columns(section: dict[str, Any]) -> tuple[tuple[str, ...], str, str, str]:
+        fields_["table"] = tuple(name.split(".")) if isinstance(name, str) else (name,)
+    if "query" in section:
+        fields_["query"] = section["query"]
     keys = _required(section, "source", "keys")
     if isinstance(keys, str):
         keys = [keys]
     if not isinstance(keys, list) or not keys:
         raise SettingsError(f"source.keys = {keys!r} is not allowed; use a list of column names, e.g. [\"zone\"]")
-    keys_t = tuple(check_identifier(k, "source.keys") for k in keys)
-    period = check_identifier(_required(section, "source", "period"), "source.period")
-    value = check_identifier(_required(section, "source", "value"), "source.value")
-    lowered = [c.lower() for c in (*keys_t, period, value)]
+    spec = SourceSpec(
+        keys=tuple(keys), period=_required(section, "source", "period"), value=_required(section, "source", "value"),
+        **fields_,
+    )
+    frequency = _required(section, "source", "frequency")
+    if frequency not in FREQUENCIES:
+        raise SettingsError(f"source.frequency = {frequency!r} is not allowed; use " + " / ".join(f'"{f}"' for f in FREQUENCIES))
+    return spec, frequency
+
+
+def _table_text(table: tuple[Any, ...]) -> Any:
+    return ".".join(table) if all(isinstance(p, str) for p in table) else (table[0] if len(table) == 1 else table)
+
+
+def _check_duckdb_source(spec: SourceSpec) -> None:
+    """[source] rules for the DuckDB engine (a DuckDB file or Parquet files)."""
+    has_db, has_pq = spec.database is not None, spec.parquet is not None
+    if has_db == has_pq:
+        raise SettingsError("[source] needs exactly one of database (a DuckDB file) and parquet (a path or glob)")
+    if spec.table is not None:
+        if has_pq:
+            raise SettingsError("source.table is not used with source.parquet; leave it out (or use query, reading the files as `source`)")
+        if check_qualified(_table_text(spec.table), "source.table") != spec.table:
+            raise SettingsError(f"source.table = {spec.table!r} is not allowed; use table or schema.table")
+    if spec.query is not None:
+        if not isinstance(spec.query, str) or not spec.query.strip():
+            raise SettingsError("source.query must be a non-empty string holding one SELECT statement")
+        if spec.table is not None:
+            raise SettingsError("[source] takes either table or query, not both; remove one")
+        _check_deterministic(spec.query)
+    if has_db and spec.table is None and spec.query is None:
+        raise SettingsError("[source] needs table (e.g. table = \"sales\") or query (one SELECT statement)")
+
+
+def _check_spark_source(spec: SourceSpec) -> None:
+    """[source] rules for the Spark engine (a Spark table or a Parquet path Spark reads)."""
+    if spec.database is not None:
+        raise SettingsError(
+            'source.database names a DuckDB file, which Spark does not read; with engine = "spark" give table '
+            "(a Spark table) or parquet (a path Spark reads)"
+        )
+    if spec.query is not None:
+        raise SettingsError(
+            'source.query is not used with engine = "spark"; register your query as a Spark view and name it in table'
+        )
+    if (spec.table is not None) == (spec.parquet is not None):
+        raise SettingsError('with engine = "spark", [source] needs exactly one of table (a Spark table) and parquet (a path)')
+    if spec.table is not None and not (1 <= len(spec.table) <= 3 and all(is_identifier(p) for p in spec.table)):
+        raise SettingsError(
+            f"source.table = {_table_text(spec.table)!r} is not allowed; use table, schema.table or catalog.schema.table "
+            "made of letters, digits and underscores"
+        )
+
+
+def _check_columns(keys: tuple[str, ...], period: str, value: str) -> None:
+    """Key, period and value columns: plain identifiers, all different, keys not named like an output column."""
+    if not isinstance(keys, tuple) or not keys:
+        raise SettingsError(f"source.keys = {keys!r} is not allowed; use a list of column names, e.g. [\"zone\"]")
+    for k in keys:
+        check_identifier(k, "source.keys")
+    check_identifier(period, "source.period")
+    check_identifier(value, "source.value")
+    lowered = [c.lower() for c in (*keys, period, value)]
     if len(set(lowered)) != len(lowered):
         raise SettingsError("source.keys, source.period and source.value must name different columns")
     from .warehouse.duckdb_target import output_column_prefixes
 
     reserved, prefixes = reserved_columns(), output_column_prefixes()
-    for k in keys_t:
+    for k in keys:
         if k.lower() in reserved or k.lower().startswith(prefixes):
             raise SettingsError(
                 f"source.keys: column name {k!r} is used by arflow's output tables; rename it in a [source] query (e.g. SELECT {k} AS {k}_key ...)"
             )
-    frequency = _required(section, "source", "frequency")
-    if frequency not in FREQUENCIES:
-        raise SettingsError(f"source.frequency = {frequency!r} is not allowed; use " + " / ".join(f'"{f}"' for f in FREQUENCIES))
-    return keys_t, period, value, frequency
 
 
 def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) -> PublishSpec:
@@ -336,14 +409,10 @@ def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) 
         raise SettingsError(
             f"publish.database is missing; with {what} name the DuckDB file to publish to (or publish.lakehouse, a folder)"
         )
-    schema = check_identifier(section.get("schema", "arflow"), "publish.schema")
-    on_failure = section.get("on_failure", "keep-previous")
-    if on_failure not in ON_FAILURE_POLICIES:
-        raise SettingsError(
-            f"publish.on_failure = {on_failure!r} is not allowed; use " + " / ".join(f'"{p}"' for p in ON_FAILURE_POLICIES)
-        )
-    return PublishSpec(database=database, schema=schema, on_failure=on_failure, lakehouse=lakehouse,
-                       lakehouse_options=_lakehouse_options(section), **_vintage_guards(section))
+    guards = {k: section[k] for k in ("hold_on_alarm", "stale_after_periods", "max_periods_ahead") if k in section}
+    return PublishSpec(database=database, schema=section.get("schema", "arflow"),
+                       on_failure=section.get("on_failure", "keep-previous"), lakehouse=lakehouse,
+                       lakehouse_options=_lakehouse_options(section), **guards)
 
 
 def _lakehouse(value: Any, base_dir: Path) -> Path | str:
@@ -367,56 +436,28 @@ def _lakehouse_options(section: dict[str, Any]) -> dict[str, str]:
     return {k: (str(v).lower() if isinstance(v, bool) else str(v)) for k, v in options.items()}
 
 
-def _vintage_guards(section: dict[str, Any]) -> dict[str, Any]:
-    """``[publish]`` hold_on_alarm, stale_after_periods and max_periods_ahead (see README, Operations)."""
-    out: dict[str, Any] = {}
-    hold = section.get("hold_on_alarm", True)
-    if not isinstance(hold, bool):
-        raise SettingsError(f"publish.hold_on_alarm = {hold!r} is not allowed; use true or false")
-    out["hold_on_alarm"] = hold
-    for key, low in (("stale_after_periods", 0), ("max_periods_ahead", 1)):
-        value = section.get(key)
-        if value is None:
-            continue
-        if not (isinstance(value, int) and not isinstance(value, bool) and low <= value <= 100_000):
-            raise SettingsError(f"publish.{key} = {value!r} is not allowed; use an integer from {low} to 100000")
-        out[key] = value
-    return out
-
-
 def _parse_run(section: dict[str, Any]) -> RunOptions:
-    chunk = section.get("chunk_series", RunOptions.chunk_series)
-    workers = section.get("workers", RunOptions.workers)
-    if not (isinstance(chunk, int) and not isinstance(chunk, bool) and chunk >= 1):
-        raise SettingsError(f"run.chunk_series = {chunk!r} is not allowed; use an integer of at least 1")
-    if not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
-        raise SettingsError(f"run.workers = {workers!r} is not allowed; use an integer from 1 to 256")
-    return RunOptions(chunk_series=chunk, workers=workers)
+    return RunOptions(chunk_series=section.get("chunk_series", RunOptions.chunk_series),
+                      workers=section.get("workers", RunOptions.workers))
 
 
 def _parse_spark(section: dict[str, Any] | None, source: SourceSpec) -> SparkOptions | None:
-    if source.engine != "spark":
-        if section is not None:
-            raise SettingsError('[spark] is only used with [source] engine = "spark"; remove it or set the engine')
-        return None
-    section = section or {}
+    if section is None or source.engine != "spark":  # JobSpec refuses a [spark] section without the Spark engine
+        return None if section is None and source.engine != "spark" else SparkOptions()
     master = section.get("master")
     if master is not None and not (isinstance(master, str) and master.strip()):
         raise SettingsError(f"spark.master = {master!r} is not allowed; use a Spark master URL such as \"local[2]\"")
-    partitions = section.get("partitions")
-    if partitions is not None and not (isinstance(partitions, int) and not isinstance(partitions, bool) and 1 <= partitions <= 100_000):
-        raise SettingsError(f"spark.partitions = {partitions!r} is not allowed; use an integer from 1 to 100000")
     config = section.get("config", {})
     if not isinstance(config, dict):
         raise SettingsError('spark.config must be a table of Spark settings, e.g. config = { "spark.driver.memory" = "4g" }')
     pairs = []
     for key, value in config.items():
-        if not key.startswith("spark.") or isinstance(value, (dict, list)):
+        if isinstance(value, (dict, list)):
             raise SettingsError(
                 f"spark.config: {key} = {value!r} is not allowed; use Spark setting names (spark.*) with text, number or true/false values"
             )
         pairs.append((key, str(value).lower() if isinstance(value, bool) else str(value)))
-    return SparkOptions(master=master.strip() if master else None, partitions=partitions, config=tuple(pairs))
+    return SparkOptions(master=master.strip() if master else None, partitions=section.get("partitions"), config=tuple(pairs))
 
 
 def _check_deterministic(query: str) -> None:

@@ -309,3 +309,16 @@ class Settings:
                 f"gates.min_observations = {self.gates.min_observations}; raise gates.min_observations "
                 f"to {need} or lower model.order"
             )
+
+
+#: the one message for gates.series_fdr with Spark (a job file, a spec built in code, a Spark frame)
+SERIES_FDR_SPARK = (
+    'gates.series_fdr adjusts p-values across all series of a run, which engine = "spark" does not support; '
+    "leave series_fdr out, or run this job with the DuckDB engine"
+)
+
+
+def refuse_series_fdr_on_spark(settings: Settings) -> None:
+    """Spark fits buckets of series independently, so an adjustment across all series cannot be made there."""
+    if settings.gates.series_fdr is not None:
+        raise SettingsError(SERIES_FDR_SPARK)

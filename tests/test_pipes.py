@@ -12,7 +12,7 @@ import duckdb
 
 import arflow
 from arflow.cli import main
-from arflow.job import DISTRIBUTION
+from arflow.version import DISTRIBUTION
 from arflow.sample.panels import default_job, job_toml, mixed_panel, write_table
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -87,7 +87,7 @@ def test_demo_keeps_an_edited_job_file(tmp_path: Path, capsys) -> None:
 
 
 def test_demo_writes_the_shipped_job_file_when_there_is_none_or_it_is_unchanged(tmp_path: Path, capsys) -> None:
-    from arflow.job import prepare_demo
+    from arflow.demo import prepare_demo
     from arflow.sample import generate
 
     path = prepare_demo(tmp_path)

@@ -22,10 +22,12 @@ if shutil.which("java") is None and not os.environ.get("JAVA_HOME"):
     pytest.skip("Java is not installed (Spark needs Java 17+)", allow_module_level=True)
 
 import arflow  # noqa: E402
-from arflow import spark_engine  # noqa: E402
+from arflow.engines.spark import bucketing  # noqa: E402
+from arflow.engines.spark import tasks as spark_tasks  # noqa: E402
 from arflow.cli import main  # noqa: E402
 from arflow.errors import SchemaError, SourceError  # noqa: E402
-from arflow.job import prepare_demo, run_job, validate_job  # noqa: E402
+from arflow.demo import prepare_demo  # noqa: E402
+from arflow.job import run_job, validate_job  # noqa: E402
 from arflow.job_file import load_job  # noqa: E402
 from arflow.sample.panels import warehouse_state  # noqa: E402
 from arflow.warehouse import delta_target as lake  # noqa: E402
@@ -150,7 +152,7 @@ def test_failing_task_leaves_no_partial_run(sample: Path, spark_run: dict, monke
     db_before = warehouse_state(sample / "spark_out.duckdb")
     lake_before = lake.read_table(sample / "lake", "forecasts")
     markers_before = lake.committed_runs(sample / "lake")
-    monkeypatch.setattr(spark_engine, "_TEST_FAIL_BUCKET", 1)
+    monkeypatch.setattr(spark_tasks, "_TEST_FAIL_BUCKET", 1)
     code = main(["run", str(sample / "spark_job.toml"), "--as-of", "2025-09"])  # a new vintage
     err = capsys.readouterr().err
     assert code == 3
@@ -227,7 +229,7 @@ def test_bucket_labels_follow_spark_hash_partitioning(spark) -> None:
 
     values = [0, 1, -1, 7, 2**31, -(2**40) + 3, 2**62 + 11]
     got = [r[0] for r in spark.createDataFrame([(v,) for v in values], "v long").select(F.hash("v")).collect()]
-    assert spark_engine._murmur3_long(np.array(values)).tolist() == got
-    labels = spark_engine.bucket_labels(5)
+    assert bucketing.murmur3_long(np.array(values)).tolist() == got
+    labels = bucketing.bucket_labels(5)
     parts = [r[0] for r in spark.createDataFrame([(v,) for v in labels], "v long").select(F.pmod(F.hash("v"), F.lit(5))).collect()]
     assert parts == [0, 1, 2, 3, 4]

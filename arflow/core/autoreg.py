@@ -288,7 +288,7 @@ def fit_ar(
     w_fit = _sample_weights(n, T, maxlag) * fittable[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         res = ols.fit_with_gram(gfit, Xz, ZT[:, K, :], w_fit, chosen)
-    out = _finish(lags, chosen, res, w_fit, Y, fittable, shift, gfit.xmean)
+    out = finish_fit(lags, chosen, res, w_fit, Y, fittable, shift, gfit.xmean)
     return replace(out, selection_cut=cut, order_unsupported=unsupported)
 
 
@@ -315,7 +315,7 @@ def max_root_modulus(phi: np.ndarray, maxlag: np.ndarray) -> np.ndarray:
     return out
 
 
-def _finish(lags, mask, res: ols.OLSResult, w, Y, fittable, shift, xmean) -> ARFit:
+def finish_fit(lags, mask, res: ols.OLSResult, w, Y, fittable, shift, xmean) -> ARFit:
     G = Y.shape[0]
     # undo the shift y = x + m: b0 = a + m (1 - sum b), and
     # Var(b0) = Var(a) + m^2 1'V1 + 2 m 1'V xbar  (Cov(a, b) = -V xbar)

@@ -65,7 +65,7 @@ class AcfResult:
 # ----------------------------------------------------------------------------- helpers
 
 
-def _as_panel(a: np.ndarray, name: str = "resid") -> np.ndarray:
+def as_panel(a: np.ndarray, name: str = "resid") -> np.ndarray:
     a = np.asarray(a, dtype=np.float64)
     if a.ndim == 1:
         a = a[None, :]
@@ -80,7 +80,7 @@ def valid_mask(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     Raises ``ValueError`` if a series has a NaN inside its run (the layout
     contract is violated); a short or empty series is fine.
     """
-    a = _as_panel(a)
+    a = as_panel(a)
     valid = ~np.isnan(a)
     if a.shape[1] > 1 and np.any(valid[:, :-1] & ~valid[:, 1:]):
         raise ValueError("panel is not right-aligned: NaN inside a series (only leading NaN allowed)")
@@ -219,7 +219,7 @@ def breusch_godfrey(
         raise ValueError("nlags must be >= 1")
     use = np.arange(1, nlags + 1) if lag_set is None else np.asarray(lag_set, dtype=np.int64)
     nlags = len(use)
-    e = _as_panel(resid)
+    e = as_panel(resid)
     valid, n = valid_mask(e)
     G, T = e.shape
     z = np.where(valid, e, 0.0)
@@ -264,7 +264,7 @@ def arch_lm(resid: np.ndarray, nlags: int) -> TestResult:
     q = int(nlags)
     if q < 1:
         raise ValueError("nlags must be >= 1")
-    e = _as_panel(resid)
+    e = as_panel(resid)
     valid, n = valid_mask(e)
     G, T = e.shape
     s = np.where(valid, e, 0.0) ** 2

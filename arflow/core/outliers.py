@@ -53,7 +53,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from . import ols
-from .autoreg import MIN_RESID_DF, ARFit, _finish, lag_design
+from .autoreg import MIN_RESID_DF, ARFit, finish_fit, lag_design
 from .distributions import t_ppf
 
 #: Normal-consistency factor of the MAD: 1 / Phi^-1(3/4).
@@ -249,7 +249,7 @@ def treat(M: np.ndarray, fit: ARFit, found: OutlierResult) -> Treated:
         wi = w[idx]
         g = ols.gram(X, y, wi)
         res = ols.fit_with_gram(g, X, y, wi, fit.lag_mask[idx])
-        sub = _finish(lags, fit.lag_mask[idx], res, wi, M[idx], np.ones(len(idx), dtype=bool),
+        sub = finish_fit(lags, fit.lag_mask[idx], res, wi, M[idx], np.ones(len(idx), dtype=bool),
                       np.zeros(len(idx)), g.xmean)
         # indicator rows have residual exactly 0
         sub = replace(sub, resid=np.where(excluded[idx] & sample[idx], 0.0, sub.resid))

@@ -20,7 +20,7 @@ import numpy as np
 
 from arflow.core import ols
 from arflow.core.distributions import norm_cdf
-from arflow.core.diagnostics import _as_panel, valid_mask
+from arflow.core.diagnostics import as_panel, valid_mask
 
 __all__ = ["AdfResult", "KpssResult", "adf", "kpss", "mackinnon_crit", "mackinnon_pvalue", "mackinnon_quantile", "finite_sample_crit"]
 
@@ -160,7 +160,7 @@ class AdfResult:
 
 
 def _panel(y: np.ndarray) -> np.ndarray:
-    return _as_panel(y, "y")
+    return as_panel(y, "y")
 
 
 def adf(

@@ -556,9 +556,8 @@ class DeltaTarget:
         """Refuse a schema holding another job's key columns or period type; a status line otherwise."""
         self.preflight()
         if self.lake.local:
-            from .parquet_legacy import is_legacy
-
-            if is_legacy(self.lake.lakehouse, self.layout.schema):
+            root = Path(self.lake.root)  # the old layout (arflow.warehouse.parquet_legacy): markers, no Delta tables
+            if (root / "_commits").is_dir() and not (root / GATE / "_delta_log").is_dir():
                 raise PublishError(
                     f"lakehouse {self.lake.root} holds the old Parquet-marker layout of arflow 0.1; convert it once "
                     "with: arflow lakehouse-convert JOB.toml"

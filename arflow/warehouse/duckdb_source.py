@@ -27,8 +27,9 @@ import duckdb
 import numpy as np
 import polars as pl
 
-from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
+from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError, one_line
 from ..runtime import fault_point, unwatch_connection, watch_connection
+from .checks import RowCounts, check_row_counts
 from .contract import SourceLayout, SourceStats
 from .identifiers import quote, quote_qualified
 
@@ -80,7 +81,7 @@ def lock_down(con: duckdb.DuckDBPyConnection, allowed_files: tuple[str, ...] = (
 def access_message(exc: BaseException) -> str:
     """The one message for a source (its query, or a view in it) that reached outside the job's source."""
     return (
-        f"the source tried to reach something outside the job's source ({first_line(exc)}); "
+        f"the source tried to reach something outside the job's source ({one_line(exc)}); "
         "a source may read only its source.database or the source.parquet files, with no other files, "
         "folder listings, network or extensions"
     )
@@ -94,12 +95,6 @@ def lock_message(path: object) -> str:
 def is_lock_error(exc: BaseException) -> bool:
     """True for DuckDB's 'could not set lock' error."""
     return isinstance(exc, duckdb.IOException) and "lock" in str(exc).lower()
-
-
-def first_line(exc: BaseException) -> str:
-    """The first line of an exception message, without the DuckDB error prefix."""
-    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-    return re.sub(r"^[A-Za-z ]*Error: ", "", text)
 
 
 #: largest |step| accepted as an as-of (period arithmetic stays far from the int64 limit)
@@ -228,7 +223,7 @@ class DuckDBSource:
             except duckdb.Error as exc:
                 if is_lock_error(exc):
                     raise SourceError(lock_message(spec.database)) from None
-                raise SourceError(f"cannot open source database {spec.database} ({first_line(exc)}); check it is a DuckDB file") from None
+                raise SourceError(f"cannot open source database {spec.database} ({one_line(exc)}); check it is a DuckDB file") from None
             self._lock_down(())
         else:
             files = tuple(sorted(f for f in glob.glob(spec.parquet, recursive=True) if not os.path.isdir(f)))
@@ -240,7 +235,7 @@ class DuckDBSource:
             try:
                 self._con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet([{listed}])")
             except duckdb.Error as exc:
-                raise SourceError(f"cannot read parquet {spec.parquet} ({first_line(exc)}); check the files") from None
+                raise SourceError(f"cannot read parquet {spec.parquet} ({one_line(exc)}); check the files") from None
         watch_connection(self.con)  # a stop signal interrupts the statement running on it
         fault_point("source-open")
         return self
@@ -276,7 +271,7 @@ class DuckDBSource:
         try:
             statements = self.con.extract_statements(spec.query)
         except duckdb.Error as exc:
-            raise SettingsError(f"source.query does not parse ({first_line(exc)}); fix the SQL") from None
+            raise SettingsError(f"source.query does not parse ({one_line(exc)}); fix the SQL") from None
         if len(statements) != 1 or statements[0].type != duckdb.StatementType.SELECT:
             raise SettingsError("source.query must be exactly one SELECT statement (no ';' separated statements, no writes)")
         text = spec.query.strip().rstrip(";").rstrip()
@@ -293,7 +288,7 @@ class DuckDBSource:
         except duckdb.PermissionException as exc:
             raise SourceAccessError(access_message(exc)) from None
         except duckdb.Error as exc:
-            raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None
+            raise SourceError(f"reading the source failed ({one_line(exc)}); check [source] in the job file") from None
 
     def _catalog_error(self, exc: BaseException) -> SourceError:
         spec = self.spec
@@ -307,7 +302,7 @@ class DuckDBSource:
                 names = []
             known = ", ".join(names[:8]) + (" ..." if len(names) > 8 else "") if names else "none"
             return SourceError(f"source table {'.'.join(spec.table)} not found in {spec.database}; check source.table (tables there: {known})")
-        return SourceError(f"source.query refers to something that does not exist ({first_line(exc)}); fix the query")
+        return SourceError(f"source.query refers to something that does not exist ({one_line(exc)}); fix the query")
 
     # -- checks ------------------------------------------------------------
     def layout(self) -> SourceLayout:
@@ -360,30 +355,16 @@ class DuckDBSource:
         return self._layout
 
     def check_rows(self) -> int:
-        """Row count; rejects an empty source and rows with NULL keys or periods."""
+        """Row count; the row checks of :mod:`arflow.warehouse.checks` (with a few offending rows as examples)."""
         spec = self.spec
         null_key = " OR ".join(f"{quote(k)} IS NULL" for k in spec.keys)
         total, null_keys, null_periods, values = self._sql(
             f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL), "
             f"count({quote(spec.value)}) FROM {self._from()}"
         )[0]
-        if total == 0:
-            raise SourceError("the source has no rows; check source.table / source.query (or the parquet files)")
-        if values == 0:
-            raise SourceError(
-                f"the value column {spec.value} is NULL in all {total} row(s); check source.value or the [source] query"
-            )
-        if null_keys:
-            raise SourceError(
-                f"the source has {null_keys:,} row(s) with a NULL key ({', '.join(spec.keys)}), e.g. "
-                f"{self.example_rows(null_key)}; filter them out or fill them in with a [source] query"
-            )
-        if null_periods:
-            raise SourceError(
-                f"the source has {null_periods:,} row(s) with a NULL period ({spec.period}), e.g. "
-                f"{self.example_rows(quote(spec.period) + ' IS NULL')}; filter them out with a [source] query"
-            )
-        return int(total)
+        where = {"key": null_key, "period": f"{quote(spec.period)} IS NULL"}
+        counts = RowCounts(total=int(total), values=int(values), null_keys=int(null_keys), null_periods=int(null_periods))
+        return check_row_counts(counts, spec.keys, spec.period, spec.value, lambda kind: self.example_rows(where[kind]))
 
     def latest_period(self) -> Any:
         """The latest period in the source."""
@@ -470,14 +451,18 @@ class DuckDBSource:
         whole_month = isinstance(text, str) and re.fullmatch(r"\d{4}-\d{2}", text.strip()) is not None
         return self.calendar().place(given, whole_month), given
 
-    def example_rows(self, condition: str, limit: int = 3) -> str:
+    def example_rows(self, condition: str, limit: int = 3, params: list[Any] | None = None) -> str:
         """A few rows matching ``condition`` as ``key=..., key=... at period`` text (for error messages)."""
         keys = [quote(k) for k in self.spec.keys]
         rows = self._sql(
             f"SELECT {', '.join(keys)}, {self._period_expr()} FROM {self._from()} WHERE {condition} "
-            f"ORDER BY {', '.join(keys)}, 2 LIMIT {int(limit)}"
+            f"ORDER BY {', '.join(keys)}, 2 LIMIT {int(limit)}", params
         ) if keys else []
         return "; ".join(describe_row(self.spec.keys, r[:-1], r[-1]) for r in rows) or "(none)"
+
+    def example_rows_at(self, period: Any) -> str:
+        """A few rows at ``period`` (for the far-ahead guard's message)."""
+        return self.example_rows(f"{self._period_expr()} = ?", params=[period])
 
     def _period_expr(self) -> str:
         return f"CAST({quote(self.spec.period)} AS {self.layout().period_type})"
@@ -536,4 +521,4 @@ class DuckDBSource:
         except duckdb.PermissionException as exc:
             raise SourceAccessError(access_message(exc)) from None
         except duckdb.Error as exc:
-            raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None
+            raise SourceError(f"reading the source failed ({one_line(exc)}); check [source] in the job file") from None

@@ -1,6 +1,6 @@
 """The DuckDB warehouse target: one run published in a single transaction.
 
-Tables are created from the ``arflow.sql`` DDL files on first use. A run's
+Tables are created from the ``sql/duckdb`` DDL files on first use. A run's
 rows go in with bulk inserts from the staged Parquet parts between ``BEGIN``
 and ``COMMIT``: :meth:`DuckDBTarget.prepare` does everything up to ``COMMIT``
 on an open transaction, the returned :class:`DuckDBPending` commits or rolls
@@ -26,17 +26,18 @@ from typing import Any
 
 import duckdb
 
-from ..errors import PublishError
+from ..errors import PublishError, one_line
 from ..results import ACTUALS, RUN_TABLES, SERIES_STATUS
 from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
 from ..settings import MAX_COVERAGE_LEVELS, coverage_label
+from ..version import arflow_version
 from .contract import DATABASE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
-from .duckdb_source import engine_config, first_line, is_lock_error, lock_message
+from .duckdb_source import engine_config, is_lock_error, lock_message
 from .identifiers import quote
 from .stage import StagedRun
 
-DDL_FILES = ("runs", "vintages", "series_status", "models", "gates", "residual_acf", "forecasts", "backtests", "accuracy",
-             "job_policy", "vintage_removals")
+#: DDL files, in creation order: the run log, the vintages, the run tables, the expiry policy, the removal audit
+DDL_FILES = ("runs", "vintages", *RUN_TABLES, "job_policy", "vintage_removals")
 VIEW_FILE = "published_forecasts"
 ACCURACY_VIEW = "accuracy_by_horizon"
 #: per coverage level: table -> column prefixes added with ALTER TABLE
@@ -45,8 +46,8 @@ _STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
 
 
 def load_sql(name: str) -> str:
-    """Text of ``sql/<name>.sql`` shipped as package data ``arflow.sql``."""
-    return resources.files("arflow.sql").joinpath(f"{name}.sql").read_text(encoding="utf-8")
+    """Text of ``sql/duckdb/<name>.sql`` (DuckDB dialect) shipped as package data ``arflow.sql.duckdb``."""
+    return resources.files("arflow.sql.duckdb").joinpath(f"{name}.sql").read_text(encoding="utf-8")
 
 
 def render_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ...] = ()) -> str:
@@ -86,7 +87,7 @@ def _age_sql(period_type: str) -> str:
     )
 
 
-def _open(database: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection:
+def open_target(database: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection:
     if not database.parent.is_dir():
         raise PublishError(f"folder {database.parent} of publish.database does not exist; create it or fix the path")
     try:
@@ -94,7 +95,7 @@ def _open(database: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection:
     except duckdb.Error as exc:
         if is_lock_error(exc):
             raise PublishError(f"target {lock_message(database)}") from None
-        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
+        raise PublishError(f"cannot open target database {database} ({one_line(exc)}); check publish.database") from None
 
 
 def _existing_layout(con: duckdb.DuckDBPyConnection, schema: str) -> tuple[list[str], str] | None:
@@ -132,7 +133,7 @@ def check_target(database: Path, layout: TableLayout) -> str:
     except duckdb.Error as exc:
         if is_lock_error(exc):
             return f"in use by another process right now (not checked: {_lock_holder(exc)})"
-        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
+        raise PublishError(f"cannot open target database {database} ({one_line(exc)}); check publish.database") from None
     try:
         check_layout(con, layout, database)
         check_ownership(con, layout, database)
@@ -299,15 +300,6 @@ def _column_difference(
     return None, new
 
 
-def _arflow_version() -> str:
-    from importlib import metadata
-
-    try:
-        return metadata.version("arflow")
-    except metadata.PackageNotFoundError:
-        return "0+unknown"
-
-
 def _lock_holder(exc: BaseException) -> str:
     """'held by <program> (PID n)' from DuckDB's lock error, or a generic phrase."""
     m = re.search(r"lock is held in (.+?) \(PID (\d+)\)", str(exc))
@@ -352,7 +344,7 @@ def preflight_target(database: Path) -> None:
                 f"target database {database} is in use by another process ({_lock_holder(exc)}: a dashboard, "
                 "a notebook or another arflow run); close it or retry when it finishes; nothing was computed"
             ) from None
-        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
+        raise PublishError(f"cannot open target database {database} ({one_line(exc)}); check publish.database") from None
 
 
 class DuckDBTarget:
@@ -388,7 +380,7 @@ class DuckDBTarget:
         except duckdb.Error as exc:
             if is_lock_error(exc):
                 return None  # reported by the target checks; the transaction checks the far-ahead guard again
-            raise PublishError(f"cannot open target database {self.database} ({first_line(exc)}); check publish.database") from None
+            raise PublishError(f"cannot open target database {self.database} ({one_line(exc)}); check publish.database") from None
         try:
             (n,) = con.execute(
                 "SELECT count(*) FROM information_schema.tables WHERE table_schema = ? AND table_name = 'vintages'",
@@ -416,7 +408,7 @@ class DuckDBTarget:
         """
         coverage_labels = tuple(coverage_label(c) for c in record.coverage)
         tables = _StagedRelations(staged)
-        con = _open(self.database)
+        con = open_target(self.database)
         watch_connection(con)  # a stop signal before COMMIT interrupts the running statement (then rolls back)
         pending = DuckDBPending(self.database, con)
         try:
@@ -541,7 +533,7 @@ class DuckDBTarget:
             if name in missing or name not in marked:  # created now, or adopted from a schema that matched exactly
                 con.execute(
                     f"INSERT INTO {self._schema}.{MARKER_TABLE} VALUES (?, ?, ?, ?, ?, ?, ?)",
-                    [name, dt.datetime.now(dt.timezone.utc).replace(tzinfo=None), "arflow", _arflow_version(),
+                    [name, dt.datetime.now(dt.timezone.utc).replace(tzinfo=None), "arflow", arflow_version(),
                      list(self.layout.keys), self.layout.period_type, columns],
                 )
             elif any(t == name for t, _, _ in new_columns):
@@ -649,7 +641,7 @@ class DuckDBPending:
 
     def failed(self, exc: BaseException) -> PublishError:
         return PublishError(
-            f"publishing to {self.database} failed and was rolled back ({first_line(exc)}); earlier results are unchanged"
+            f"publishing to {self.database} failed and was rolled back ({one_line(exc)}); earlier results are unchanged"
         )
 
     def commit(self) -> int:

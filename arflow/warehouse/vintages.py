@@ -22,11 +22,12 @@ from typing import Any
 
 import duckdb
 
-from ..errors import PublishError, SettingsError
+from ..errors import PublishError, SettingsError, one_line
 from ..results import RUN_TABLES
+from ..version import arflow_version
 from .contract import TableLayout
-from .duckdb_source import first_line, is_lock_error, lock_message, parse_vintage
-from .duckdb_target import _open, render_sql
+from .duckdb_source import is_lock_error, lock_message, parse_vintage
+from .duckdb_target import open_target, render_sql
 from .identifiers import quote
 
 #: every table holding a vintage's rows, with the column naming its run (accuracy twice: scores of
@@ -107,42 +108,7 @@ def _read_only(database: Path) -> duckdb.DuckDBPyConnection | None:
     except duckdb.Error as exc:
         if is_lock_error(exc):
             raise PublishError(f"target {lock_message(database)}") from None
-        raise PublishError(f"cannot open target database {database} ({first_line(exc)}); check publish.database") from None
-
-
-# ------------------------------------------------------------------------------------ latest
-
-def latest_vintage(spec: Any, *, strict: bool = True) -> Any:
-    """The job's latest vintage that changed the view (None when there is none yet).
-
-    ``strict=False`` returns None for a DuckDB target locked by another process.
-    """
-    found: list[Any] = []
-    pub = spec.publish
-    if pub.database is not None:
-        try:
-            con = _read_only(pub.database)
-        except PublishError:
-            if strict:
-                raise
-            con = None
-        if con is not None:
-            try:
-                if _has_table(con, pub.schema, "vintages"):
-                    (value,) = con.execute(
-                        f"SELECT max(as_of) FROM {quote(pub.schema)}.vintages WHERE job = ?", [spec.name]
-                    ).fetchone() or (None,)
-                    if value is not None:
-                        found.append(value)
-            finally:
-                con.close()
-    if pub.lakehouse is not None and not found:
-        from .delta_target import lake_latest_vintage
-
-        value = lake_latest_vintage(pub.lakehouse, pub.schema, spec.name, pub.lakehouse_options)
-        if value is not None:
-            found.append(value)
-    return max(found) if found else None
+        raise PublishError(f"cannot open target database {database} ({one_line(exc)}); check publish.database") from None
 
 
 # ------------------------------------------------------------------------------------ list
@@ -178,7 +144,7 @@ def list_vintages(spec: Any) -> list[VintageInfo]:
         ).fetchall()
         (current,) = con.execute(f"SELECT max(as_of) FROM {s}.vintages WHERE job = ?", [spec.name]).fetchone() or (None,)
     except duckdb.Error as exc:
-        raise PublishError(f"cannot read vintages from {pub.database} ({first_line(exc)})") from None
+        raise PublishError(f"cannot read vintages from {pub.database} ({one_line(exc)})") from None
     finally:
         con.close()
     return [
@@ -226,7 +192,7 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
     attempts: int | None = None
     try:
         if pub.database is not None:
-            con = _read_only(pub.database) if dry_run else (_open(pub.database) if pub.database.exists() else None)
+            con = _read_only(pub.database) if dry_run else (open_target(pub.database) if pub.database.exists() else None)
             if con is None or not _has_table(con, pub.schema, "runs"):
                 raise PublishError(f"{pub.database} holds no vintages of job {spec.name}; nothing to remove")
             ptype = _period_type(con, pub.schema) or "DATE"
@@ -252,7 +218,7 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
                         rows = lake_rows
                 else:
                     lake_pending, lake_rows = prepare_removal(pub.lakehouse, pub.schema, spec.name, lvalue, who,
-                                                              socket.gethostname(), _version(), pub.lakehouse_options)
+                                                              socket.gethostname(), arflow_version(), pub.lakehouse_options)
                     lake_rows_total = sum(lake_rows.values())
                     if pub.database is None:
                         rows = lake_rows
@@ -268,7 +234,7 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
         if lake_pending is not None:
             lake_pending.abort()
         if isinstance(exc, duckdb.Error):
-            raise PublishError(f"removing the vintage failed and was rolled back ({first_line(exc)}); nothing changed") from None
+            raise PublishError(f"removing the vintage failed and was rolled back ({one_line(exc)}); nothing changed") from None
         raise
     finally:
         if con is not None:
@@ -315,14 +281,8 @@ def _audit(
     con.execute(
         f"INSERT INTO {quote(schema)}.{AUDIT_TABLE} VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
         [_utcnow(), who, socket.gethostname(), job, value, run_id, attempts,
-         json.dumps(rows, sort_keys=True), _version()],
+         json.dumps(rows, sort_keys=True), arflow_version()],
     )
-
-
-def _version() -> str:
-    from ..job import arflow_version
-
-    return arflow_version()
 
 
 def _utcnow() -> dt.datetime:
