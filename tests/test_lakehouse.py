@@ -21,7 +21,8 @@ from deltalake import DeltaTable  # noqa: E402
 
 from arflow.cli import main  # noqa: E402
 from arflow.errors import PublishError, SettingsError, SourceError  # noqa: E402
-from arflow.job import prepare_demo, run_job  # noqa: E402
+from arflow.demo import prepare_demo  # noqa: E402
+from arflow.job import run_job  # noqa: E402
 from arflow.job_file import load_job  # noqa: E402
 from arflow.sample.panels import ar_panel, default_job, job_toml, mixed_panel, write_table  # noqa: E402
 from arflow.warehouse import delta_target as lake  # noqa: E402
