@@ -31,7 +31,7 @@ def forecast(
     frequency: str | None = None,
     settings: Settings | None = None,
     as_of: Any = None,
-    workers: int = 1,
+    workers: int | None = None,
 ) -> ForecastRun:
     """Fit, check, gate and forecast every series of a long frame.
 
@@ -42,7 +42,10 @@ def forecast(
     series; ``period`` is a Date/Datetime/ISO-text column (or integers with
     ``frequency="step"``); ``value`` is numeric. ``as_of`` (a date, ISO text,
     or int) ignores later rows; by default it is the latest period present.
-    ``workers`` > 1 runs the statistical core in that many worker processes (blocks of series).
+    ``workers`` > 1 runs the statistical core in that many worker processes (blocks of series);
+    None (the default) uses the CPUs available to the process (affinity and container quota)
+    when the frame holds enough series for that to pay (:data:`arflow.run.MIN_SERIES_FOR_WORKERS`);
+    1 keeps everything in this process. The numbers do not depend on it.
 
     ``frequency`` ("day", "week", "month", "quarter", "year", "step") overrides
     ``settings.frequency``. Without it, the frequency is ``settings.frequency``

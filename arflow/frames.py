@@ -323,13 +323,19 @@ def _series_codes(key_df: pl.DataFrame) -> tuple[np.ndarray, pl.DataFrame]:
 # ------------------------------------------------------------------------------------- out
 
 
+def _arrow(values: np.ndarray, pa_type: pa.DataType) -> pa.Array:
+    """A 1-D numpy array as an Arrow array, through polars: pyarrow's own numpy conversion
+    imports pandas on first use (one to several seconds in every worker process)."""
+    return pl.Series(np.ascontiguousarray(values)).to_arrow().cast(pa_type)
+
+
 def _list_column(name: str, mask: np.ndarray, values: np.ndarray, pa_type: pa.DataType) -> pl.Series:
     """(G, K) mask + (G, K) values -> a list column of the masked values per row."""
     counts = mask.sum(axis=1)
     offsets = np.zeros(len(counts) + 1, dtype=np.int32)
     np.cumsum(counts, out=offsets[1:])
     flat = values[mask]
-    arr = pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), pa.array(flat, pa_type))
+    arr = pa.ListArray.from_arrays(_arrow(offsets, pa.int32()), _arrow(flat, pa_type))
     return pl.Series(name, arr)
 
 
@@ -464,7 +470,7 @@ def _outlier_columns(res: CoreResult, codec) -> list[pl.Series]:
     offsets = np.zeros(G + 1, dtype=np.int32)
     np.cumsum(counts, out=offsets[1:])
     flat = codec.decode(ordinals[mask]).to_arrow()
-    periods = pl.Series("outlier_periods", pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), flat))
+    periods = pl.Series("outlier_periods", pa.ListArray.from_arrays(_arrow(offsets, pa.int32()), flat))
     return [periods, _list_column("outlier_effects", mask, np.nan_to_num(eff), pa.float64())]
 
 

@@ -20,6 +20,7 @@ from .engines.base import Engine, EventSink, WorkPlan
 from .engines.registry import engine_for
 from .errors import SettingsError, SourceError
 from .job_file import JobSpec
+from .machine import resolve_workers
 from .run import ChunkSummary
 from .warehouse.contract import PendingPublication, RunRecord, SourceStats, TableLayout, Target, run_id_for
 from .warehouse.duckdb_source import periods_between
@@ -267,7 +268,8 @@ def _start_event(spec: JobSpec, planned: _Planned, dry_run: bool, notes: list[st
     return {
         "event": "start", "job": spec.name, "run_id": planned.run_id, "as_of": planned.as_of, "dry_run": dry_run,
         "source": spec.source.describe(), "target": _target_text(planned.targets), "rows": planned.stats.rows,
-        "series": planned.stats.series, "chunks": planned.plan.chunks, "workers": spec.run.workers, "notes": notes,
+        "series": planned.stats.series, "chunks": planned.plan.chunks,
+        "workers": min(resolve_workers(spec.run.workers), max(planned.plan.chunks, 1)), "notes": notes,
     }
 
 

@@ -152,17 +152,21 @@ class PublishSpec:
 
 @dataclass(frozen=True)
 class RunOptions:
-    """How the work is cut up: series per chunk and parallel workers."""
+    """How the work is cut up: series per chunk and parallel workers.
 
-    chunk_series: int = 20_000
-    workers: int = 1
+    ``workers`` None (the default, or ``"auto"`` in the job file): the CPUs
+    available to the process when the run starts (:func:`arflow.machine.available_cpus`).
+    """
+
+    chunk_series: int = 10_000
+    workers: int | None = None
 
     def __post_init__(self) -> None:
         chunk, workers = self.chunk_series, self.workers
         if not (isinstance(chunk, int) and not isinstance(chunk, bool) and chunk >= 1):
             raise SettingsError(f"run.chunk_series = {chunk!r} is not allowed; use an integer of at least 1")
-        if not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
-            raise SettingsError(f"run.workers = {workers!r} is not allowed; use an integer from 1 to 256")
+        if workers is not None and not (isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 256):
+            raise SettingsError(f'run.workers = {workers!r} is not allowed; use an integer from 1 to 256 or "auto"')
 
 
 @dataclass(frozen=True)
@@ -438,7 +442,7 @@ def _lakehouse_options(section: dict[str, Any]) -> dict[str, str]:
 
 def _parse_run(section: dict[str, Any]) -> RunOptions:
     return RunOptions(chunk_series=section.get("chunk_series", RunOptions.chunk_series),
-                      workers=section.get("workers", RunOptions.workers))
+                      workers=None if section.get("workers") == "auto" else section.get("workers", RunOptions.workers))
 
 
 def _parse_spark(section: dict[str, Any] | None, source: SourceSpec) -> SparkOptions | None:

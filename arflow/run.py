@@ -20,14 +20,24 @@ import polars as pl
 from .core.panel import build_panel
 from .core.pipeline import run_core
 from .frames import encode_as_of, result_frames, to_panel_inputs
+from .machine import available_cpus
 from .results import ForecastRun
 from .settings import Settings
 
+#: series a frame needs before ``workers=None`` starts worker processes: four blocks of
+#: the core (below, starting the processes and copying results back cost more than they save)
+MIN_SERIES_FOR_WORKERS = 4096
+
 
 def forecast_frame(
-    frame: Any, keys: list[str], period: str, value: str, settings: Settings, as_of: Any = None, workers: int = 1
+    frame: Any, keys: list[str], period: str, value: str, settings: Settings, as_of: Any = None,
+    workers: int | None = None,
 ) -> ForecastRun:
-    """Fit, check, gate and forecast every series of a long polars/Arrow frame (settings already resolved)."""
+    """Fit, check, gate and forecast every series of a long polars/Arrow frame (settings already resolved).
+
+    ``workers`` None: the CPUs available to the process when the frame holds at
+    least :data:`MIN_SERIES_FOR_WORKERS` series, else one process.
+    """
     inp = to_panel_inputs(frame, keys, period, value, settings.frequency)
     as_of_ord = encode_as_of(as_of, inp.codec)
     panel = build_panel(
@@ -36,6 +46,8 @@ def forecast_frame(
     )
     if inp.flags is not None:  # what only the frame adapter can see (resolved duplicates, off-calendar labels)
         panel = replace(panel, flags=panel.flags | inp.flags)
+    if workers is None:  # worker processes pay only from a few blocks of series on
+        workers = available_cpus() if panel.n_series >= MIN_SERIES_FOR_WORKERS else 1
     core = run_core(panel, settings, workers=workers)
     as_of_label = inp.codec.decode(np.array([panel.as_of])).item()
     return ForecastRun.from_tables(result_frames(inp, core, settings), as_of=as_of_label, settings=settings)

@@ -42,6 +42,20 @@ def mixed_monthly(G: int, T: int, seed: int = 7, level: float = 100.0) -> np.nda
     return level + y[:, burn:]
 
 
+def mixed_seasonal(G: int, T: int, season: int, seed: int = 7, level: float = 100.0) -> np.ndarray:
+    """:func:`mixed_monthly` with the seasonal lag ``season`` (52 for weekly data, 7 for daily)."""
+    rng = np.random.default_rng(seed)
+    burn = 5 * season
+    e = rng.normal(size=(G, T + burn))
+    kind = rng.integers(0, 3, size=G)
+    a1 = np.where(kind == 0, 0.6, np.where(kind == 1, 0.2, 1.0))
+    a_s = np.where(kind == 1, 0.5, 0.0)
+    y = np.zeros((G, T + burn))
+    for t in range(season, T + burn):
+        y[:, t] = a1 * y[:, t - 1] + a_s * y[:, t - season] + e[:, t]
+    return level + y[:, burn:]
+
+
 def to_panel(Y: np.ndarray):
     """The core's panel of a complete (G, T) array (periods 0..T-1)."""
     from arflow.core.panel import build_panel

@@ -25,7 +25,7 @@ def test_defaults_and_relative_paths(tmp_path: Path) -> None:
     assert spec.publish.schema == "arflow" and spec.publish.on_failure == "keep-previous"
     assert spec.settings.forecast.coverage == (0.8, 0.95)
     assert spec.settings.model.seasonal_lag == "off"
-    assert spec.run.chunk_series == 20_000 and spec.run.workers == 1
+    assert spec.run.chunk_series == 10_000 and spec.run.workers is None  # None: the CPUs available
     assert len(spec.config_sha256) == 64
 
 

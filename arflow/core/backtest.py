@@ -58,7 +58,7 @@ specification: ratio < 0.95 in about 7% of series at 40 origins x 4 steps, 11%
 at 40 x 6, 28% at 12 x 12, 0.3% at 60 x 1). :meth:`BacktestResult.relative_rmse_over`
 pools only steps 1..k.
 
-Cost and memory: series are sorted by their highest lag and processed in
+Cost and memory: series are sorted by their highest lag (then by lag set) and processed in
 blocks of ``block`` (vectorised within a block, as
 :func:`arflow.core.pipeline.run_core` does; each block's design is only as wide
 as its own lag sets). Within a block the expanding window is kept as raw sums
@@ -71,6 +71,7 @@ One origin is held at a time; work is linear in G, T and the number of origins.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -256,6 +257,7 @@ def rolling_origin(
     block: int = BLOCK_SERIES,
     fitted: np.ndarray | None = None,
     parameter_uncertainty: bool = False,
+    mapper: "Callable | None" = None,
 ) -> BacktestResult:
     """Backtest each series' AR specification at the last ``origins`` origins (see the module notes).
 
@@ -266,6 +268,8 @@ def rolling_origin(
     scale. ``min_train``: least number of level observations up to an origin.
     ``parameter_uncertainty``: intervals include the estimation term and
     Student-t quantiles, as the published ones do (:mod:`arflow.core.forecast`).
+    ``mapper``: a ``map``-like callable that runs the blocks (e.g. a process pool's
+    ``map``); the built-in ``map`` by default.
 
     >>> y = np.tile([0.0, 2.0], 7)[None, :13]; y[0, 11:] = [3.0, 1.0]
     >>> r = rolling_origin(y, np.array([[True]]), np.array([1]), origins=2, horizon=2)
@@ -304,15 +308,22 @@ def rolling_origin(
     # blocks of series with similar highest lags, so each block's design is only as
     # wide as its own lag sets need (results are put back in input order)
     maxlag = np.max(np.where(lag_mask, lags[None, :], 0), axis=1) if len(lags) else np.zeros(G, np.int64)
-    perm = np.argsort(maxlag, kind="stable")
+    # within a highest lag, series with the same lag set side by side: a block's design and
+    # its interval terms are as wide as the union of its series' lag sets
+    pattern = np.zeros(G, dtype=np.int64)
+    for j in range(min(len(lags), 62)):
+        pattern |= lag_mask[:, j].astype(np.int64) << j
+    perm = np.lexsort((pattern, maxlag))
     back = np.empty_like(perm)
     back[perm] = np.arange(G)
     parts = {k: [] for k in ("model", "naive", "snaive", "hits", "n_origins")}
-    step = max(int(block), 1)
-    for b0 in range(0, G, step):
-        idx = perm[b0 : b0 + step]
-        out = _block(Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train),
-                     fit_ok[idx], bool(parameter_uncertainty))
+    jobs = []
+    for b0, b1 in _block_bounds(maxlag[perm], pattern[perm], max(int(block), 1)):
+        idx = perm[b0:b1]
+        jobs.append((Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train),
+                     fit_ok[idx], bool(parameter_uncertainty)))
+    # blocks depend only on the series, never on ``mapper``: the numbers are the same in any process layout
+    for out in (mapper or map)(_block_of, jobs):
         for k, v in out.items():
             parts[k].append(v)
     if G == 0:
@@ -339,6 +350,34 @@ def rolling_origin(
         coverage_rate_all=rate_all,
         seasonal_scale=seasonal_scale,
     )
+
+
+def _block_of(args: tuple) -> dict:
+    return _block(*args)
+
+
+def _block_bounds(maxlag: np.ndarray, pattern: np.ndarray, block: int) -> list[tuple[int, int]]:
+    """Blocks of at most ``block`` consecutive (sorted) series: a lag set shared by at least a
+    quarter block gets blocks of its own, rarer ones share, so most blocks are one lag set wide."""
+    G = len(maxlag)
+    if G == 0:
+        return []
+    change = np.flatnonzero((np.diff(maxlag) != 0) | (np.diff(pattern) != 0)) + 1
+    edges = np.concatenate([[0], change, [G]])
+    out: list[tuple[int, int]] = []
+    b0 = 0
+    quarter = max(block // 4, 1)
+    for a, b in zip(edges[:-1], edges[1:]):
+        a, b = int(a), int(b)
+        if a > b0 and (a - b0 + (b - a) > block or (b - a >= quarter and a - b0 >= quarter)):
+            out.append((b0, a))
+            b0 = a
+        while b - b0 >= block:
+            out.append((b0, b0 + block))
+            b0 += block
+    if b0 < G:
+        out.append((b0, G))
+    return out
 
 
 def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, fit_ok=None, param_unc=False) -> dict:
@@ -384,12 +423,18 @@ def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, fit_
 
     # MASE scales at every column from prefix sums of in-sample naive errors
     S1, N1 = _prefix_abs_diff(Y, 1)
+    Ss = Ns = None
     if s is not None and seasonal_scale.any():
         Ss, Ns = _prefix_abs_diff(Y, s)
     L = int(lags_b.max())
     W = L + 1
     steps = np.arange(1, H + 1)
-    for c in cols:
+    # history windows of every origin are read from one left-padded copy of Y
+    Ypad = np.concatenate([np.full((B, W), np.nan), Y], axis=1)
+    # origins are solved and forecast in groups: one batched call per group instead of
+    # one per origin (the per-call cost of the small batched solves dominated)
+    snaps: list[tuple[int, np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = []
+    for i, c in enumerate(cols):
         c = int(c)
         rows = slice(done + 1, c + 1)
         wnew = (t[None, rows] >= start[:, None]).astype(np.float64)
@@ -400,53 +445,91 @@ def _block(Y, mask, lags, diff, seasonal_scale, cols, H, cov, s, min_train, fit_
         nobs += wnew.sum(axis=1)
         done = c
         ok = has & (nobs >= k + 1 + MIN_RESID_DF) & (c - first + 1 >= max(min_train, 1))
-        if not ok.any():
-            continue
-        okw = ok.astype(np.float64)
-        with np.errstate(all="ignore"):
-            g = ols.gram_from_sums(S * okw[:, None, None], ssum * okw[:, None], nobs * okw)
-            # coefficients and RSS from the running sums alone: no pass over the rows per origin
-            res = ols.solve(g, mask)
-            sigma = np.sqrt(res.sigma2)
-            # undo the shift y = x + m: b0 = a + m (1 - sum b)
-            icpt = res.intercept + shift * (1.0 - res.beta.sum(axis=1))
-        phi = np.zeros((B, L))
-        phi[:, lags_b - 1] = res.beta * mask
-        okf = ok[:, None]
-        phi = np.where(okf, np.nan_to_num(phi), 0.0)
-        icpt = np.where(ok, np.nan_to_num(icpt), 0.0)
-        sig = np.where(ok, np.nan_to_num(sigma), 0.0)
-        lo = c + 1 - W
-        hist = Y[:, max(lo, 0) : c + 1]
-        if lo < 0:
-            hist = np.concatenate([np.full((B, -lo), np.nan), hist], axis=1)
-        hist = np.where(okf, np.nan_to_num(hist), 0.0)
-        extra = {}
-        if param_unc:
-            with np.errstate(all="ignore"):
-                V = cov_from_gram(g, mask, lags_b, sig, shift)
-            Vd = np.zeros((B, L + 1, L + 1))
-            Vd[:, : V.shape[1], : V.shape[2]] = V
-            extra = dict(coef_cov=np.where(okf[:, :, None], np.nan_to_num(Vd), 0.0),
-                         df_resid=np.where(ok, res.df_resid, np.nan))
-        with np.errstate(all="ignore"):
-            fc = forecast_ar(hist, icpt, phi, sig, H, cov, diff, **extra)
-        ok = ok & np.isfinite(sigma) & np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
-        okf = ok[:, None]
-        actual = Y[:, c + 1 : c + 1 + H]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            scale = S1[:, c] / N1[:, c]
-            if s is not None and seasonal_scale.any():
-                scale = np.where(seasonal_scale, Ss[:, c] / Ns[:, c], scale)
-        e = actual - fc.mean
-        scored = okf & np.isfinite(e)
-        sums["model"].add(e, scored, scale)
-        sums["naive"].add(actual - Y[:, c : c + 1], scored, scale)
-        if s is not None:
-            src = c - s + 1 + (steps - 1) % s  # last observed column of the same season
-            prev = np.where(src[None, :] >= 0, Y[:, np.maximum(src, 0)], np.nan)
-            sums["snaive"].add(actual - prev, scored, scale)
-        inside = (actual[None] >= fc.lower) & (actual[None] <= fc.upper) & scored[None]
-        hits += inside
-        n_orig += scored.any(axis=1)
+        if ok.any():
+            snaps.append((c, ok, S[ok], ssum[ok], nobs[ok]))
+        if snaps and (len(snaps) == ORIGIN_GROUP or i == len(cols) - 1):
+            fcs = _forecast_origins(snaps, Ypad, mask, lags_b, diff, shift, H, cov, param_unc, W)
+            for (c, ok, *_), (mean, lower, upper, good) in zip(snaps, fcs):
+                _score(sums, hits, n_orig, Y, c, ok, good, mean, lower, upper, S1, N1,
+                       (Ss, Ns) if s is not None and seasonal_scale.any() else None, seasonal_scale, s, steps, H)
+            snaps = []
     return out()
+
+
+#: origins solved and forecast in one batched call (bounds the batch at 8 x block rows)
+ORIGIN_GROUP = 8
+
+
+def _forecast_origins(snaps, Ypad, mask, lags_b, diff, shift, H, cov, param_unc, W) -> list[tuple]:
+    """Refit and forecast every (origin, series) pair of a group of origins in one batch.
+
+    ``snaps``: per origin ``(c, ok, S, ssum, nobs)`` with the expanding-window sums of
+    the series that take part (``ok``). Returns per origin ``(mean, lower, upper, good)``
+    for those series, ``good`` marking finite forecasts.
+    """
+    B = Ypad.shape[0]
+    L = int(lags_b.max())
+    b_idx = np.concatenate([np.flatnonzero(ok) for _, ok, *_ in snaps])
+    c_idx = np.concatenate([np.full(int(ok.sum()), c) for c, ok, *_ in snaps])
+    maskr = mask[b_idx]
+    with np.errstate(all="ignore"):
+        g = ols.gram_from_sums(np.concatenate([x[2] for x in snaps]), np.concatenate([x[3] for x in snaps]),
+                               np.concatenate([x[4] for x in snaps]))
+        # coefficients and RSS from the running sums alone: no pass over the rows per origin
+        res, Ainv = ols.solve_with_inverse(g, maskr)
+        sigma = np.sqrt(res.sigma2)
+        # undo the shift y = x + m: b0 = a + m (1 - sum b)
+        icpt = res.intercept + shift[b_idx] * (1.0 - res.beta.sum(axis=1))
+    R = len(b_idx)
+    phi = np.zeros((R, L))
+    phi[:, lags_b - 1] = res.beta * maskr
+    phi = np.nan_to_num(phi)
+    icpt = np.nan_to_num(icpt)
+    sig = np.nan_to_num(sigma)
+    # the last W observed values up to each origin (column c of Y is column c + W of Ypad)
+    hist = np.nan_to_num(Ypad[b_idx[:, None], c_idx[:, None] + 1 + np.arange(W)[None, :]])
+    extra = {}
+    if param_unc:
+        with np.errstate(all="ignore"):
+            V = cov_from_gram(g, maskr, lags_b, sig, shift[b_idx], inverse=Ainv)
+        extra = dict(coef_cov=V, df_resid=res.df_resid)  # forecast_ar zeroes NaN/inf itself
+    with np.errstate(all="ignore"):
+        fc = forecast_ar(hist, icpt, phi, sig, H, cov, diff[b_idx], **extra)
+    good = np.isfinite(sigma) & np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)
+    out = []
+    r0 = 0
+    for _, ok, *_ in snaps:
+        r1 = r0 + int(ok.sum())
+        out.append((fc.mean[r0:r1], fc.lower[:, r0:r1], fc.upper[:, r0:r1], good[r0:r1]))
+        r0 = r1
+    return out
+
+
+def _score(sums, hits, n_orig, Y, c, ok, good, mean, lower, upper, S1, N1, seas, seasonal_scale, s, steps, H) -> None:
+    """Add one origin's errors (series ``ok`` forecast, ``good`` of them finite) to the running sums."""
+    B = Y.shape[0]
+    okb = np.zeros(B, dtype=bool)
+    okb[np.flatnonzero(ok)[good]] = True
+    okf = okb[:, None]
+    fmean = np.zeros((B, H))
+    fmean[ok] = mean
+    flo = np.zeros((lower.shape[0], B, H))
+    fup = np.zeros((lower.shape[0], B, H))
+    flo[:, ok] = lower
+    fup[:, ok] = upper
+    actual = Y[:, c + 1 : c + 1 + H]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = S1[:, c] / N1[:, c]
+        if seas is not None:
+            scale = np.where(seasonal_scale, seas[0][:, c] / seas[1][:, c], scale)
+    e = actual - fmean
+    scored = okf & np.isfinite(e)
+    sums["model"].add(e, scored, scale)
+    sums["naive"].add(actual - Y[:, c : c + 1], scored, scale)
+    if s is not None:
+        src = c - s + 1 + (steps - 1) % s  # last observed column of the same season
+        prev = np.where(src[None, :] >= 0, Y[:, np.maximum(src, 0)], np.nan)
+        sums["snaive"].add(actual - prev, scored, scale)
+    inside = (actual[None] >= flo) & (actual[None] <= fup) & scored[None]
+    hits += inside
+    n_orig += scored.any(axis=1)

@@ -144,38 +144,42 @@ def parameter_variance(
     """
     G, L = phi.shape
     out = np.zeros((G, horizon))
-    V = np.nan_to_num(np.asarray(coef_cov, dtype=np.float64))
+    V = np.asarray(coef_cov, dtype=np.float64)
     # only the lags some series uses (phi or V nonzero): a compact parameter vector
-    diagv = np.diagonal(V, axis1=1, axis2=2)[:, 1:]
+    # (NaN/inf are zeroed on the compact block only: the dense one is mostly zeros)
+    diagv = np.nan_to_num(np.diagonal(V, axis1=1, axis2=2)[:, 1:])
     used = np.flatnonzero(np.any(diagv != 0, axis=0) | np.any(phi != 0, axis=0)) + 1
     K = len(used)
     P = K + 1
     sel = np.concatenate([[0], used])
-    Vc = V[:, sel][:, :, sel]
+    Vc = np.nan_to_num(V[:, sel[:, None], sel[None, :]])
     phic = phi[:, used - 1]
     buf = np.zeros((G, L + horizon))
     if L:
         buf[:, :L] = src[:, src.shape[1] - L :]
     R = max(L, 1)
-    ring = np.zeros((R, G, P))  # derivatives of positions p - R .. p - 1, at index p % R
-    cum = np.zeros((G, P))
+    # derivatives are held parameter-major, (P, G): every update runs over the series axis
+    # (with (G, P) and P of 2..13 the per-row overhead of the short inner loops dominated)
+    phit = np.ascontiguousarray(phic.T)
+    ring = np.zeros((R, P, G))  # derivatives of positions p - R .. p - 1, at index p % R
+    cum = np.zeros((P, G))
     CH = 64  # steps per batched quadratic form (bounds memory at long horizons)
-    grads = np.zeros((G, min(horizon, CH), P))
+    grads = np.zeros((min(horizon, CH), P, G))
     for h in range(horizon):
         p = L + h
         past = buf[:, p - used] if K else np.zeros((G, 0))  # y at lags used
         buf[:, p] = intercept + (phic * past).sum(axis=1)
-        g = np.zeros((G, P))
-        g[:, 0] = 1.0
-        g[:, 1:] = past
+        g = np.empty((P, G))
+        g[0] = 1.0
+        g[1:] = past.T
         for k in range(K):
-            g += phic[:, k : k + 1] * ring[(p - used[k]) % R]
+            g += phit[k] * ring[(p - used[k]) % R]
         ring[p % R] = g
-        cum = np.where(diff[:, None], cum + g, g)
-        grads[:, h % CH] = cum
+        cum = np.where(diff[None, :], cum + g, g)
+        grads[h % CH] = cum
         if h % CH == CH - 1 or h == horizon - 1:
             h0 = h - h % CH
-            gm = grads[:, : h - h0 + 1]
+            gm = np.ascontiguousarray(grads[: h - h0 + 1].transpose(2, 0, 1))
             out[:, h0 : h + 1] = (np.matmul(gm, Vc) * gm).sum(axis=2)
     return np.maximum(out, 0.0)
 
@@ -200,19 +204,26 @@ def coef_covariance(X: np.ndarray, w: np.ndarray, mask: np.ndarray, lags: np.nda
     return cov_from_gram(ols.gram(X, np.zeros((G, T)), w), mask, lags, sigma)
 
 
-def cov_from_gram(g, mask: np.ndarray, lags: np.ndarray, sigma: np.ndarray, shift: np.ndarray | None = None) -> np.ndarray:
+def cov_from_gram(g, mask: np.ndarray, lags: np.ndarray, sigma: np.ndarray, shift: np.ndarray | None = None,
+                  inverse: np.ndarray | None = None) -> np.ndarray:
     """:func:`coef_covariance` from an :class:`arflow.core.ols.Gram` of the lag columns.
 
     ``shift`` (G,): the series were shifted by this before the Gram was formed
     (``b0 = a + m (1 - sum b)``), so the lag columns' own means are ``xmean + m``.
+    ``inverse``: the inverse of the masked Gram matrix when the caller has it
+    (:func:`arflow.core.ols.solve_with_inverse`).
     """
     from . import ols
 
     G = g.xty.shape[0]
     L = int(lags.max()) if len(lags) else 0
     out = np.zeros((G, L + 1, L + 1))
-    A, _, m = ols._masked(g, mask)
-    Ainv = ols._inv(A, m)
+    if inverse is None:
+        A, _, m = ols._masked(g, mask)
+        Ainv = ols._inv(A, m)
+    else:
+        m = ~g.degenerate if mask is None else (np.asarray(mask, dtype=bool) & ~g.degenerate)
+        Ainv = inverse
     sc = m.astype(np.float64) / g.scale
     s2 = np.asarray(sigma, dtype=np.float64) ** 2
     Vb = Ainv * (sc[:, :, None] * sc[:, None, :]) * s2[:, None, None]

@@ -216,6 +216,25 @@ def solve(g: Gram, mask: np.ndarray | None = None) -> OLSResult:
     return OLSResult(intercept, beta, rss, g.nobs, n_params, empty, np.empty((len(rss), 0, 0)), nan, g.yty)
 
 
+def solve_with_inverse(g: Gram, mask: np.ndarray | None = None) -> tuple[OLSResult, np.ndarray]:
+    """:func:`solve` through the inverse of the masked, scaled Gram matrix, returned too.
+
+    For callers that need the coefficients' covariance as well (one factorisation
+    instead of two): the inverse ``(G, k, k)`` is in the scaled units of ``g``
+    (see :func:`arflow.core.forecast.cov_from_gram`).
+    """
+    A, b, m = _masked(g, mask)
+    Ainv = _inv(A, m)
+    bs = np.matmul(Ainv, b[:, :, None])[:, :, 0]
+    rss = np.maximum(g.yty - np.einsum("gk,gk->g", bs, b), 0.0)
+    beta = bs / g.scale
+    intercept = g.ymean - np.einsum("gk,gk->g", beta, g.xmean)
+    n_params = m.sum(axis=1) + 1
+    empty = np.empty((len(rss), 0))
+    nan = np.full(len(rss), np.nan)
+    return OLSResult(intercept, beta, rss, g.nobs, n_params, empty, np.empty((len(rss), 0, 0)), nan, g.yty), Ainv
+
+
 def fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, mask: np.ndarray | None = None) -> OLSResult:
     """Weighted OLS with intercept for a batch: exact residuals, one refinement step, covariance.
 

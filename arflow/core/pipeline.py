@@ -410,24 +410,30 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         differenced,
         **_interval_terms(fit, modelled, fs, excluded),
     )
-    bt = None
-    bs = settings.backtest
-    if bs.enabled:
-        bt = backtest.rolling_origin(
-            Yf,
-            fit.lag_mask,
-            fit.lags,
-            differenced,
-            origins=bs.origins,
-            horizon=bs.horizon or fs.horizon,
-            coverage=fs.coverage,
-            season=seasonal,
-            min_train=gs.min_observations,
-            fitted=fit.fitted,
-            parameter_uncertainty=fs.parameter_uncertainty,
-        )
+    # the backtest runs on the whole panel afterwards (run_core): its blocks group series by lag set
     return dict(fit=fit, differenced=differenced, unit_root=unit_root, adf=adf, kpss=kp, acf=acf,
-                residual_test=rtest, arch=arch, forecasts=fc, backtest=bt, outliers=orep)
+                residual_test=rtest, arch=arch, forecasts=fc, outliers=orep,
+                backtest_levels=Yf if settings.backtest.enabled else None)
+
+
+def _backtest(levels: np.ndarray, fit: autoreg.ARFit, differenced: np.ndarray, settings: Settings,
+              mapper=None) -> backtest.BacktestResult:
+    """The rolling-origin backtest of every series' final specification (outlier-cleaned levels)."""
+    bs, fs, gs = settings.backtest, settings.forecast, settings.gates
+    return backtest.rolling_origin(
+        levels,
+        fit.lag_mask,
+        fit.lags,
+        differenced,
+        origins=bs.origins,
+        horizon=bs.horizon or fs.horizon,
+        coverage=fs.coverage,
+        season=settings.model.seasonal_for(settings.frequency),
+        min_train=gs.min_observations,
+        fitted=fit.fitted,
+        parameter_uncertainty=fs.parameter_uncertainty,
+        mapper=mapper,
+    )
 
 
 def _concat(objs: list, axis: int = 0):
@@ -457,14 +463,13 @@ def _concat(objs: list, axis: int = 0):
     return cls(**out)
 
 
-def _in_processes(pieces: list[Panel], settings: Settings, workers: int) -> list[dict]:
+def _pool(workers: int):
     import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor
 
     methods = mp.get_all_start_methods()
     ctx = mp.get_context("fork" if "fork" in methods else methods[0])
-    with ProcessPoolExecutor(max_workers=min(workers, len(pieces)), mp_context=ctx) as pool:
-        return list(pool.map(_run_block, pieces, [settings] * len(pieces)))
+    return ProcessPoolExecutor(max_workers=workers, mp_context=ctx)
 
 
 def _relative_interval_width(panel: Panel, fc: Forecasts) -> np.ndarray:
@@ -501,13 +506,22 @@ def run_core(panel: Panel, settings: Settings, workers: int = 1) -> CoreResult:
     G = panel.n_series
     starts = list(range(0, max(G, 1), BLOCK_SERIES))
     pieces = [panel.take(np.arange(s, min(s + BLOCK_SERIES, G))) for s in starts] if G > BLOCK_SERIES else [panel]
-    if workers > 1 and len(pieces) > 1:
-        blocks = _in_processes(pieces, settings, workers)
-    else:
-        blocks = [_run_block(p, settings) for p in pieces]
-    parts = {k: _concat([b[k] for b in blocks]) for k in blocks[0]}
-    fit, fc, rtest, arch = parts["fit"], parts["forecasts"], parts["residual_test"], parts["arch"]
-    bt = parts["backtest"]
+    pool = _pool(min(workers, len(pieces))) if workers > 1 and len(pieces) > 1 else None
+    try:
+        if pool is not None:
+            blocks = list(pool.map(_run_block, pieces, [settings] * len(pieces)))
+        else:
+            blocks = [_run_block(p, settings) for p in pieces]
+        parts = {k: _concat([b[k] for b in blocks]) for k in blocks[0]}
+        fit, fc, rtest, arch = parts["fit"], parts["forecasts"], parts["residual_test"], parts["arch"]
+        bt = None
+        if settings.backtest.enabled:
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore"):
+                bt = _backtest(parts["backtest_levels"], fit, parts["differenced"], settings,
+                               None if pool is None else pool.map)
+    finally:
+        if pool is not None:
+            pool.shutdown()
     rp = rtest.pvalue
     if gs.series_fdr is not None:
         # Benjamini-Hochberg across all series of the run

@@ -16,6 +16,7 @@ from concurrent.futures import Future
 from typing import Any
 
 from ..allocator import tune_for_batch
+from ..machine import resolve_workers
 from ..runtime import bind_to_parent, stop_pool
 from ..run import ChunkSummary, actuals_window, chunk_event, forecast_frame, recent_actuals
 from ..settings import Settings
@@ -58,7 +59,7 @@ class LocalEngine:
             done = done + part
             emit(chunk_event(done, plan.chunks, series))
 
-        workers = min(self.spec.run.workers, plan.chunks)
+        workers = min(resolve_workers(self.spec.run.workers), plan.chunks)  # default: the CPUs available
         if workers <= 1:
             for i, frame in enumerate(frames):
                 progress(forecast_chunk(frame, *args, i))
@@ -71,7 +72,7 @@ def forecast_chunk(
     frame: Any, keys: list[str], period: str, value: str, settings: Settings, as_of: Any, stage_dir: str, chunk_no: int,
 ) -> ChunkSummary:
     """Forecast one chunk of whole series and stage its rows (runs in a worker process too)."""
-    run = forecast_frame(frame, keys, period, value, settings, as_of)
+    run = forecast_frame(frame, keys, period, value, settings, as_of, workers=1)  # the job's workers are the parallelism
     return stage_chunk(run, stage_dir, chunk_no, recent_actuals(frame, keys, period, value, actuals_window(settings)))
 
 

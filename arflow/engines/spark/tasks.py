@@ -98,7 +98,8 @@ def fit_bucket(job: TaskJob, table: pa.Table) -> pa.Table:
         raise RuntimeError(f"arflow test fault injected in the Spark task of bucket {bucket}")
     data = table.drop_columns([BUCKET])
     try:
-        run = forecast_frame(data, list(job.keys), job.period, job.value, job.settings, job.as_of)
+        run = forecast_frame(data, list(job.keys), job.period, job.value, job.settings, job.as_of,
+                             workers=1)  # Spark's tasks are the parallelism
     except ArflowError as exc:
         rows = [(bucket, task, ERROR, 0, 0, 0.0, f"{type(exc).__name__}\n{exc}".encode())]
     else:
