@@ -1,4 +1,4 @@
-"""Command line: ``arflow run | validate | demo | vintages | retract``.
+"""Command line: ``arflow run | validate | demo | vintages | retract | explain | report``.
 
 Exit codes: 0 success; 1 unexpected internal error; 2 job-file or usage
 error; 3 source, data or target error (including a locked target); 4 the
@@ -82,6 +82,9 @@ def build_parser() -> argparse.ArgumentParser:
     common(run)
     run.set_defaults(handler=_cmd_run)
     _add_vintage_commands(sub, common)
+    from .cli_explain import add_commands
+
+    add_commands(sub, common)  # explain, report
     conv = sub.add_parser("lakehouse-convert", help="convert a job's lakehouse from the old Parquet-marker layout to Delta tables")
     conv.add_argument("job_file", metavar="JOB.toml", help="the job file (its [publish] lakehouse and schema)")
     common(conv)
@@ -178,8 +181,16 @@ def _summary(outcome: Any) -> str:
         row("would quarantine" if outcome.dry_run else "quarantined", f"{outcome.series_quarantined:,}",
             f"({100 * outcome.quarantine_share:.1f}% of series; alarm above {100 * outcome.max_quarantine_share:g}%)"),
     ]
-    for reason, count in sorted(outcome.reason_counts.items(), key=lambda kv: (-kv[1], kv[0])):
+    reasons = sorted(outcome.reason_counts.items(), key=lambda kv: (-kv[1], kv[0]))
+    if reasons:
+        lines.append(f"  {'reasons':<26}{'series':>9}   (a series can have several reasons)")
+    for reason, count in reasons:
         lines.append(row("  " + reason, f"{count:,}"))
+    warnings = sorted(getattr(outcome, "warning_counts", {}).items(), key=lambda kv: (-kv[1], kv[0]))
+    if warnings:
+        lines.append(f"  {'warnings (not held back)':<26}{'series':>9}   (failed checks in warn mode; see arflow explain)")
+    for name, count in warnings:
+        lines.append(row("  " + name, f"{count:,}"))
     lines.append(row("time taken", f"{outcome.seconds:.1f} s"))
     if outcome.dry_run:
         lines.append(f"  {'results':<26}not written (dry run); would go to {outcome.target}")
@@ -246,8 +257,12 @@ def _cmd_demo(args: argparse.Namespace, reporter: _Reporter) -> int:
     directory = args.dir.expanduser().resolve()
     outcome = run_demo(directory, on_event=reporter)
     code = _finish(outcome, reporter)
+    from .cli_explain import demo_report
+
+    report_line = demo_report(directory, reporter)
     if not reporter.json:
         reporter.out.write(
+            report_line +
             f"  {'job file':<26}{directory / 'demo_job.toml'}\n"
             f"  {'try next':<26}arflow run {directory / 'demo_job.toml'} --as-of 2024-12 --dry-run\n"
         )
@@ -501,6 +516,10 @@ def _fail(reporter: _Reporter, code: int, kind: str, message: str) -> int:
     reporter.err.write(f"arflow: error: {message}\n")
     reporter.err.flush()
     return code
+
+
+#: the text summary ``arflow run`` prints, for a job outcome (the typed run call's ``RunSummary.text``)
+summary_text = _summary
 
 
 if __name__ == "__main__":

@@ -88,7 +88,13 @@ class SettingsError(ArflowError):
     exit_code = 2
 
 
-class SourceError(ArflowError):
+class DataError(ArflowError):
+    """A source, data or target error (exit code 3): the base of :class:`SourceError` and :class:`PublishError`."""
+
+    exit_code = 3
+
+
+class SourceError(DataError):
     """The source cannot be read or does not have the expected shape."""
 
     exit_code = 3
@@ -102,7 +108,7 @@ class SourceAccessError(SourceError):
     """The source query tried to reach something outside the job's named source (a file, the network, an extension)."""
 
 
-class PublishError(ArflowError):
+class PublishError(DataError):
     """The target warehouse refused the run (locked, unreachable); nothing was changed."""
 
     exit_code = 3

@@ -347,7 +347,8 @@ def _nullable(a: np.ndarray) -> pl.Series:
 def result_frames(inp: PanelInputs, res: CoreResult, settings) -> dict[str, pl.DataFrame]:
     """Key the core's arrays back to the user's columns: one frame per result table."""
     out = {
-        "models": models_frame(inp.keys, res, inp.codec),
+        "models": models_frame(inp.keys, res, inp.codec).with_columns(
+            *_status_columns(res.outcome, settings, res.panel.n_series)),
         "gates": gates_frame(inp.keys, res),
         "residual_acf": residual_acf_frame(inp.keys, res),
         "forecasts": forecasts_frame(inp.keys, res, inp.codec),
@@ -453,6 +454,53 @@ def forecasts_frame(keys: pl.DataFrame, res: CoreResult, codec: PeriodCodec) -> 
     return keys[rep].with_columns(*cols)
 
 
+#: one failed gate of a series: what ``series_status.failed_gates`` holds
+FAILED_GATE = pl.Struct({"gate": pl.String, "statistic": pl.Float64, "p_value": pl.Float64, "threshold": pl.Float64})
+
+
+def _status_columns(out: Any, settings: Any, G: int) -> list[pl.Series]:
+    """Per series: every failed gate row (``failed_gates``) and the warning checks that fired (``warnings``).
+
+    A warning is a failed row of a check that did not hold the series back:
+    ``order_candidates`` always, ``worse_than_naive`` / ``interval_undercoverage``
+    with their backtest setting ``"warn"``.
+    """
+    bt = getattr(settings, "backtest", None)
+    warn = {"order_candidates"}
+    if bt is not None and getattr(bt, "naive_gate", "off") == "warn":
+        warn.add("worse_than_naive")
+    if bt is not None and getattr(bt, "coverage_gate", "off") == "warn":
+        warn.add("interval_undercoverage")
+    idx, name, stat, pval, thr, is_warn = [], [], [], [], [], []
+    for gate, row in out.gates.items():
+        where = np.flatnonzero(row.applies & ~row.passed)
+        if not len(where):
+            continue
+        idx.append(where)
+        name.append(np.full(len(where), gate, dtype=object))
+        stat.append(row.statistic[where])
+        pval.append(row.pvalue[where])
+        thr.append(row.threshold[where])
+        is_warn.append(np.full(len(where), gate in warn))
+    failed: list[list[dict] | None] = [[] for _ in range(G)]
+    warnings: list[list[str]] = [[] for _ in range(G)]
+    if idx:
+        cat = np.concatenate
+        for i, g, st, pv, th, w in zip(cat(idx).tolist(), cat(name).tolist(), cat(stat).tolist(), cat(pval).tolist(),
+                                       cat(thr).tolist(), cat(is_warn).tolist()):
+            entry = {"gate": g, "statistic": _finite_or_none(st), "p_value": _finite_or_none(pv),
+                     "threshold": _finite_or_none(th)}
+            failed[i].append(entry)
+            if w:
+                warnings[i].append(g)
+    return [pl.Series("failed_gates", failed, dtype=pl.List(FAILED_GATE)),
+            pl.Series("warnings", warnings, dtype=pl.List(pl.String))]
+
+
+def _finite_or_none(v: float) -> float | None:
+    return v if np.isfinite(v) else None
+
+
 def _outlier_columns(res: CoreResult, codec) -> list[pl.Series]:
     """``outlier_periods`` (periods of the detected additive outliers) and ``outlier_effects``
     (their estimated size, in the units of the modelled series), empty lists when none."""
@@ -487,7 +535,7 @@ def backtest_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:
         rep = np.repeat(rows, H)
         cols = [
             pl.lit(method).alias("model"),
-            pl.Series("horizon", np.tile(np.arange(1, H + 1, dtype=np.int32), len(rows))),
+            pl.Series("step", np.tile(np.arange(1, H + 1, dtype=np.int32), len(rows))),
             _nullable(acc.rmse[rows].ravel()).alias("rmse"),
             _nullable(acc.mae[rows].ravel()).alias("mae"),
             _nullable(acc.mase[rows].ravel()).alias("mase"),
@@ -495,7 +543,7 @@ def backtest_frame(keys: pl.DataFrame, res: CoreResult) -> pl.DataFrame:
         for ci, level in enumerate(bt.coverage):
             lab = coverage_label(level)
             vals = bt.coverage_rate[ci][rows].ravel() if method == "ar" else np.full(len(rep), np.nan)
-            cols.append(_nullable(vals).alias(f"coverage_{lab}"))
+            cols.append(_nullable(vals).alias(f"hit_rate_{lab}"))
         cols.append(pl.Series("origins", acc.count[rows].ravel().astype(np.int32)))
         parts.append(keys[rep].with_columns(*cols))
     if not parts:

@@ -54,6 +54,8 @@ class JobOutcome:
     phase_seconds: dict[str, float] = field(default_factory=dict)
     #: the run was over the alarm level and [publish] hold_on_alarm kept the published view as it was
     held: bool = False
+    #: warning checks that failed without holding a series back -> number of series
+    warning_counts: dict[str, int] = field(default_factory=dict)
 
     @property
     def alarm(self) -> bool:
@@ -200,13 +202,16 @@ class _Planned:
 
 def run_job(
     spec: JobSpec, as_of: Any = None, dry_run: bool = False, on_event: EventSink | None = None, *,
-    allow_beyond_data: bool = False, allow_jump: bool = False,
+    allow_beyond_data: bool = False, allow_jump: bool = False, tune_allocator: bool = True,
 ) -> JobOutcome:
     """Run a job: read, forecast chunk by chunk, publish to every target (see :func:`publish_run`).
 
     ``allow_beyond_data`` / ``allow_jump`` lift the as-of guards (see :func:`place_as_of`).
+    ``tune_allocator=False`` leaves this process's allocator as it is (worker processes are tuned
+    either way): the typed run call in a long-lived process passes it.
     """
-    tune_for_batch()
+    if tune_allocator:
+        tune_for_batch()
     emit: EventSink = on_event or (lambda event: None)
     clock = time.perf_counter()
     started_at = _utcnow()
@@ -238,6 +243,7 @@ def run_job(
         quarantine_share=_share(summary), max_quarantine_share=spec.settings.gates.max_quarantine_share,
         chunks=summary.chunks, seconds=time.perf_counter() - clock, target=_target_text(planned.targets),
         attempt=attempt, notes=tuple(notes), phase_seconds={k: round(v, 3) for k, v in phases.items()}, held=held,
+        warning_counts=summary.warning_counts,
     )
     emit({"event": "finish", **outcome_dict(outcome)})
     return outcome
@@ -344,7 +350,7 @@ def outcome_dict(outcome: JobOutcome) -> dict[str, Any]:
         "attempt": outcome.attempt, "rows_read": outcome.rows_read, "series_total": outcome.series_total,
         "series_published": outcome.series_published, "series_quarantined": outcome.series_quarantined,
         "quarantine_share": round(outcome.quarantine_share, 6), "alarm": outcome.alarm, "held": outcome.held,
-        "reason_counts": outcome.reason_counts, "chunks": outcome.chunks, "seconds": round(outcome.seconds, 3),
+        "reason_counts": outcome.reason_counts, "warning_counts": outcome.warning_counts, "chunks": outcome.chunks, "seconds": round(outcome.seconds, 3),
         "target": outcome.target, "notes": list(outcome.notes), "phase_seconds": outcome.phase_seconds,
     }
 

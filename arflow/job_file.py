@@ -221,6 +221,21 @@ class JobSpec:
             refuse_series_fdr_on_spark(self.settings)
 
 
+#: job-file keys an earlier release named otherwise: (section, old key) -> new key; the old key is still read
+RENAMED_KEYS = {("gates", "max_stale_periods"): "max_periods_behind"}
+
+
+def _current_keys(section: str, body: dict[str, Any]) -> dict[str, Any]:
+    """``body`` with old key names (:data:`RENAMED_KEYS`) read as the new ones."""
+    out = dict(body)
+    for (sec, old), new in RENAMED_KEYS.items():
+        if sec == section and old in out:
+            if new in out:
+                raise SettingsError(f"{section}.{old} is the old name of {section}.{new}; give only {section}.{new}")
+            out[new] = out.pop(old)
+    return out
+
+
 def load_job(path: str | Path) -> JobSpec:
     """Read and validate a job file."""
     path = Path(path).expanduser()
@@ -249,7 +264,7 @@ def parse_job(data: dict[str, Any], *, base_dir: Path, path: Path | None = None)
             raise SettingsError(f"{section} must be a table ([{section}]) in the job file, not a single value")
         allowed = _SECTIONS[section]
         for key in body:
-            if key not in allowed:
+            if key not in allowed and (section, key) not in RENAMED_KEYS:
                 raise SettingsError(_unknown(f"{section}.{key}", key, allowed, f"keys in [{section}]"))
     job = data.get("job", {})
     name = _check_job_name(_required(job, "job", "name"))
@@ -258,7 +273,7 @@ def parse_job(data: dict[str, Any], *, base_dir: Path, path: Path | None = None)
         frequency=frequency,
         model=ModelSettings(**_tuples(data.get("model", {}))),
         forecast=ForecastSettings(**_tuples(data.get("forecast", {}))),
-        gates=GateSettings(**_tuples(data.get("gates", {}))),
+        gates=GateSettings(**_tuples(_current_keys("gates", data.get("gates", {})))),
         backtest=BacktestSettings(**_tuples(data.get("backtest", {}))),
     )
     publish = _parse_publish(data.get("publish", {}), source, base_dir)

@@ -52,7 +52,9 @@ class ForecastRun:
         ``adf_statistic``, ``adf_p_value``, ``kpss_statistic``,
         ``kpss_p_value``, ``first_period``, ``last_period``, ``quality_flags``
         (list[str]), ``decision`` ("published" / "quarantined"), ``reasons``
-        (list[str]).
+        (list[str]), ``failed_gates`` (list of {gate, statistic, p_value,
+        threshold}: every gate row the series failed), ``warnings``
+        (list[str]: checks that failed without holding it back).
     gates
         One row per series and gate: keys, ``gate``, ``statistic``,
         ``p_value``, ``threshold``, ``passed``.
@@ -63,8 +65,8 @@ class ForecastRun:
         ``lower_NN`` / ``upper_NN`` per coverage level.
     backtests
         When the backtest is enabled: keys, ``model`` ("ar", "naive",
-        "seasonal_naive"), ``horizon`` (step), ``rmse``, ``mae``, ``mase``,
-        ``coverage_NN`` (empirical interval coverage of the AR model),
+        "seasonal_naive"), ``step``, ``rmse``, ``mae``, ``mase``,
+        ``hit_rate_NN`` (share of origins inside the NN% interval, AR model),
         ``origins`` (origins scored).
     """
 
@@ -107,4 +109,11 @@ class ForecastRun:
         if self.models.height == 0:
             return {}
         counts = self.models.select(pl.col("reasons").explode().drop_nulls().value_counts(sort=True)).unnest("reasons")
+        return {row[0]: int(row[1]) for row in counts.iter_rows()}
+
+    def warning_counts(self) -> dict[str, int]:
+        """How many series each warning check (failed, but not held back) fired for."""
+        if self.models.height == 0 or "warnings" not in self.models.columns:
+            return {}
+        counts = self.models.select(pl.col("warnings").explode().drop_nulls().value_counts(sort=True)).unnest("warnings")
         return {row[0]: int(row[1]) for row in counts.iter_rows()}

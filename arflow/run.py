@@ -80,11 +80,13 @@ class ChunkSummary:
     series_published: int = 0
     reason_counts: dict[str, int] = field(default_factory=dict)
     chunks: int = 0
+    #: warning checks (failed without holding a series back) -> number of series
+    warning_counts: dict[str, int] = field(default_factory=dict)
 
     @classmethod
     def of(cls, run: ForecastRun) -> "ChunkSummary":
         """The counts of one chunk's results."""
-        return cls(run.series_total, run.series_published, run.reason_counts(), 1)
+        return cls(run.series_total, run.series_published, run.reason_counts(), 1, run.warning_counts())
 
     @property
     def series_quarantined(self) -> int:
@@ -95,8 +97,12 @@ class ChunkSummary:
         for k, v in other.reason_counts.items():
             reasons[k] = reasons.get(k, 0) + v
         reasons = dict(sorted(reasons.items(), key=lambda kv: (-kv[1], kv[0])))
+        warnings = dict(self.warning_counts)
+        for k, v in other.warning_counts.items():
+            warnings[k] = warnings.get(k, 0) + v
+        warnings = dict(sorted(warnings.items(), key=lambda kv: (-kv[1], kv[0])))
         return ChunkSummary(self.series_total + other.series_total, self.series_published + other.series_published,
-                            reasons, self.chunks + other.chunks)
+                            reasons, self.chunks + other.chunks, warnings)
 
 
 def chunk_event(done: ChunkSummary, chunks: int, series_total: int) -> dict[str, Any]:

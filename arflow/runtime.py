@@ -27,6 +27,7 @@ import os
 import signal
 import sys
 import threading
+from multiprocessing import context as mp_context
 from collections.abc import Callable
 from typing import Any
 
@@ -230,6 +231,45 @@ def stop_pool(pool: Any, timeout: float = 5.0) -> None:
                 proc.join(timeout)
         except Exception:  # noqa: BLE001
             pass
+
+
+class _WorkerProcess(mp_context.SpawnProcess):
+    """A spawned worker that does not re-run the parent's ``__main__``.
+
+    Spawn normally imports the parent's main script in every child so that
+    functions defined there can be unpickled; arflow's workers run only
+    arflow's functions, and re-running a caller's script (one that calls the
+    typed run call at module level, without an ``if __name__ == "__main__"``
+    guard) would start the run again in each worker. While the child is
+    launched (a few milliseconds, one launch at a time) ``__main__`` is
+    replaced by an empty module, then put back.
+    """
+
+    def start(self) -> None:
+        import types
+
+        with _main_lock:
+            main = sys.modules.get("__main__")
+            sys.modules["__main__"] = types.ModuleType("__main__")
+            try:
+                super().start()
+            finally:
+                if main is None:
+                    sys.modules.pop("__main__", None)
+                else:
+                    sys.modules["__main__"] = main
+
+
+class _WorkerContext(mp_context.SpawnContext):
+    Process = _WorkerProcess
+
+
+_main_lock = threading.Lock()
+
+
+def worker_context() -> Any:
+    """The multiprocessing context of arflow's worker pools: spawn, without the caller's ``__main__``."""
+    return _WorkerContext()
 
 
 # -- test hooks ---------------------------------------------------------------

@@ -131,6 +131,11 @@ class ForecastSettings:
     1981) and uses Student-t quantiles with the residual degrees of freedom;
     ``False`` gives the classic plug-in psi-weight intervals (the coefficients
     treated as known, Gaussian quantiles; what statsmodels' ``AutoReg`` reports).
+    ``selection_uncertainty``: ``True`` (default; only with
+    ``parameter_uncertainty``) widens them further by the uncertainty of the
+    model choice (order, levels or differences): the forecast distribution
+    over the candidate models weighted by the criterion
+    (:mod:`arflow.core.intervals`); ``False`` keeps the selected model's own.
 
     >>> ForecastSettings(horizon=6, coverage=(0.8,)).horizon
     6
@@ -139,10 +144,13 @@ class ForecastSettings:
     horizon: int = 12
     coverage: tuple[float, ...] = (0.8, 0.95)
     parameter_uncertainty: bool = True
+    selection_uncertainty: bool = True
 
     def __post_init__(self) -> None:
         if not isinstance(self.parameter_uncertainty, bool):
             _fail("forecast.parameter_uncertainty", self.parameter_uncertainty, "true or false")
+        if not isinstance(self.selection_uncertainty, bool):
+            _fail("forecast.selection_uncertainty", self.selection_uncertainty, "true or false")
         if not (_is_int(self.horizon) and 1 <= self.horizon <= 1000):
             _fail("forecast.horizon", self.horizon, "an integer from 1 to 1000")
         cov = tuple(self.coverage) if isinstance(self.coverage, (list, tuple)) else None
@@ -189,7 +197,7 @@ class GateSettings:
     require_stationary: bool = True
     allow_gaps: bool = False
     allow_duplicates: bool = False
-    max_stale_periods: int = 0
+    max_periods_behind: int = 0
     lower_bound: float | None = None
     upper_bound: float | None = None
     arch_test: bool = False
@@ -209,8 +217,8 @@ class GateSettings:
             _fail("gates.series_fdr", self.series_fdr, "a number strictly between 0 and 1, or leave it out")
         if not (_is_int(self.min_observations) and 3 <= self.min_observations):
             _fail("gates.min_observations", self.min_observations, "an integer of at least 3")
-        if not (_is_int(self.max_stale_periods) and self.max_stale_periods >= 0):
-            _fail("gates.max_stale_periods", self.max_stale_periods, "an integer of at least 0")
+        if not (_is_int(self.max_periods_behind) and self.max_periods_behind >= 0):
+            _fail("gates.max_periods_behind", self.max_periods_behind, "an integer of at least 0")
         for key in ("lower_bound", "upper_bound"):
             v = getattr(self, key)
             if v is not None and not _is_num(v):
@@ -231,7 +239,7 @@ NAIVE_GATE_MODES = ("off", "warn", "enforce")
 
 @dataclass(frozen=True)
 class BacktestSettings:
-    """Rolling-origin backtest and the ``beats_naive`` gate.
+    """Rolling-origin backtest and the ``worse_than_naive`` gate.
 
     ``origins``: how many forecast origins (expanding window) to refit and
     score; ``horizon``: steps scored per origin (default: the forecast
@@ -246,7 +254,7 @@ class BacktestSettings:
     naive in 96%; random walks show a ratio below 0.95 in 3.7%
     (``bench/calibration.py``).
 
-    ``coverage_gate`` (``interval_calibration``): off / warn / enforce like
+    ``coverage_gate`` (``interval_undercoverage``): off / warn / enforce like
     ``naive_gate``, reason ``interval_undercoverage``. Measured size with the
     defaults (5%, step 1, 24 origins) on 2,000 series of 120 whose model is
     right: 1.5-1.8% (the exact binomial test is discrete, hence conservative).
@@ -261,7 +269,7 @@ class BacktestSettings:
     naive_gate: str = "warn"
     naive_tolerance: float = 0.05
     naive_steps: int = 1
-    #: interval_calibration gate: "off" / "warn" / "enforce"; a series fails when its
+    #: interval_undercoverage gate: "off" / "warn" / "enforce"; a series fails when its
     #: backtest coverage at steps 1..coverage_steps is significantly below nominal
     #: (one-sided exact binomial test at coverage_alpha, Bonferroni over the levels)
     coverage_gate: str = "warn"

@@ -59,12 +59,12 @@ def test_backtests_are_published(warehouse, capsys) -> None:
     db, job = warehouse
     # exit 0, not the alarm code 4: all eight seeded AR(1) series publish (alarm above 90% held back)
     assert run(capsys, "run", str(job)) == 0
-    rows = q(db, "SELECT model, count(*), min(horizon), max(horizon), max(origins) FROM arflow.backtests GROUP BY model ORDER BY model")
+    rows = q(db, "SELECT model, count(*), min(step), max(step), max(origins) FROM arflow.backtests GROUP BY model ORDER BY model")
     methods = {r[0]: r for r in rows}
     assert set(methods) >= {"ar", "naive"}
     assert methods["ar"][2:] == (1, 6, 6)  # steps 1..horizon, 6 origins
     # coverage rates are shares
-    (lo, hi) = q(db, "SELECT min(coverage_80), max(coverage_80) FROM arflow.backtests WHERE model = 'ar'")[0]
+    (lo, hi) = q(db, "SELECT min(hit_rate_80), max(hit_rate_80) FROM arflow.backtests WHERE model = 'ar'")[0]
     assert 0.0 <= lo <= hi <= 1.0
     check_backtest_values(db)
 
@@ -81,7 +81,7 @@ def check_backtest_values(db: Path) -> None:
     frame = source_frame()
     models = dict(q(db, "SELECT site, lags FROM arflow.models WHERE transform = 'level'"))
     assert len(models) == SITES  # every series modelled on levels: no differencing to redo here
-    got = {(r[0], r[1], r[2]): r[3:] for r in q(db, "SELECT site, model, horizon, rmse, mae, mase FROM arflow.backtests")}
+    got = {(r[0], r[1], r[2]): r[3:] for r in q(db, "SELECT site, model, step, rmse, mae, mase FROM arflow.backtests")}
     T = MONTHS
     origins = range(T - 1 - HORIZON - (ORIGINS - 1), T - HORIZON)
     for site, lags in models.items():
@@ -114,14 +114,14 @@ def test_accuracy_filled_once_for_earlier_vintages(warehouse, capsys) -> None:
                max(abs(a.abs_pct_error - abs((r.reading - f.forecast) / r.reading))),
                bool_and(a.covered_95 = (r.reading BETWEEN f.lower_95 AND f.upper_95))
         FROM arflow.accuracy a
-        JOIN arflow.forecasts f ON f.run_id = a.run_id AND f.site = a.site AND f.period = a.period
+        JOIN arflow.forecasts f ON f.run_id = a.forecast_run_id AND f.site = a.site AND f.period = a.period
         JOIN readings r ON r.site = a.site AND r.month = a.period
     """)[0]
     assert check[0] < 1e-9 and check[1] < 1e-12 and check[2]
     # re-running the same vintage, and running again, records nothing twice
     assert run(capsys, "run", str(job)) == 0
     assert run(capsys, "run", str(job)) == 0
-    again = q(db, "SELECT count(*), count(DISTINCT (run_id, site, period)) FROM arflow.accuracy")[0]
+    again = q(db, "SELECT count(*), count(DISTINCT (forecast_run_id, site, period)) FROM arflow.accuracy")[0]
     assert again == (rows[0], rows[0])
     view = q(db, "SELECT step, forecasts_scored, hit_rate_95 FROM arflow.accuracy_by_horizon ORDER BY step")
     assert [v[0] for v in view] == [1, 2, 3, 4, 5, 6]
@@ -139,7 +139,7 @@ def test_three_vintages_score_each_forecast_once_with_its_values(warehouse, caps
         assert run(capsys, "run", str(job), "--as-of", as_of) == 0  # all eight series publish: no alarm
     june, september, december = "meters@2024-06-01", "meters@2024-09-01", "meters@2024-12-01"
     rows = q(db, """
-        SELECT run_id, recorded_by, site, period, step, forecast, actual, error, abs_pct_error, covered_80, covered_95
+        SELECT forecast_run_id, recorded_by, site, period, step, forecast, actual, error, abs_pct_error, covered_80, covered_95
         FROM arflow.accuracy ORDER BY ALL""")
     keys = [(r[0], r[2], r[3]) for r in rows]
     assert len(keys) == len(set(keys))  # no key twice

@@ -38,7 +38,7 @@ def test_results_are_keyed_and_typed():
     assert run.models.height == 3
     for col in ("lags", "coefficients", "std_errors", "reasons", "quality_flags"):
         assert isinstance(run.models.schema[col], pl.List)
-    assert set(run.gates["gate"].unique()) >= {"data_quality", "min_observations", "residual_autocorrelation"}
+    assert set(run.gates["gate"].unique()) >= {"too_short", "residual_autocorrelation"}
     assert {"lower_80", "upper_80", "lower_95", "upper_95"} <= set(run.forecasts.columns)
     pub = run.models.filter(pl.col("decision") == "published")
     assert run.forecasts.height == pub.height * 12

@@ -1,4 +1,4 @@
-"""Prediction intervals with parameter uncertainty, additive outliers, and the interval_calibration gate.
+"""Prediction intervals with parameter uncertainty, additive outliers, and the interval_undercoverage gate.
 
 Outside references: statsmodels OLS (prediction intervals of a regression,
 indicator regressions), scipy.stats (MAD, t and binomial distributions), and
@@ -187,17 +187,18 @@ def test_coverage_of_differenced_random_walks_is_nominal():
 
 @pytest.mark.slow
 def test_pipeline_coverage_improves_and_is_within_bounds_for_ar1():
-    # defaults (BIC order with order 0 a candidate, unit-root policy, outlier treatment): AR(1) phi 0.5 at
-    # 60 points. Measured with this seed: 78.0% / 79.5% (80%, steps 1 / 12) and 94.1% / 94.3% (95%); a
-    # second seed gave 77.7% at one step. Selection uncertainty is not in the interval, so the one-step 80%
-    # interval sits about 2 points low: the bound asserted is what is measured (2.5 points), and the README
-    # table says the same. For every case the corrected intervals cover at least as well as the plug-in ones.
+    # defaults (BIC order with order 0 a candidate, unit-root policy, outlier treatment, parameter and
+    # selection uncertainty): AR(1) phi 0.5 at 60 points. Measured with this seed: 78.5% / 80.5% (80%,
+    # steps 1 / 12) and 94.5% / 95.0% (95%); with the parameter term alone it was 78.0% / 79.5% and
+    # 94.1% / 94.3% (the one-step 80% interval 2.0-2.5 points low: the selection term closes it, see
+    # tests/test_intervals_selection.py). For every case the corrected intervals cover at least as
+    # well as the plug-in ones.
     s = Settings(forecast=ForecastSettings(horizon=12), backtest=NO_BT)
     plug = Settings(forecast=ForecastSettings(horizon=12, parameter_uncertainty=False), backtest=NO_BT)
     Y = simulate_ar({1: 0.5}, 2000, 72, 606)
     c = coverage(Y, 60, s)
     for (level, h), v in c.items():
-        assert abs(v - level) <= 0.025, (level, h, v)
+        assert abs(v - level) <= 0.02 + 1e-9, (level, h, v)
     for Y, n in ((random_walks(1500, 52, 607), 40), (simulate_ar({1: 0.5, 2: 0.3}, 1500, 52, 608), 40)):
         a, b = coverage(Y, n, s), coverage(Y, n, plug)
         assert all(a[k] >= b[k] - 0.005 for k in a), (a, b)
@@ -264,7 +265,7 @@ def test_a_huge_spike_is_treated_reported_or_quarantined():
     assert width < 6  # about 2 * 1.98 * sigma, not +/- 1,800
     q = arflow.forecast(df, keys="site", period="month", value="flow",
                         settings=Settings(model=ModelSettings(outliers="quarantine")))
-    assert q.models["decision"][0] == "quarantined" and "outlier" in q.models["reasons"][0]
+    assert q.models["decision"][0] == "quarantined" and "outliers" in q.models["reasons"][0]
 
 
 def _rates(Y: np.ndarray, frequency: str, seed: int) -> tuple[float, float]:
@@ -298,7 +299,7 @@ def test_outlier_detection_and_false_flag_rates():
         assert false <= 0.02
 
 
-# ------------------------------------------------------------------ interval_calibration gate
+# ------------------------------------------------------------------ interval_undercoverage gate
 
 
 @pytest.mark.slow
@@ -318,7 +319,7 @@ def test_interval_calibration_gate_size_and_power():
     assert r.outcome.reasons[:, REASONS.index("interval_undercoverage")].mean() >= 0.5
     warn = run_core(to_panel(Z), Settings())
     assert not warn.outcome.reasons[:, REASONS.index("interval_undercoverage")].any()
-    assert "interval_calibration" in warn.outcome.gates
+    assert "interval_undercoverage" in warn.outcome.gates
 
 
 def test_backtest_coverage_test_counts_hits():

@@ -68,7 +68,7 @@ def test_demo_in_a_fresh_folder(tmp_path: Path, capsys) -> None:
             "SELECT series_total, series_published, series_quarantined, reason_counts FROM arflow.runs"
         ).fetchone()
         assert total > 250 and published > total // 2 and quarantined > 0
-        assert {"too_short", "duplicate_periods", "constant_series", "non_finite_values", "stale_series"} <= set(json.loads(reasons))
+        assert {"too_short", "duplicate_periods", "constant_series", "non_finite_values", "ends_before_as_of"} <= set(json.loads(reasons))
         assert con.execute("SELECT count(DISTINCT zone) FROM arflow.published_forecasts").fetchone() == (published,)
     finally:
         con.close()

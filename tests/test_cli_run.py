@@ -74,7 +74,7 @@ def test_view_holds_exactly_the_series_that_passed(job: Job, capsys) -> None:
         "SELECT statistic, p_value, threshold FROM arflow.gates WHERE site = 'lag6' AND gate = 'residual_autocorrelation' AND NOT passed"
     )
     assert stat > 0 and p < threshold == 0.01
-    (stat,), = job.sql("SELECT statistic FROM arflow.gates WHERE site = 'short' AND gate = 'min_observations' AND NOT passed")
+    (stat,), = job.sql("SELECT statistic FROM arflow.gates WHERE site = 'short' AND gate = 'too_short' AND NOT passed")
     assert stat == 12
     assert job.sql("SELECT count(*) FROM arflow.residual_acf WHERE site = 's01'")[0][0] > 0
     # the summary names counts, reasons, time and where results went

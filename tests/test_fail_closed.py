@@ -66,15 +66,15 @@ def _bad(value: float, name: str) -> np.ndarray:
 GATE_INPUTS = [
     ("unit_root", "adf_statistic"),
     ("unit_root", "adf_pvalue"),
-    ("stationarity", "max_root_modulus"),
+    ("not_stationary", "max_root_modulus"),
     ("residual_autocorrelation", "residual_statistic"),
     ("residual_autocorrelation", "residual_pvalue"),
     ("residual_arch", "arch_statistic"),
     ("residual_arch", "arch_pvalue"),
-    ("forecast_interval", "interval_relative_width"),
-    ("forecast_lower_bound", "forecast_min"),
-    ("forecast_upper_bound", "forecast_max"),
-    ("beats_naive", "naive_statistic"),
+    ("degenerate_interval", "interval_relative_width"),
+    ("forecast_below_lower_bound", "forecast_min"),
+    ("forecast_above_upper_bound", "forecast_max"),
+    ("worse_than_naive", "naive_statistic"),
 ]
 
 
@@ -162,7 +162,7 @@ def test_degenerate_series_are_quarantined_with_a_reason(tmp_path: Path, require
         rows = dict(con.execute("SELECT site, reasons FROM arflow.models WHERE decision = 'quarantined'").fetchall())
         published = {r[0] for r in con.execute("SELECT DISTINCT site FROM arflow.forecasts").fetchall()}
         passed_null = con.execute(
-            "SELECT count(*) FROM arflow.gates WHERE passed AND gate <> 'beats_naive' "
+            "SELECT count(*) FROM arflow.gates WHERE passed AND gate <> 'worse_than_naive' "
             "AND (statistic IS NULL OR (p_value IS NULL AND gate LIKE 'residual%'))"
         ).fetchone()[0]
         narrow = con.execute(

@@ -96,7 +96,7 @@ gates = st.fixed_dictionaries({}, optional={
     "require_stationary": st.booleans(),
     "allow_gaps": st.booleans(),
     "allow_duplicates": st.booleans(),
-    "max_stale_periods": st.integers(0, 10**6),
+    "max_periods_behind": st.integers(0, 10**6),
     "lower_bound": st.floats(min_value=-1e300, max_value=0),
     "upper_bound": st.floats(min_value=1, max_value=1e300),
     "arch_test": st.booleans(),

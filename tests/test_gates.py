@@ -2,7 +2,7 @@
 
 The decision rules are stated in the settings' documentation and the README:
 a series is too short when it has fewer than ``min_observations`` values, stale
-when more than ``max_stale_periods`` periods lie between its last observation
+when more than ``max_periods_behind`` periods lie between its last observation
 and the as-of period, a test fails when its p-value is below ``alpha`` (the
 usual convention "reject when p < alpha"; common practice), the AR model must
 have every root of its companion matrix strictly inside the unit circle
@@ -68,7 +68,7 @@ def test_min_observations_boundary(minimum):
     out = decide(inputs(3, n=[minimum, minimum - 1, minimum + 1]), g, "difference")
     assert out.published.tolist() == [True, False, True]
     assert reasons(out, 1) == ["too_short"]
-    row = out.gates["min_observations"]
+    row = out.gates["too_short"]
     assert row.passed.tolist() == [True, False, True]
     assert row.statistic.tolist() == [minimum, minimum - 1, minimum + 1]
     assert np.all(row.threshold == minimum)
@@ -87,15 +87,15 @@ def test_a_short_series_is_not_also_reported_as_a_failed_fit():
 
 @pytest.mark.parametrize("limit", [0, 1, 3])
 def test_stale_periods_boundary(limit):
-    # exactly max_stale_periods passes; one more fails with "stale_series"
-    g = GateSettings(max_stale_periods=limit)
+    # exactly max_periods_behind passes; one more fails with "ends_before_as_of"
+    g = GateSettings(max_periods_behind=limit)
     out = decide(inputs(3, stale_periods=[limit, limit + 1, 0]), g, "difference")
     assert out.published.tolist() == [True, False, True]
-    assert reasons(out, 1) == ["stale_series"]
-    dq = out.gates["data_quality"]
-    assert dq.statistic.tolist() == [0.0, 1.0, 0.0]
-    assert dq.passed.tolist() == [True, False, True]
-    assert dq.threshold.tolist() == [0.0, 0.0, 0.0] and np.isnan(dq.pvalue).all()
+    assert reasons(out, 1) == ["ends_before_as_of"]
+    dq = out.gates["ends_before_as_of"]  # a row only where the check found something; statistic = periods behind
+    assert dq.applies.tolist() == [False, True, False]
+    assert dq.statistic[1] == limit + 1 and not dq.passed[1]
+    assert dq.threshold.tolist() == [limit] * 3 and np.isnan(dq.pvalue).all()
 
 
 def test_stale_is_not_reported_for_a_series_without_data():
@@ -117,7 +117,8 @@ def test_stale_is_not_reported_for_a_series_without_data():
 def test_quality_flags_quarantine_unless_allowed(flag, reason, allow):
     out = decide(inputs(2, flags=[flag, 0]), GateSettings(), "difference")
     assert reasons(out, 0) == [reason] and reasons(out, 1) == []
-    assert out.gates["data_quality"].statistic.tolist() == [1.0, 0.0]
+    row = out.gates[reason]  # one name: reason code, quality flag and gate row
+    assert row.applies.tolist() == [True, False] and row.statistic[0] == 1.0 and not row.passed[0]
     allowed = decide(inputs(2, flags=[flag, 0]), GateSettings(**{allow: True}), "difference")
     assert allowed.published.tolist() == [True, True]
 
@@ -127,10 +128,11 @@ def test_constant_series_is_quarantined_once():
     assert reasons(out, 0) == ["constant_series"]  # not also "fit_failed"
 
 
-def test_data_quality_statistic_counts_the_problems():
+def test_each_data_problem_has_its_own_gate_row():
     out = decide(inputs(1, flags=[DUPLICATE_PERIODS | INTERNAL_GAPS], stale_periods=[2]), GateSettings(), "difference")
-    assert out.gates["data_quality"].statistic.tolist() == [3.0]
-    assert reasons(out, 0) == ["duplicate_periods", "data_gaps", "stale_series"]
+    failed = sorted(name for name, row in out.gates.items() if row.applies[0] and not row.passed[0])
+    assert failed == ["data_gaps", "duplicate_periods", "ends_before_as_of"]
+    assert reasons(out, 0) == ["duplicate_periods", "data_gaps", "ends_before_as_of"]
 
 
 # ----------------------------------------------------------------------------- p-value gates
@@ -169,9 +171,9 @@ def test_stationarity_boundary_is_strict():
     out = decide(inputs(3, max_root_modulus=[below, 1.0, 1.2]), GateSettings(), "difference")
     assert out.published.tolist() == [True, False, False]
     assert reasons(out, 1) == ["not_stationary"]
-    assert np.all(out.gates["stationarity"].threshold == 1.0)
+    assert np.all(out.gates["not_stationary"].threshold == 1.0)
     relaxed = decide(inputs(3, max_root_modulus=[below, 1.0, 1.2]), GateSettings(require_stationary=False), "difference")
-    assert relaxed.published.all() and "stationarity" not in relaxed.gates
+    assert relaxed.published.all() and "not_stationary" not in relaxed.gates
 
 
 @pytest.mark.parametrize("policy, published", [("quarantine", False), ("difference", True), ("ignore", True)])
@@ -186,7 +188,7 @@ def test_unit_root_policy(policy, published):
 def test_gates_that_need_a_fit_do_not_apply_to_unfitted_series():
     out = decide(inputs(1, fitted=[False], residual_pvalue=[0.0], max_root_modulus=[3.0]), GateSettings(), "difference")
     assert reasons(out, 0) == ["fit_failed"]
-    for name in ("residual_autocorrelation", "stationarity", "unit_root"):
+    for name in ("residual_autocorrelation", "not_stationary", "unit_root"):
         assert not out.gates[name].applies[0] and out.gates[name].passed[0]
 
 
@@ -202,18 +204,18 @@ def test_lower_bound_is_inclusive():
     g = GateSettings(lower_bound=0.0)
     out = decide(inputs(3, forecast_min=[0.0, np.nextafter(0.0, -1.0), 5.0]), g, "difference")
     assert out.published.tolist() == [True, False, True]
-    assert reasons(out, 1) == ["forecast_out_of_bounds"]
-    assert np.all(out.gates["forecast_lower_bound"].threshold == 0.0)
-    assert "forecast_upper_bound" not in out.gates
+    assert reasons(out, 1) == ["forecast_below_lower_bound"]
+    assert np.all(out.gates["forecast_below_lower_bound"].threshold == 0.0)
+    assert "forecast_above_upper_bound" not in out.gates
 
 
 def test_upper_bound_is_inclusive():
     g = GateSettings(upper_bound=110.0)
     out = decide(inputs(3, forecast_max=[110.0, np.nextafter(110.0, 200.0), 50.0]), g, "difference")
     assert out.published.tolist() == [True, False, True]
-    assert reasons(out, 1) == ["forecast_out_of_bounds"]
-    assert out.gates["forecast_upper_bound"].statistic.tolist() == [110.0, np.nextafter(110.0, 200.0), 50.0]
-    assert "forecast_lower_bound" not in out.gates
+    assert reasons(out, 1) == ["forecast_above_upper_bound"]
+    assert out.gates["forecast_above_upper_bound"].statistic.tolist() == [110.0, np.nextafter(110.0, 200.0), 50.0]
+    assert "forecast_below_lower_bound" not in out.gates
 
 
 # ----------------------------------------------------------------------------- beats naive
@@ -225,7 +227,7 @@ def test_naive_statistic_equal_to_threshold_passes():
     out = decide(x, GateSettings(), "difference", naive_mode="enforce")
     assert out.published.tolist() == [True, False, True]
     assert reasons(out, 1) == ["worse_than_naive"]
-    row = out.gates["beats_naive"]
+    row = out.gates["worse_than_naive"]
     assert row.passed.tolist() == [True, False, True]
     assert np.all(row.threshold == thr)
 
@@ -234,12 +236,12 @@ def test_naive_gate_warn_records_but_never_quarantines():
     x = inputs(2, naive_statistic=[3.0, 0.9], naive_threshold=1.05)
     out = decide(x, GateSettings(), "difference", naive_mode="warn")
     assert out.published.tolist() == [True, True]
-    row = out.gates["beats_naive"]
+    row = out.gates["worse_than_naive"]
     assert row.passed.tolist() == [False, True] and row.applies.tolist() == [True, True]
     assert row.statistic.tolist() == [3.0, 0.9]
-    assert "beats_naive" not in decide(x, GateSettings(), "difference", naive_mode="off").gates
+    assert "worse_than_naive" not in decide(x, GateSettings(), "difference", naive_mode="off").gates
     # the default mode is "off"
-    assert "beats_naive" not in decide(x, GateSettings(), "difference").gates
+    assert "worse_than_naive" not in decide(x, GateSettings(), "difference").gates
 
 
 # ----------------------------------------------------------------------------- what the gates table publishes
@@ -258,15 +260,14 @@ def test_published_gate_rows_carry_their_inputs():
     g = GateSettings(arch_test=True, alpha=0.05, lower_bound=0.0, upper_bound=500.0, min_observations=30)
     out = decide(x, g, "quarantine", naive_mode="enforce")
     expected = {
-        "data_quality": ([0.0, 0.0], None, 0.0),
-        "min_observations": ([100.0, 100.0], None, 30.0),
+        "too_short": ([100.0, 100.0], None, 30.0),
         "unit_root": ([-4.0, -1.5], [0.002, 0.5], None),
-        "stationarity": ([0.3, 0.7], None, 1.0),
+        "not_stationary": ([0.3, 0.7], None, 1.0),
         "residual_autocorrelation": ([5.0, 6.0], [0.7, 0.4], 0.05),
         "residual_arch": ([1.0, 2.0], [0.8, 0.6], 0.05),
-        "forecast_lower_bound": ([95.0, 96.0], None, 0.0),
-        "forecast_upper_bound": ([105.0, 104.0], None, 500.0),
-        "beats_naive": ([0.8, 0.9], None, 1.05),
+        "forecast_below_lower_bound": ([95.0, 96.0], None, 0.0),
+        "forecast_above_upper_bound": ([105.0, 104.0], None, 500.0),
+        "worse_than_naive": ([0.8, 0.9], None, 1.05),
     }
     assert set(out.gates) == set(expected)
     for name, (stat, pval, thr) in expected.items():
@@ -289,11 +290,13 @@ def test_no_fit_no_model_gates():
     g = GateSettings(arch_test=True, lower_bound=0.0, upper_bound=500.0)
     for mode in ("warn", "enforce"):
         out = decide(x, g, "difference", naive_mode=mode)
-        for name in ("residual_arch", "forecast_lower_bound", "forecast_upper_bound", "beats_naive"):
+        for name in ("residual_arch", "forecast_below_lower_bound", "forecast_above_upper_bound", "worse_than_naive"):
             assert out.gates[name].applies.tolist() == [False, True], (mode, name)
         assert reasons(out, 0) == ["fit_failed"] and reasons(out, 1) == []
 
 
 def test_constant_series_counts_one_data_quality_problem():
     out = decide(inputs(2, flags=[CONSTANT, CONSTANT | INTERNAL_GAPS], fitted=[False, False]), GateSettings(), "difference")
-    assert out.gates["data_quality"].statistic.tolist() == [1.0, 2.0]
+    assert out.gates["constant_series"].applies.tolist() == [True, True]
+    assert out.gates["data_gaps"].applies.tolist() == [False, True]
+    assert reasons(out, 0) == ["constant_series"] and reasons(out, 1) == ["data_gaps", "constant_series"]

@@ -37,7 +37,7 @@ pytestmark = [pytest.mark.spark, pytest.mark.filterwarnings("ignore::Deprecation
 
 KEYS = ["district", "zone"]
 SORT = {"models": KEYS, "gates": KEYS + ["gate"], "residual_acf": KEYS + ["lag"], "forecasts": KEYS + ["step"],
-        "series_status": KEYS, "backtests": KEYS + ["model", "horizon"], "accuracy": KEYS + ["period", "step"]}
+        "series_status": KEYS, "backtests": KEYS + ["model", "step"], "accuracy": KEYS + ["period", "step"]}
 RTOL = 1e-9
 
 
@@ -100,7 +100,8 @@ def spark_run(spark, sample: Path) -> dict:
 def _tables(db: Path) -> dict[str, pl.DataFrame]:
     con = duckdb.connect(str(db), read_only=True)
     try:
-        return {t: con.sql(f"SELECT * FROM arflow.{t}").pl().sort(["run_id", *s], maintain_order=True)
+        return {t: con.sql(f"SELECT * FROM arflow.{t}").pl().sort(["forecast_run_id" if t == "accuracy" else "run_id", *s],
+                                                                   maintain_order=True)
                 for t, s in SORT.items()}
     finally:
         con.close()

@@ -271,7 +271,7 @@ def test_retracting_an_older_vintage_keeps_the_current_one(tmp_path: Path, capsy
     assert sql(db, "SELECT run_id FROM arflow.runs ORDER BY 1") == [("meters@2026-10-01",), ("meters@2026-12-01",)]
     for table in ("series_status", "models", "gates", "forecasts", "backtests", "vintages"):
         assert sql(db, f"SELECT count(*) FROM arflow.{table} WHERE run_id = 'meters@2026-11-01'") == [(0,)]
-    assert sql(db, "SELECT count(*) FROM arflow.accuracy WHERE run_id = 'meters@2026-11-01' OR recorded_by = 'meters@2026-11-01'") == [(0,)]
+    assert sql(db, "SELECT count(*) FROM arflow.accuracy WHERE forecast_run_id = 'meters@2026-11-01' OR recorded_by = 'meters@2026-11-01'") == [(0,)]
 
 
 def test_lakehouse_only_job_lists_and_retracts(tmp_path: Path, capsys) -> None:

@@ -18,23 +18,25 @@ from dataclasses import dataclass
 
 import numpy as np
 
-#: Reason codes, in the order they are reported.
+#: Reason codes, in the order they are reported. Each is also the name of its
+#: row in the gates table (where it has one) and of its quality flag (data
+#: checks): one name per check, documented in ``arflow.vocabulary``.
 REASONS = (
     "no_data",
     "duplicate_periods",
     "data_gaps",
     "non_finite_values",
     "constant_series",
-    "stale_series",
+    "ends_before_as_of",
     "too_short",
     "fit_failed",
     "unit_root",
     "not_stationary",
     "residual_autocorrelation",
     "residual_arch",
-    "forecast_out_of_bounds",
+    "forecast_below_lower_bound",
     "worse_than_naive",
-    "outlier",
+    "outliers",
     "interval_undercoverage",
     "order_not_supported",
     # added later; appended so the order of the codes above never changes
@@ -42,6 +44,7 @@ REASONS = (
     "degenerate_interval",
     "conflicting_duplicates",
     "off_calendar_periods",
+    "forecast_above_upper_bound",
 )
 REASON_INDEX = {r: i for i, r in enumerate(REASONS)}
 
@@ -194,20 +197,20 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
     nonfin = ((f & NON_FINITE_VALUES) != 0) & (not gates.allow_gaps)
     const = (f & CONSTANT) != 0
     off_calendar = (f & OFF_CALENDAR) != 0
-    stale = x.stale_periods > gates.max_stale_periods
-    b.flag("no_data", no_data)
-    b.flag("duplicate_periods", dup)
-    b.flag("conflicting_duplicates", conflict)
-    b.flag("data_gaps", gaps)
-    b.flag("non_finite_values", nonfin)
-    b.flag("constant_series", const)
-    b.flag("stale_series", stale & ~no_data)
-    b.flag("off_calendar_periods", off_calendar)
-    problems = no_data.astype(int) + dup + conflict + gaps + nonfin + const + (stale & ~no_data) + off_calendar
-    b.add("data_quality", problems == 0, statistic=problems, threshold=0)
+    stale = x.stale_periods > gates.max_periods_behind
+    behind = stale & ~no_data
+    # each data check writes a gate row (statistic 1 = found) only for the series where it found something
+    for name, where in (("no_data", no_data), ("duplicate_periods", dup), ("conflicting_duplicates", conflict),
+                        ("data_gaps", gaps), ("non_finite_values", nonfin), ("constant_series", const),
+                        ("off_calendar_periods", off_calendar)):
+        if np.any(where):
+            b.add(name, ~where, statistic=1.0, threshold=0.0, applies=where, reason=name)
+    if np.any(behind):
+        b.add("ends_before_as_of", ~behind, statistic=x.stale_periods, threshold=gates.max_periods_behind,
+              applies=behind, reason="ends_before_as_of")
 
     short = (x.n < gates.min_observations) & ~no_data
-    b.add("min_observations", ~short, statistic=x.n, threshold=gates.min_observations, reason="too_short")
+    b.add("too_short", ~short, statistic=x.n, threshold=gates.min_observations, reason="too_short")
     # a series long enough for the gate but not for its model
     unsupported = np.zeros(G, dtype=bool) if x.order_unsupported is None else np.asarray(x.order_unsupported, bool)
     b.flag("fit_failed", ~x.fitted & ~short & ~no_data & ~const & ~unsupported)
@@ -238,7 +241,7 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
     )
     if gates.require_stationary:
         b.add(
-            "stationarity",
+            "not_stationary",
             x.max_root_modulus < 1.0,
             statistic=x.max_root_modulus,
             threshold=1.0,
@@ -272,7 +275,7 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
     if x.interval_relative_width is not None:
         w = x.interval_relative_width
         b.add(
-            "forecast_interval",
+            "degenerate_interval",
             w > MIN_RELATIVE_INTERVAL,
             statistic=w,
             threshold=MIN_RELATIVE_INTERVAL,
@@ -282,34 +285,34 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
         )
     if gates.lower_bound is not None:
         b.add(
-            "forecast_lower_bound",
+            "forecast_below_lower_bound",
             x.forecast_min >= gates.lower_bound,
             statistic=x.forecast_min,
             threshold=gates.lower_bound,
             applies=fitted & x.forecast_finite,
             computed=_finite(x.forecast_min),
-            reason="forecast_out_of_bounds",
+            reason="forecast_below_lower_bound",
         )
     if gates.upper_bound is not None:
         b.add(
-            "forecast_upper_bound",
+            "forecast_above_upper_bound",
             x.forecast_max <= gates.upper_bound,
             statistic=x.forecast_max,
             threshold=gates.upper_bound,
             applies=fitted & x.forecast_finite,
             computed=_finite(x.forecast_max),
-            reason="forecast_out_of_bounds",
+            reason="forecast_above_upper_bound",
         )
     if naive_mode != "off" and x.naive_statistic is not None:
         ok = x.naive_statistic <= x.naive_threshold
         computed = _finite(x.naive_statistic)
         if naive_mode == "enforce":
             # enforced: a series the backtest could not score has not shown it beats naive
-            b.add("beats_naive", ok, statistic=x.naive_statistic, threshold=x.naive_threshold,
+            b.add("worse_than_naive", ok, statistic=x.naive_statistic, threshold=x.naive_threshold,
                   applies=fitted, computed=computed, reason="worse_than_naive")
         else:
             # "warn" records the outcome in the gates table but never holds a series back
-            b.add("beats_naive", ok, statistic=x.naive_statistic, threshold=x.naive_threshold,
+            b.add("worse_than_naive", ok, statistic=x.naive_statistic, threshold=x.naive_threshold,
                   applies=fitted & computed)
     if x.outlier_passed is not None:
         # fail closed: a fitted series whose outlier statistic could not be computed is not vouched for
@@ -320,7 +323,7 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
             threshold=x.outlier_threshold,
             applies=fitted,
             computed=_finite(x.outlier_statistic),
-            reason="outlier",
+            reason="outliers",
         )
     if coverage_mode != "off" and x.coverage_pvalue is not None:
         p = x.coverage_pvalue
@@ -328,10 +331,10 @@ def decide(x: GateInputs, gates, unit_root_policy: str, naive_mode: str = "off",
         computed = _finite(x.coverage_statistic, p)
         if coverage_mode == "enforce":
             # enforced: a series the backtest could not score has not shown its intervals cover
-            b.add("interval_calibration", ok, statistic=x.coverage_statistic, pvalue=p,
+            b.add("interval_undercoverage", ok, statistic=x.coverage_statistic, pvalue=p,
                   threshold=x.coverage_alpha, applies=fitted, computed=computed, reason="interval_undercoverage")
         else:
             # "warn" records the outcome in the gates table but never holds a series back
-            b.add("interval_calibration", ok, statistic=x.coverage_statistic, pvalue=p,
+            b.add("interval_undercoverage", ok, statistic=x.coverage_statistic, pvalue=p,
                   threshold=x.coverage_alpha, applies=fitted & computed)
     return b.outcome()

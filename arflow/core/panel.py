@@ -38,7 +38,7 @@ CONSTANT_RELATIVE_RANGE = 1e-12
 
 QUALITY_FLAG_NAMES: dict[int, str] = {
     DUPLICATE_PERIODS: "duplicate_periods",
-    INTERNAL_GAPS: "internal_gaps",
+    INTERNAL_GAPS: "data_gaps",
     NON_FINITE_VALUES: "non_finite_values",
     TOO_SHORT: "too_short",
     CONSTANT: "constant_series",

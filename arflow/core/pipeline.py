@@ -11,7 +11,7 @@ from dataclasses import dataclass, fields, replace
 import numpy as np
 
 from ..settings import SEASONAL_PERIOD, Settings
-from . import autoreg, backtest, diagnostics, gates, outliers, unitroot
+from . import autoreg, backtest, diagnostics, gates, intervals, outliers, unitroot
 from .distributions import t_sf
 from .forecast import Forecasts, coef_covariance, forecast_ar
 from .panel import CONSTANT, NO_DATA, Panel
@@ -400,6 +400,7 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
     hist = np.zeros((G, width))
     if Y.shape[1]:
         hist[:, width - min(width, Y.shape[1]) :] = np.nan_to_num(Yf[:, -width:])
+    terms = _interval_terms(fit, modelled, fs, excluded)
     fc = forecast_ar(
         hist,
         np.nan_to_num(fit.intercept),
@@ -408,8 +409,12 @@ def _run_block(panel: Panel, settings: Settings) -> dict:
         fs.horizon,
         fs.coverage,
         differenced,
-        **_interval_terms(fit, modelled, fs, excluded),
+        **terms,
     )
+    if terms and fs.selection_uncertainty:  # model-choice uncertainty (arflow.core.intervals)
+        fc = intervals.candidate_interval(Yf, fit, differenced, fc, terms["df_resid"], order=ms.order,
+                                          max_order=ms.max_order, criterion=ms.criterion, seasonal_lag=seasonal,
+                                          differences=ms.unit_root == "difference")
     # the backtest runs on the whole panel afterwards (run_core): its blocks group series by lag set
     return dict(fit=fit, differenced=differenced, unit_root=unit_root, adf=adf, kpss=kp, acf=acf,
                 residual_test=rtest, arch=arch, forecasts=fc, outliers=orep,

@@ -17,7 +17,7 @@ from typing import Any
 
 from ..allocator import tune_for_batch
 from ..machine import resolve_workers
-from ..runtime import bind_to_parent, stop_pool
+from ..runtime import bind_to_parent, stop_pool, worker_context
 from ..run import ChunkSummary, actuals_window, chunk_event, forecast_frame, recent_actuals
 from ..settings import Settings
 from ..warehouse.contract import Source
@@ -78,10 +78,9 @@ def forecast_chunk(
 
 def _in_workers(frames: Any, args: tuple, workers: int, progress: Any) -> None:
     """Forecast the chunks in ``workers`` spawned processes, at most two chunks per worker in flight."""
-    import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor
 
-    ctx = mp.get_context("spawn")
+    ctx = worker_context()  # spawn, without re-running the caller's __main__ in the workers
     # workers die with this process (kill -9 included) and do not hold its output open
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=start_worker, initargs=(os.getpid(),))
     try:

@@ -476,6 +476,28 @@ class DuckDBSource:
         )[0]
         return SourceStats(int(rows), int(series), first)
 
+    def history(self, series: list[tuple[Any, ...]], as_of: Any) -> pl.DataFrame:
+        """The rows at or before ``as_of`` of a few series (key value tuples), as (keys, period, value), for reports."""
+        spec = self.spec
+        keys = ", ".join(quote(k) for k in spec.keys)
+        period = self._period_expr()
+        if not series:
+            return pl.DataFrame()
+        wanted = pl.DataFrame([dict(zip(spec.keys, row)) for row in series])
+        self.con.register("arflow_wanted", wanted.to_arrow())
+        try:
+            on = " AND ".join(f"s.{quote(k)} IS NOT DISTINCT FROM w.{quote(k)}" for k in spec.keys)
+            rel = self.con.sql(
+                f"SELECT {', '.join('s.' + quote(k) for k in spec.keys)}, {period.replace('CAST(', 'CAST(s.', 1)} AS period, "
+                f"CAST(s.{quote(spec.value)} AS DOUBLE) AS value FROM (SELECT * FROM {self._from()}) AS s "
+                f"SEMI JOIN arflow_wanted AS w ON {on} WHERE {period.replace('CAST(', 'CAST(s.', 1)} <= ? "
+                f"ORDER BY {', '.join('s.' + quote(k) for k in spec.keys)}, period", params=[as_of])
+            return pl.from_arrow(rel.to_arrow_table())  # type: ignore[return-value]
+        except duckdb.Error as exc:
+            raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None
+        finally:
+            self.con.unregister("arflow_wanted")
+
     def chunks(self, as_of: Any, chunk_series: int, batch_rows: int = 8_192) -> Iterator[pl.DataFrame]:
         """Rows at or before ``as_of``, grouped by series, in chunks of about ``chunk_series`` whole series.
 

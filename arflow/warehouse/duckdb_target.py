@@ -40,9 +40,13 @@ from .stage import StagedRun
 DDL_FILES = ("runs", "vintages", *RUN_TABLES, "job_policy", "vintage_removals")
 VIEW_FILE = "published_forecasts"
 ACCURACY_VIEW = "accuracy_by_horizon"
+STATUS_VIEW = "latest_series_status"
 #: per coverage level: table -> column prefixes added with ALTER TABLE
-COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("coverage",), "accuracy": ("covered",)}
-_STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
+COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("hit_rate",), "accuracy": ("covered",)}
+#: columns an earlier release wrote under another name: table -> (old name or prefix, new); renamed in place
+RENAMED_COLUMNS = {"backtests": (("horizon", "step"), ("coverage_", "hit_rate_")),
+                   "accuracy": (("run_id", "forecast_run_id"),)}
+_STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure", "reasons", "failed_gates", "warnings")
 
 
 def load_sql(name: str) -> str:
@@ -174,6 +178,7 @@ def _expected_cached(keys: tuple[str, ...], key_types: tuple[str, ...], period_t
                 con.execute(render_sql(name, probe))
             con.execute(render_sql(VIEW_FILE, probe))
             con.execute(render_sql(ACCURACY_VIEW, probe))
+            con.execute(render_sql(STATUS_VIEW, probe))
             rows = con.execute(
                 "SELECT table_name, column_name, data_type FROM information_schema.columns "
                 "WHERE table_schema = ? ORDER BY table_name, ordinal_position",
@@ -200,8 +205,8 @@ def output_columns() -> frozenset[str]:
 
 
 def output_column_prefixes() -> tuple[str, ...]:
-    """Prefixes of the per-coverage-level columns (``lower_80``, ``coverage_95``, ``hit_rate_80``, ...)."""
-    return tuple(f"{p}_" for prefixes in COVERAGE_COLUMNS.values() for p in prefixes) + ("hit_rate_",)
+    """Prefixes of the per-coverage-level columns (``lower_80``, ``hit_rate_95``, ``covered_80``, ...)."""
+    return tuple(f"{p}_" for prefixes in COVERAGE_COLUMNS.values() for p in prefixes) + ("coverage_",)
 
 
 def _table_columns(con: duckdb.DuckDBPyConnection, schema: str) -> dict[str, dict[str, str]]:
@@ -239,6 +244,9 @@ def check_ownership(
             f"SELECT table_name, columns FROM {quote(layout.schema)}.{MARKER_TABLE}").fetchall()}
     elif ours and _all_match(ours, expected, present):
         recorded = {t: set(present[t]) for t in ours}
+    # columns an earlier release named otherwise count under their new names (renamed when the run publishes)
+    present = {t: {renamed_column(t, c): typ for c, typ in cols.items()} for t, cols in present.items()}
+    recorded = {t: {renamed_column(t, c) for c in cols} for t, cols in recorded.items()}
     for table in ours:
         if table not in recorded:
             raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
@@ -262,6 +270,39 @@ def check_ownership(
                         f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)"
                     )
     return [t for t in DDL_FILES if t not in present], new_columns
+
+
+def renamed_column(table: str, column: str) -> str:
+    """The current name of a column an earlier release may have written under another name."""
+    for old, new in RENAMED_COLUMNS.get(table, ()):
+        if column == old or (old.endswith("_") and column.startswith(old)):
+            return new + column[len(old):]
+    return column
+
+
+def rename_old_columns(con: duckdb.DuckDBPyConnection, schema: str) -> list[str]:
+    """Rename, in place, the columns an earlier release named otherwise (inside the publishing transaction)."""
+    done: list[str] = []
+    s = quote(schema)
+    marker = con.execute(
+        "SELECT count(*) FROM information_schema.tables WHERE lower(table_schema) = lower(?) AND table_name = ?",
+        [schema, MARKER_TABLE]).fetchone()[0]
+    for table, pairs in RENAMED_COLUMNS.items():
+        have = [r[0] for r in con.execute(
+            "SELECT column_name FROM information_schema.columns WHERE lower(table_schema) = lower(?) AND table_name = ?",
+            [schema, table]).fetchall()]
+        for old, new in pairs:
+            for column in have:
+                if column == old or (old.endswith("_") and column.startswith(old)):
+                    target = new + column[len(old):]
+                    if target in have:
+                        continue
+                    con.execute(f"ALTER TABLE {s}.{quote(table)} RENAME COLUMN {quote(column)} TO {quote(target)}")
+                    if marker:
+                        con.execute(f"UPDATE {s}.{MARKER_TABLE} SET columns = list_transform(columns, lambda c: "
+                                    f"CASE WHEN c = ? THEN ? ELSE c END) WHERE table_name = ?", [column, target, table])
+                    done.append(f"{table}.{column} -> {target}")
+    return done
 
 
 def _all_match(tables: list[str], expected: dict, present: dict) -> bool:
@@ -432,6 +473,7 @@ class DuckDBTarget:
             fault_point("vintages")
             con.execute(render_sql(VIEW_FILE, self.layout))
             con.execute(render_sql(ACCURACY_VIEW, self.layout, self._labels(con)))
+            con.execute(render_sql(STATUS_VIEW, self.layout))
         except BaseException as exc:
             pending.abort()
             if isinstance(exc, duckdb.Error):
@@ -519,6 +561,7 @@ class DuckDBTarget:
 
     def _ensure_tables(self, con: duckdb.DuckDBPyConnection, coverage_labels: tuple[str, ...]) -> None:
         check_layout(con, self.layout, self.database)
+        rename_old_columns(con, self.layout.schema)
         missing, new_columns = check_ownership(con, self.layout, self.database)
         con.execute(f"CREATE SCHEMA IF NOT EXISTS {self._schema}")
         con.execute(render_sql(MARKER_FILE, self.layout))
@@ -581,9 +624,11 @@ class DuckDBTarget:
         if source is None:
             return
         keys = ", ".join(quote(k) for k in self.layout.keys)
+        have = set(tables.columns("models"))
+        extra = "".join(f", {c}" for c in ("reasons", "failed_gates", "warnings") if c in have)
         con.execute(
             f"INSERT INTO {self._schema}.series_status BY NAME "
-            f"SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision, ? AS on_failure FROM {source}",
+            f"SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision{extra}, ? AS on_failure FROM {source}",
             [record.run_id, record.job, record.as_of, record.on_failure],
         )
 
@@ -609,7 +654,7 @@ class DuckDBTarget:
         con.execute(
             f"""
             INSERT INTO {s}.accuracy BY NAME
-            SELECT f.run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
+            SELECT f.run_id AS forecast_run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
                    a.{value} AS actual, a.{value} - f.forecast AS error,
                    CASE WHEN a.{value} <> 0 THEN abs((a.{value} - f.forecast) / a.{value}) END AS abs_pct_error,
                    ? AS recorded_by{covered}
@@ -618,7 +663,7 @@ class DuckDBTarget:
             JOIN {source} AS a ON {on} AND a.{period} = f.period
             WHERE a.{value} IS NOT NULL AND isfinite(a.{value})
               AND NOT EXISTS (
-                  SELECT 1 FROM {s}.accuracy AS x WHERE x.run_id = f.run_id AND x.period = f.period AND {same}
+                  SELECT 1 FROM {s}.accuracy AS x WHERE x.forecast_run_id = f.run_id AND x.period = f.period AND {same}
               )
             """,
             [record.run_id, record.job, record.as_of],

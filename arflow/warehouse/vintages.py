@@ -33,7 +33,7 @@ from .identifiers import quote
 #: every table holding a vintage's rows, with the column naming its run (accuracy twice: scores of
 #: this vintage's forecasts, and scores of earlier vintages that this run recorded)
 VINTAGE_COLUMNS: tuple[tuple[str, str], ...] = (
-    *((t, "run_id") for t in RUN_TABLES), ("accuracy", "recorded_by"), ("runs", "run_id"), ("vintages", "run_id"),
+    *((t, "forecast_run_id" if t == "accuracy" else "run_id") for t in RUN_TABLES), ("accuracy", "recorded_by"), ("runs", "run_id"), ("vintages", "run_id"),
 )
 AUDIT_TABLE = "vintage_removals"
 

@@ -5,7 +5,7 @@ CREATE OR REPLACE VIEW ${schema}.accuracy_by_horizon AS
 SELECT job,
        step,
        count(*)                      AS forecasts_scored,
-       count(DISTINCT run_id)        AS vintages,
+       count(DISTINCT forecast_run_id) AS vintages,
        avg(error)                    AS mean_error,
        avg(abs(error))               AS mae,
        sqrt(avg(error * error))      AS rmse,
