@@ -37,7 +37,7 @@ def order(keys: list[str]) -> dict[str, list[str]]:
         "runs": ["run_id"], "vintages": ["job", "as_of"], "job_policy": ["job"],
         "series_status": ["run_id", *keys], "models": ["run_id", *keys], "gates": ["run_id", *keys, "gate"],
         "residual_acf": ["run_id", *keys, "lag"], "forecasts": ["run_id", *keys, "step"],
-        "backtests": ["run_id", *keys, "model", "horizon"], "accuracy": ["run_id", "recorded_by", *keys, "period"],
+        "backtests": ["run_id", *keys, "model", "step"], "accuracy": ["forecast_run_id", "recorded_by", *keys, "period"],
         "published_forecasts": ["job", *keys, "step"],
     }
 

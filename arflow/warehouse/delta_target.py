@@ -87,7 +87,7 @@ _TXN_KEY = "arflow.txn"
 #: key types DuckDB has and Delta Lake does not, with the cast to suggest
 _NO_DELTA_TYPE = {"UTINYINT": "SMALLINT", "USMALLINT": "INTEGER", "UINTEGER": "BIGINT", "UBIGINT": "VARCHAR",
                   "UUID": "VARCHAR"}
-_STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure")
+_STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure", "reasons", "failed_gates", "warnings")
 
 
 def require_extra() -> None:
@@ -655,7 +655,9 @@ class PendingDelta:
                 if table == "series_status":
                     if models:
                         keys = ", ".join(quote(k) for k in layout.keys)
-                        con.execute(f"INSERT INTO {mem} BY NAME SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision, "
+                        have_m = set(con.sql(f"SELECT * FROM {models} LIMIT 0").columns)
+                        extra = "".join(f", {c}" for c in ("reasons", "failed_gates", "warnings") if c in have_m)
+                        con.execute(f"INSERT INTO {mem} BY NAME SELECT ? AS run_id, ? AS job, ? AS as_of, {keys}, decision{extra}, "
                                     f"? AS on_failure FROM {models}", [rec.run_id, rec.job, rec.as_of, rec.on_failure])
                 elif table == "accuracy":
                     self._accuracy(con, staged)
@@ -746,6 +748,9 @@ class PendingDelta:
         if not self._register(con, "vintages", "lake_vintages"):
             return
         has_acc = self._register(con, "accuracy", "lake_accuracy")
+        if has_acc:  # an empty table's scan may carry no columns: nothing scored yet means nothing to skip
+            have = set(con.sql("SELECT * FROM lake_accuracy LIMIT 0").columns)
+            has_acc = {"forecast_run_id", "period", *self.layout.keys} <= have
         rec, s = self.record, quote(self.layout.schema)
         keys = [quote(k) for k in self.layout.keys]
         on = " AND ".join(f"a.{k} = f.{k}" for k in keys)
@@ -765,12 +770,12 @@ class PendingDelta:
             f"ELSE a.value BETWEEN f.{quote('lower_' + lab)} AND f.{quote('upper_' + lab)} END AS {quote('covered_' + lab)}"
             for lab in labels
         )
-        seen = (f"AND NOT EXISTS (SELECT 1 FROM lake_accuracy AS x WHERE x.recorded_by <> ? AND x.run_id = f.run_id "
+        seen = (f"AND NOT EXISTS (SELECT 1 FROM lake_accuracy AS x WHERE x.recorded_by <> ? AND x.forecast_run_id = f.run_id "
                 f"AND x.period = f.period AND {same})") if has_acc else "AND ? IS NOT NULL"
         con.execute(
             f"""
             INSERT INTO {s}.accuracy BY NAME
-            SELECT f.run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
+            SELECT f.run_id AS forecast_run_id, v.job, {', '.join('f.' + k for k in keys)}, f.period, f.step, f.forecast,
                    a.value AS actual, a.value - f.forecast AS error,
                    CASE WHEN a.value <> 0 THEN abs((a.value - f.forecast) / a.value) END AS abs_pct_error,
                    ? AS recorded_by{covered}
@@ -1127,10 +1132,10 @@ def _prepare_removal(self: PendingDelta, row: dict[str, Any], who: str, host: st
         counts["accuracy (recorded by it)" if table == "accuracy" else table] = n
         self.writes.append(_TableWrite(table, "replace-partition", _table_arrow_schema(t), (part, run)))
         if table == "accuracy":
-            scored = _count(t, "run_id", run)
+            scored = _count(t, "forecast_run_id", run)
             counts["accuracy"] = scored
             if scored:
-                self.writes.append(_TableWrite(table, "delete-where", _table_arrow_schema(t), ("run_id", f"run_id = {_lit(run)}")))
+                self.writes.append(_TableWrite(table, "delete-where", _table_arrow_schema(t), ("forecast_run_id", f"forecast_run_id = {_lit(run)}")))
     schemas = {name: _table_arrow_schema(lake.table(name)) for name in ("runs", "vintages", "published_forecasts",
                                                                      "vintage_removals", "job_policy")}
     con = _memory(self.layout, ())
@@ -1236,7 +1241,7 @@ def removal_counts(lakehouse: str | Path, schema: str, run_id: str, options: dic
             continue
         counts["accuracy (recorded by it)" if table == "accuracy" else table] = _count(t, part, run_id)
         if table == "accuracy":
-            counts["accuracy"] = _count(t, "run_id", run_id)
+            counts["accuracy"] = _count(t, "forecast_run_id", run_id)
     for table in ("runs", "vintages"):
         frame = _snapshot(lake, table)
         counts[table] = 0 if frame is None else frame.filter(pl.col("run_id") == run_id).height
