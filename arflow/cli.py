@@ -85,6 +85,10 @@ def build_parser() -> argparse.ArgumentParser:
     from .cli_explain import add_commands
 
     add_commands(sub, common)  # explain, report
+    conv = sub.add_parser("lakehouse-convert", help="convert a job's lakehouse from the old Parquet-marker layout to Delta tables")
+    conv.add_argument("job_file", metavar="JOB.toml", help="the job file (its [publish] lakehouse and schema)")
+    common(conv)
+    conv.set_defaults(handler=_cmd_lakehouse_convert)
 
     val = sub.add_parser("validate", help="check what run checks before fitting (job file, columns, types, NULLs, calendar, as-of guards)")
     val.add_argument("job_file", metavar="JOB.toml", help="the job file")
@@ -407,6 +411,28 @@ def _add_vintage_commands(sub: Any, common: Any) -> None:
     ret.set_defaults(handler=_cmd_retract)
 
 
+def _cmd_lakehouse_convert(args: argparse.Namespace, reporter: _Reporter) -> int:
+    from .errors import SettingsError
+    from .job_file import load_job
+    from .warehouse.parquet_legacy import LEGACY_SUFFIX, convert
+
+    spec = load_job(args.job_file)
+    pub = spec.publish
+    if pub.lakehouse is None:
+        raise SettingsError(f"job file {args.job_file} has no [publish] lakehouse; nothing to convert")
+    counts = convert(pub.lakehouse, pub.schema)
+    root = Path(pub.lakehouse) / pub.schema
+    if reporter.json:
+        reporter.emit({"event": "lakehouse-convert", "lakehouse": str(root), "rows": counts,
+                       "old_layout": str(root) + LEGACY_SUFFIX})
+        return EXIT_OK
+    lines = [f"arflow: converted lakehouse {root} to Delta tables"]
+    lines += [f"  {table:<28}{n:>10,} rows" for table, n in counts.items()]
+    lines.append(f"  the old layout is kept in {root}{LEGACY_SUFFIX} (delete it once you have checked the tables)")
+    reporter.out.write("\n".join(lines) + "\n")
+    return EXIT_OK
+
+
 def _cmd_vintages(args: argparse.Namespace, reporter: _Reporter) -> int:
     from .job_file import load_job
     from .warehouse.vintages import list_vintages
@@ -456,14 +482,14 @@ def _cmd_retract(args: argparse.Namespace, reporter: _Reporter) -> int:
     report = plan if args.dry_run else remove_vintage(spec, args.as_of)
     if reporter.json:
         reporter.emit({"event": "retract", "job": report.job, "as_of": report.as_of, "run_id": report.run_id,
-                       "dry_run": report.dry_run, "rows": report.rows, "lakehouse_files": report.lakehouse_files,
+                       "dry_run": report.dry_run, "rows": report.rows, "lakehouse_rows": report.lakehouse_rows,
                        "removed_by": report.removed_by})
         return EXIT_OK
     verb = "would remove" if report.dry_run else "removed"
     lines = [f"arflow: {verb} vintage {_fmt_period(report.as_of)} of job {report.job} (run id {report.run_id})"]
     lines += [f"  {table:<28}{n:>10,} rows" for table, n in report.rows.items()]
-    if report.lakehouse_files:
-        lines.append(f"  {'lakehouse files':<28}{report.lakehouse_files:>10,}")
+    if report.lakehouse_rows:
+        lines.append(f"  {'lakehouse rows':<28}{report.lakehouse_rows:>10,}")
     lines.append("  nothing was changed (dry run)" if report.dry_run
                  else f"  recorded in vintage_removals (by {report.removed_by})")
     reporter.out.write("\n".join(lines) + "\n")

@@ -17,7 +17,7 @@ import hashlib
 import json
 import re
 import tomllib
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
@@ -53,7 +53,7 @@ NONDETERMINISTIC_FUNCTIONS = frozenset(
 _SOURCE_KEYS = ("engine", "database", "parquet", "postgres", "table", "query", "keys", "period", "value", "frequency",
                 "statement_timeout_seconds")
 _PUBLISH_KEYS = ("database", "lakehouse", "postgres", "schema", "on_failure", "hold_on_alarm", "stale_after_periods",
-                 "max_periods_ahead", "lock_wait_seconds", "statement_timeout_seconds")
+                 "max_periods_ahead", "lakehouse_options", "lock_wait_seconds", "statement_timeout_seconds")
 ENGINES = ("duckdb", "spark")
 _SPARK_KEYS = ("master", "partitions", "config")
 _RUN_KEYS = ("chunk_series", "workers")
@@ -125,15 +125,16 @@ class PublishSpec:
     """Where vetted results go and what happens to a series that fails its gates.
 
     ``database``: the DuckDB warehouse (None when only ``lakehouse`` is set).
-    ``lakehouse``: a folder of Parquet datasets partitioned by run, each run
-    made visible by a commit marker written last (see
-    :mod:`arflow.warehouse.parquet_target`).
+    ``lakehouse``: a folder or object-store URI holding one Delta table per
+    result table (see :mod:`arflow.warehouse.delta_target`);
+    ``lakehouse_options``: the Delta writer's storage options.
     """
 
     database: Path | None
     schema: str = "arflow"
     on_failure: str = "keep-previous"
-    lakehouse: Path | None = None
+    lakehouse: Path | str | None = None
+    lakehouse_options: dict[str, str] = field(default_factory=dict, hash=False)
     #: a run over gates.max_quarantine_share writes its records but leaves published_forecasts as it was
     hold_on_alarm: bool = True
     #: a kept (stale) forecast leaves the view once its vintage is this many periods behind the latest (None: no limit)
@@ -471,7 +472,7 @@ def _check_columns(keys: tuple[str, ...], period: str, value: str) -> None:
 
 
 def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) -> PublishSpec:
-    lakehouse = _resolve(section["lakehouse"], "publish.lakehouse", base_dir) if "lakehouse" in section else None
+    lakehouse = _lakehouse(section["lakehouse"], base_dir) if "lakehouse" in section else None
     postgres: Any = section.get("postgres")
     if postgres is None and ("lock_wait_seconds" in section or "statement_timeout_seconds" in section):
         raise SettingsError("publish.lock_wait_seconds and publish.statement_timeout_seconds are used with publish.postgres only")
@@ -496,7 +497,29 @@ def _parse_publish(section: dict[str, Any], source: SourceSpec, base_dir: Path) 
     guards = {k: section[k] for k in ("hold_on_alarm", "stale_after_periods", "max_periods_ahead") if k in section}
     return PublishSpec(database=database, schema=section.get("schema", "arflow"),
                        on_failure=section.get("on_failure", "keep-previous"), lakehouse=lakehouse, postgres=postgres,
+                       lakehouse_options=_lakehouse_options(section),
                        **pg_bounds, **guards)
+
+
+def _lakehouse(value: Any, base_dir: Path) -> Path | str:
+    """``[publish] lakehouse``: a folder (relative to the job file) or an object-store URI such as ``s3://bucket/lake``."""
+    if isinstance(value, str) and "://" in value and not value.startswith("file://"):
+        return value.strip()
+    if isinstance(value, str) and value.startswith("file://"):
+        value = value[len("file://"):]
+    return _resolve(value, "publish.lakehouse", base_dir)
+
+
+def _lakehouse_options(section: dict[str, Any]) -> dict[str, str]:
+    """``[publish] lakehouse_options``: storage options for the Delta writer (strings; no secrets in job files)."""
+    options = section.get("lakehouse_options", {})
+    if not isinstance(options, dict) or not all(isinstance(k, str) and isinstance(v, (str, bool, int)) for k, v in options.items()):
+        raise SettingsError(
+            "publish.lakehouse_options must be a table of strings, e.g. { AWS_ENDPOINT_URL = \"http://minio:9000\" }"
+        )
+    if options and "lakehouse" not in section:
+        raise SettingsError("publish.lakehouse_options is set but publish.lakehouse is not; add publish.lakehouse or remove the options")
+    return {k: (str(v).lower() if isinstance(v, bool) else str(v)) for k, v in options.items()}
 
 
 def _parse_run(section: dict[str, Any]) -> RunOptions:

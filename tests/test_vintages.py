@@ -14,7 +14,7 @@ import pytest
 
 from arflow.cli import main
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
-from arflow.warehouse import parquet_target as parquet_store
+from arflow.warehouse import delta_target as lakehouse
 
 #: columns that hold wall-clock times (and runs.source, the source path): two targets that ran the same vintages
 #: from two folders differ only there
@@ -133,12 +133,13 @@ def test_retract_removes_the_lakehouse_run_too(tmp_path: Path, capsys) -> None:
     assert run(job, "--as-of", "2026-12") == 0
     capsys.readouterr()
     assert main(["retract", str(job), "--as-of", "2026-12", "--yes"]) == 0
-    assert "lakehouse files" in capsys.readouterr().out
+    assert "lakehouse rows" in capsys.readouterr().out
     lake = tmp_path / "lake"
-    assert parquet_store.committed_runs(lake)["as_of"].to_list() == ["2026-11-01"]
-    assert not list((lake / "arflow").glob("*/run=meters@2026-12-01"))
-    assert (lake / "arflow" / "_removals.jsonl").read_text().count("\n") == 1
-    lake_view = parquet_store.published_forecasts(lake)
+    assert lakehouse.committed_runs(lake)["as_of"].to_list() == [dt.date(2026, 11, 1)]
+    for table in ("series_status", "models", "gates", "forecasts", "backtests", "vintages"):
+        assert "meters@2026-12-01" not in lakehouse.read_table(lake, table)["run_id"].to_list(), table
+    assert lakehouse.read_table(lake, "vintage_removals")["run_id"].to_list() == ["meters@2026-12-01"]
+    lake_view = lakehouse.published_forecasts(lake)
     assert lake_view.height == len(view(tmp_path / "warehouse.duckdb"))
     assert set(lake_view["as_of"].to_list()) <= {dt.date(2026, 11, 1)}
 
@@ -249,7 +250,7 @@ def test_lakehouse_view_matches_duckdb_with_kept_and_held_runs(tmp_path: Path, c
     write_table(db, broken(frame, dt.date(2026, 12, 1)))
     assert run(job, "--as-of", "2026-12") == 4  # held
     capsys.readouterr()
-    lake = parquet_store.published_forecasts(tmp_path / "lake")
+    lake = lakehouse.published_forecasts(tmp_path / "lake")
     duck = pl.from_arrow(duckdb.connect(str(db), read_only=True).sql(
         "SELECT * FROM arflow.published_forecasts ORDER BY job, site, step").to_arrow_table())
     assert lake.select(duck.columns).equals(duck)
@@ -288,8 +289,8 @@ def test_lakehouse_only_job_lists_and_retracts(tmp_path: Path, capsys) -> None:
     assert [(r["as_of"], r["current"]) for r in rows] == [("2026-11-01", False), ("2026-12-01", True)]
     assert main(["retract", str(path), "--as-of", "2026-12", "--yes"]) == 0
     capsys.readouterr()
-    assert parquet_store.committed_runs(tmp_path / "lake")["as_of"].to_list() == ["2026-11-01"]
-    assert (tmp_path / "lake" / "arflow" / "_removals.jsonl").exists()
+    assert lakehouse.committed_runs(tmp_path / "lake")["as_of"].to_list() == [dt.date(2026, 11, 1)]
+    assert lakehouse.read_table(tmp_path / "lake", "vintage_removals").height == 1
 
 
 def test_retract_on_a_terminal_asks_for_the_as_of(tmp_path: Path, capsys) -> None:

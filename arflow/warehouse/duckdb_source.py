@@ -24,7 +24,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import duckdb
-import numpy as np
 import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError, one_line
@@ -479,7 +478,6 @@ class DuckDBSource:
     def history(self, series: list[tuple[Any, ...]], as_of: Any) -> pl.DataFrame:
         """The rows at or before ``as_of`` of a few series (key value tuples), as (keys, period, value), for reports."""
         spec = self.spec
-        keys = ", ".join(quote(k) for k in spec.keys)
         period = self._period_expr()
         if not series:
             return pl.DataFrame()
@@ -494,7 +492,7 @@ class DuckDBSource:
                 f"ORDER BY {', '.join('s.' + quote(k) for k in spec.keys)}, period", params=[as_of])
             return pl.from_arrow(rel.to_arrow_table())  # type: ignore[return-value]
         except duckdb.Error as exc:
-            raise SourceError(f"reading the source failed ({first_line(exc)}); check [source] in the job file") from None
+            raise SourceError(f"reading the source failed ({one_line(exc)}); check [source] in the job file") from None
         finally:
             self.con.unregister("arflow_wanted")
 

@@ -13,14 +13,14 @@ from typing import Any
 from .contract import Source, TableLayout, Target
 from .duckdb_source import DuckDBSource
 from .duckdb_target import DuckDBTarget
-from .parquet_target import ParquetTarget
+from .delta_target import DeltaTarget
 from .postgres_source import PostgresSource
 from .postgres_target import PostgresTarget
 
 #: ``[publish]`` key -> target class (a target is configured when its key is set)
 TARGETS: dict[str, Any] = {
     "database": DuckDBTarget,
-    "lakehouse": ParquetTarget,
+    "lakehouse": DeltaTarget,
     "postgres": PostgresTarget,
 }
 

@@ -1,11 +1,12 @@
 """Vintages of a job in its target: list them, and remove one atomically.
 
 A vintage is one as-of of one job (run id ``"<job>@<as_of>"``). Its rows sit
-in every run table of the DuckDB target (and, when configured, in the Parquet
-lakehouse under a commit marker). :func:`remove_vintage` deletes all of them
-in one transaction and records who removed what and when in the table
-``vintage_removals`` (lakehouse: ``_removals.jsonl``); the views then show the
-previous vintage again, as if the removed one had never run.
+in every run table of the DuckDB target (and, when configured, in the Delta
+tables of the lakehouse). :func:`remove_vintage` deletes all of them in one
+transaction (the lakehouse: one publication, see
+:mod:`arflow.warehouse.delta_target`) and records who removed what and when in
+the table ``vintage_removals``; the views then show the previous vintage
+again, as if the removed one had never run.
 """
 
 from __future__ import annotations
@@ -14,7 +15,6 @@ import datetime as dt
 import getpass
 import json
 import os
-import shutil
 import socket
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -29,7 +29,6 @@ from .contract import TableLayout
 from .duckdb_source import is_lock_error, lock_message, parse_vintage
 from .duckdb_target import open_target, render_sql
 from .identifiers import quote
-from .parquet_target import COMMITS, LAYOUT_FILE, read_marker, read_markers, run_dir_name, store_root
 
 #: every table holding a vintage's rows, with the column naming its run (accuracy twice: scores of
 #: this vintage's forecasts, and scores of earlier vintages that this run recorded)
@@ -37,7 +36,6 @@ VINTAGE_COLUMNS: tuple[tuple[str, str], ...] = (
     *((t, "forecast_run_id" if t == "accuracy" else "run_id") for t in RUN_TABLES), ("accuracy", "recorded_by"), ("runs", "run_id"), ("vintages", "run_id"),
 )
 AUDIT_TABLE = "vintage_removals"
-LAKEHOUSE_AUDIT = "_removals.jsonl"
 
 
 @dataclass(frozen=True)
@@ -66,7 +64,7 @@ class RemovalReport:
     rows: dict[str, int]
     dry_run: bool
     removed_by: str
-    lakehouse_files: int = 0
+    lakehouse_rows: int = 0
     notes: tuple[str, ...] = field(default_factory=tuple)
 
     @property
@@ -167,23 +165,12 @@ def _has_view(con: duckdb.DuckDBPyConnection, schema: str) -> bool:
 
 
 def _list_lakehouse(spec: Any) -> list[VintageInfo]:
-    root = store_root(spec.publish.lakehouse, spec.publish.schema)
-    layout = read_marker(root / LAYOUT_FILE) or {}
-    ptype = layout.get("period_type", "DATE")
-    markers = sorted((m for m in read_markers(root) if m.get("job") == spec.name), key=lambda m: str(m["as_of"]))
-    changed = [parse_vintage(m["as_of"], ptype) for m in markers if m.get("changed_view", True)]
-    current = max(changed) if changed else None
-    out = []
-    for m in markers:
-        as_of = parse_vintage(m["as_of"], ptype)
-        counts = m.get("counts", {})
-        status_rows = m["tables"].get("series_status", {}).get("rows", 0)
-        out.append(VintageInfo(
-            as_of, m["run_id"], int(m["attempt"]), m.get("status", "ok"), int(counts.get("series_total", status_rows)),
-            int(counts.get("series_published", 0)), int(counts.get("series_quarantined", 0)), -1,
-            dt.datetime.fromisoformat(m["committed_at"]) if m.get("changed_view", True) else None, as_of == current,
-        ))
-    return out
+    from .delta_target import lake_vintages
+
+    pub = spec.publish
+    return [VintageInfo(v.as_of, v.run_id, v.attempts, v.status, v.series_total, v.series_published,
+                        v.series_quarantined, v.visible, v.published_at, v.current)
+            for v in lake_vintages(pub.lakehouse, pub.schema, spec.name, pub.lakehouse_options)]
 
 
 # ------------------------------------------------------------------------------------ remove
@@ -192,9 +179,10 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
     """Remove one vintage of the job from every table of its target(s), atomically, with an audit row.
 
     DuckDB: one transaction (deletes, then the ``vintage_removals`` row).
-    Lakehouse: the commit marker is moved aside first (the run disappears for
-    readers at once), the DuckDB transaction commits, then the run's folders
-    are deleted; if the DuckDB part fails the marker is put back.
+    Lakehouse: the removal is prepared first (new files for the small tables,
+    nothing visible), the DuckDB transaction commits, then the lakehouse
+    commits (its partitions of the vintage dropped, ``published_forecasts``
+    rebuilt, an audit row); if the DuckDB part fails the lakehouse is untouched.
     """
     pub = spec.publish
     who = user or os_user()
@@ -211,8 +199,8 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
     con = None
     value: Any = None
     run_id = ""
-    lake_marker: Path | None = None
-    lake_files = 0
+    lake_pending: Any = None
+    lake_rows_total = 0
     attempts: int | None = None
     try:
         if pub.database is not None:
@@ -226,20 +214,26 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
                 con.execute("BEGIN TRANSACTION")
             rows = _delete_rows(con, pub.schema, run_id, dry_run)
         if pub.lakehouse is not None:
-            root = store_root(pub.lakehouse, pub.schema)
-            layout = read_marker(root / LAYOUT_FILE) or {}
-            lvalue = parse_vintage(as_of, layout.get("period_type", "DATE"))
-            lrun = f"{spec.name}@{_iso(lvalue)}"
-            marker_path = root / COMMITS / f"{run_dir_name(lrun)}.json"
-            marker = read_marker(marker_path)
-            if marker is None and pub.database is None:
-                raise PublishError(f"lakehouse {root} has no committed vintage {_iso(lvalue)} of job {spec.name}; see arflow vintages")
-            if marker is not None:
-                value, run_id = lvalue, lrun
-                lake_files = sum(len(e["files"]) for e in marker["tables"].values())
-                if not dry_run:
-                    lake_marker = marker_path.with_name(f".{marker_path.name}.removing")
-                    os.replace(marker_path, lake_marker)
+            from .delta_target import lake_period_type, lake_vintages, prepare_removal, removal_counts
+
+            ptype = lake_period_type(pub.lakehouse, pub.schema, pub.lakehouse_options)
+            lvalue = parse_vintage(as_of, ptype or "DATE")
+            known = [v for v in lake_vintages(pub.lakehouse, pub.schema, spec.name, pub.lakehouse_options) if v.as_of == lvalue]
+            if not known and pub.database is None:
+                raise PublishError(f"lakehouse {pub.lakehouse} has no vintage {_iso(lvalue)} of job {spec.name}; see arflow vintages")
+            if known:
+                value, run_id = lvalue, known[0].run_id
+                if dry_run:
+                    lake_rows = removal_counts(pub.lakehouse, pub.schema, run_id, pub.lakehouse_options)
+                    lake_rows_total = sum(lake_rows.values())
+                    if pub.database is None:
+                        rows = lake_rows
+                else:
+                    lake_pending, lake_rows = prepare_removal(pub.lakehouse, pub.schema, spec.name, lvalue, who,
+                                                              socket.gethostname(), arflow_version(), pub.lakehouse_options)
+                    lake_rows_total = sum(lake_rows.values())
+                    if pub.database is None:
+                        rows = lake_rows
         if con is not None and not dry_run:
             _audit(con, pub.schema, spec.name, value, run_id, attempts, rows, who)
             con.execute("COMMIT")
@@ -249,23 +243,17 @@ def remove_vintage(spec: Any, as_of: Any, *, dry_run: bool = False, user: str | 
                 con.execute("ROLLBACK")
             except duckdb.Error:
                 pass
-        if lake_marker is not None and lake_marker.exists():
-            os.replace(lake_marker, lake_marker.with_name(lake_marker.name[1:-len(".removing")]))
+        if lake_pending is not None:
+            lake_pending.abort()
         if isinstance(exc, duckdb.Error):
             raise PublishError(f"removing the vintage failed and was rolled back ({one_line(exc)}); nothing changed") from None
         raise
     finally:
         if con is not None:
             con.close()
-    if lake_marker is not None:
-        root = lake_marker.parent.parent
-        for folder in root.glob(f"*/run={run_dir_name(run_id)}"):
-            shutil.rmtree(folder, ignore_errors=True)
-        lake_marker.unlink(missing_ok=True)
-        with open(root / LAKEHOUSE_AUDIT, "a", encoding="utf-8") as fh:
-            fh.write(json.dumps({"removed_at": _utcnow().isoformat(), "removed_by": who, "host": socket.gethostname(),
-                                 "job": spec.name, "as_of": _iso(value), "run_id": run_id, "files": lake_files}) + "\n")
-    return RemovalReport(spec.name, value, run_id, rows, dry_run, who, lake_files, tuple(notes))
+    if lake_pending is not None:
+        lake_pending.commit()
+    return RemovalReport(spec.name, value, run_id, rows, dry_run, who, lake_rows_total, tuple(notes))
 
 
 def _find_run(con: duckdb.DuckDBPyConnection, schema: str, job: str, value: Any) -> tuple[str, int | None]:
