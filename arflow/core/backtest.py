@@ -313,12 +313,17 @@ def rolling_origin(
     pattern = np.zeros(G, dtype=np.int64)
     for j in range(min(len(lags), 62)):
         pattern |= lag_mask[:, j].astype(np.int64) << j
-    perm = np.lexsort((pattern, maxlag))
+    # lag sets shared by at least a quarter block come first, each in blocks of its own; the
+    # rare ones follow together (a rare set next to a common one would widen the common
+    # set's design and interval terms to their union)
+    _, inv_pat, counts = np.unique(pattern, return_inverse=True, return_counts=True)
+    rare = counts[inv_pat.ravel()] < max(int(block) // 4, 1)
+    perm = np.lexsort((pattern, maxlag, rare))
     back = np.empty_like(perm)
     back[perm] = np.arange(G)
     parts = {k: [] for k in ("model", "naive", "snaive", "hits", "n_origins")}
     jobs = []
-    for b0, b1 in _block_bounds(maxlag[perm], pattern[perm], max(int(block), 1)):
+    for b0, b1 in _block_bounds(maxlag[perm], pattern[perm], max(int(block), 1), rare[perm]):
         idx = perm[b0:b1]
         jobs.append((Y[idx], lag_mask[idx], lags, diff[idx], seasonal_scale[idx], cols, H, cov, s, int(min_train),
                      fit_ok[idx], bool(parameter_uncertainty)))
@@ -356,12 +361,24 @@ def _block_of(args: tuple) -> dict:
     return _block(*args)
 
 
-def _block_bounds(maxlag: np.ndarray, pattern: np.ndarray, block: int) -> list[tuple[int, int]]:
+def _block_bounds(maxlag: np.ndarray, pattern: np.ndarray, block: int,
+                  rare: np.ndarray | None = None) -> list[tuple[int, int]]:
     """Blocks of at most ``block`` consecutive (sorted) series: a lag set shared by at least a
-    quarter block gets blocks of its own, rarer ones share, so most blocks are one lag set wide."""
+    quarter block gets blocks of its own, rarer ones share, so most blocks are one lag set wide.
+    ``rare`` (sorted like the others): series of rare lag sets, which never share a block with
+    a common set."""
     G = len(maxlag)
     if G == 0:
         return []
+    if rare is not None and rare.any() and not rare.all():
+        cut = int(np.argmax(rare))  # rare sets are sorted last
+        # every common set on its own: cut at each change of lag set
+        change = np.flatnonzero((np.diff(maxlag[:cut]) != 0) | (np.diff(pattern[:cut]) != 0)) + 1
+        edges = np.concatenate([[0], change, [cut]])
+        head = [(int(a), int(min(a + block, b))) for a0, b in zip(edges[:-1], edges[1:])
+                for a in range(int(a0), int(b), block)]
+        tail = _block_bounds(maxlag[cut:], pattern[cut:], block)
+        return head + [(a + cut, b + cut) for a, b in tail]
     change = np.flatnonzero((np.diff(maxlag) != 0) | (np.diff(pattern) != 0)) + 1
     edges = np.concatenate([[0], change, [G]])
     out: list[tuple[int, int]] = []
