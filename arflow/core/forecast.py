@@ -153,34 +153,51 @@ def parameter_variance(
     P = K + 1
     sel = np.concatenate([[0], used])
     Vc = np.nan_to_num(V[:, sel[:, None], sel[None, :]])
-    phic = phi[:, used - 1]
-    buf = np.zeros((G, L + horizon))
+    # everything is held parameter-major, (P, G) / (T, G): each update is one pass over the
+    # series axis (with (G, P) and P of 2..13 the per-row overhead of the short loops dominated)
+    phit = np.ascontiguousarray(phi[:, used - 1].T)
+    Vt = np.ascontiguousarray(Vc.transpose(1, 2, 0))  # (P, P, G)
+    buf = np.zeros((L + horizon, G))  # the modelled history, then the chain forecasts
     if L:
-        buf[:, :L] = src[:, src.shape[1] - L :]
+        buf[:L] = src[:, src.shape[1] - L :].T
     R = max(L, 1)
-    # derivatives are held parameter-major, (P, G): every update runs over the series axis
-    # (with (G, P) and P of 2..13 the per-row overhead of the short inner loops dominated)
-    phit = np.ascontiguousarray(phic.T)
     ring = np.zeros((R, P, G))  # derivatives of positions p - R .. p - 1, at index p % R
     cum = np.zeros((P, G))
+    all_diff = G > 0 and bool(diff.all())
+    mixed = bool(diff.any()) and not all_diff
     CH = 64  # steps per batched quadratic form (bounds memory at long horizons)
     grads = np.zeros((min(horizon, CH), P, G))
     for h in range(horizon):
         p = L + h
-        past = buf[:, p - used] if K else np.zeros((G, 0))  # y at lags used
-        buf[:, p] = intercept + (phic * past).sum(axis=1)
         g = np.empty((P, G))
         g[0] = 1.0
-        g[1:] = past.T
+        acc = None
+        for k in range(K):
+            y = buf[p - used[k]]
+            g[k + 1] = y
+            acc = phit[k] * y if acc is None else acc + phit[k] * y
+        buf[p] = intercept if acc is None else intercept + acc
         for k in range(K):
             g += phit[k] * ring[(p - used[k]) % R]
         ring[p % R] = g
-        cum = np.where(diff[None, :], cum + g, g)
+        if mixed:
+            cum = np.where(diff[None, :], cum + g, g)
+        elif all_diff:
+            cum += g
+        else:
+            cum = g
         grads[h % CH] = cum
         if h % CH == CH - 1 or h == horizon - 1:
             h0 = h - h % CH
-            gm = np.ascontiguousarray(grads[: h - h0 + 1].transpose(2, 0, 1))
-            out[:, h0 : h + 1] = (np.matmul(gm, Vc) * gm).sum(axis=2)
+            gm = grads[: h - h0 + 1]  # (steps, P, G)
+            # the quadratic form g' V g over the parameter pairs (V symmetric)
+            q = np.zeros((h - h0 + 1, G))
+            for a in range(P):
+                t = Vt[a, a] * gm[:, a]
+                for b in range(a + 1, P):
+                    t += 2.0 * Vt[a, b] * gm[:, b]
+                q += gm[:, a] * t
+            out[:, h0 : h + 1] = q.T
     return np.maximum(out, 0.0)
 
 
