@@ -308,6 +308,27 @@ def max_root_modulus(phi: np.ndarray, maxlag: np.ndarray) -> np.ndarray:
         if L == 1:
             out[idx] = np.abs(phi[idx, 0])
             continue
+        # closed forms where the polynomial allows (about 1e-16 from the eigenvalues):
+        # z^L = phi_L alone (a pure seasonal model): every root has modulus |phi_L|^(1/L);
+        # z^2 = phi_1 z + phi_2: real roots (phi_1 +- sqrt(D)) / 2 with D = phi_1^2 + 4 phi_2,
+        # else a complex pair of modulus sqrt(-phi_2) (the roots' product is -phi_2)
+        sub = phi[idx, :L]
+        finite = np.isfinite(sub).all(axis=1)
+        pure = finite & ~np.any(sub[:, : L - 1] != 0, axis=1)
+        if pure.any():
+            out[idx[pure]] = np.abs(sub[pure, L - 1]) ** (1.0 / L)
+        todo = ~pure
+        if L == 2:
+            quad = todo & finite
+            a1, a2 = sub[quad, 0], sub[quad, 1]
+            disc = a1 * a1 + 4.0 * a2
+            with np.errstate(invalid="ignore"):
+                out[idx[quad]] = np.where(disc >= 0, 0.5 * (np.abs(a1) + np.sqrt(np.maximum(disc, 0.0))),
+                                          np.sqrt(np.maximum(-a2, 0.0)))
+            todo = todo & ~quad
+        if not todo.any():
+            continue
+        idx = idx[todo]
         comp = np.zeros((len(idx), L, L))
         comp[:, 0, :] = phi[idx, :L]
         comp[:, np.arange(1, L), np.arange(L - 1)] = 1.0
