@@ -14,6 +14,8 @@ reference; not imported here), as documented per function.
 
 from __future__ import annotations
 
+import functools
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -99,7 +101,13 @@ def mackinnon_quantile(alpha: float, regression: str = "c") -> float:
 
     Found by bisection on the (increasing) approximation; asymptotic like the
     p-values (e.g. -2.86 at 5 % with a constant, Fuller 1996 / MacKinnon 2010 b_inf).
+    Remembered per ``(alpha, regression)`` (every block of a run asks for the same one).
     """
+    return _mackinnon_quantile(float(alpha), _check_regression(regression))
+
+
+@functools.lru_cache(maxsize=64)
+def _mackinnon_quantile(alpha: float, regression: str) -> float:
     lo, hi = -18.0, 2.7
     for _ in range(80):
         mid = 0.5 * (lo + hi)
