@@ -378,17 +378,23 @@ def nested_rss(g: Gram, columns: np.ndarray) -> np.ndarray:
     k = g.xty.shape[1]
     G = len(g.yty)
     cols = np.asarray(columns, dtype=np.int64)
+    # the swept columns first (in sweep order), then the others, y last: step i then only
+    # updates the trailing block i.. (entries of swept columns are never read again), with
+    # the same elementwise arithmetic as a full update, so the numbers are the same
+    rest = np.setdiff1d(np.arange(k), cols)
+    perm = np.concatenate([cols, rest, [k]]).astype(np.int64)
     M = np.empty((G, k + 1, k + 1))
     M[:, :k, :k] = g.xtx
     M[:, :k, k] = g.xty
     M[:, k, :k] = g.xty
     M[:, k, k] = g.yty
+    M = M[:, perm[:, None], perm[None, :]]
     out = np.empty((G, len(cols)))
-    for i, j in enumerate(cols):
-        piv = M[:, j, j].copy()
+    for i in range(len(cols)):
+        piv = M[:, i, i].copy()
         ok = piv > 1e-10  # unit-diagonal scale: relative to the column's own norm
         safe = np.where(ok, piv, 1.0)
-        row = M[:, j, :] * ok[:, None]
-        M -= row[:, :, None] * (row[:, None, :] / safe[:, None, None])
-        out[:, i] = np.maximum(M[:, k, k], 0.0)
+        row = M[:, i, i + 1 :] * ok[:, None]
+        M[:, i + 1 :, i + 1 :] -= row[:, :, None] * (row[:, None, :] / safe[:, None, None])
+        out[:, i] = np.maximum(M[:, -1, -1], 0.0)
     return out
