@@ -30,6 +30,7 @@ import numpy as np
 from .distributions import f_sf
 
 from . import ols
+from .arrays import nan_to_num
 
 CRITERION_PENALTY = {
     "aic": lambda n: 2.0 * np.ones_like(n),
@@ -121,7 +122,7 @@ def shifted_lag_stack(Y: np.ndarray, lags: np.ndarray) -> tuple[np.ndarray, np.n
     n = np.isfinite(Y).sum(axis=1)
     with np.errstate(invalid="ignore"):
         shift = np.where(n > 0, np.nansum(Y, axis=1) / np.maximum(n, 1), 0.0)
-    Yz = np.nan_to_num(Y - shift[:, None])
+    Yz = nan_to_num(Y - shift[:, None], copy=False)
     K = len(lags)
     ZT = np.empty((G, K + 1, T))
     for j, lag in enumerate(lags):

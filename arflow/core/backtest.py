@@ -77,6 +77,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import ols
+from .arrays import nan_to_num
 from .autoreg import MIN_RESID_DF, shifted_lag_stack
 from .forecast import cov_from_gram, forecast_ar
 
@@ -526,11 +527,11 @@ def _forecast_origins(snaps, Ypad, mask, lags_b, diff, shift, H, cov, param_unc,
     R = len(b_idx)
     phi = np.zeros((R, L))
     phi[:, lags_b - 1] = res.beta * maskr
-    phi = np.nan_to_num(phi)
-    icpt = np.nan_to_num(icpt)
-    sig = np.nan_to_num(sigma)
+    phi = nan_to_num(phi, copy=False)
+    icpt = nan_to_num(icpt, copy=False)
+    sig = nan_to_num(sigma)
     # the last W observed values up to each origin (column c of Y is column c + W of Ypad)
-    hist = np.nan_to_num(Ypad[b_idx[:, None], c_idx[:, None] + 1 + np.arange(W)[None, :]])
+    hist = nan_to_num(Ypad[b_idx[:, None], c_idx[:, None] + 1 + np.arange(W)[None, :]])
     extra = {}
     if param_unc:
         with np.errstate(all="ignore"):

@@ -34,6 +34,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from .arrays import nan_to_num
 from .distributions import norm_ppf, t_ppf
 
 
@@ -104,11 +105,12 @@ def forecast_ar(
     if diff.any():
         d = np.diff(history, axis=1)
         src = np.where(diff[:, None], np.concatenate([np.full((G, 1), np.nan), d], axis=1), history)
-    mean = chain_forecast(np.nan_to_num(src), intercept, phi, horizon)
+    srcz = nan_to_num(src, copy=src is history)
+    mean = chain_forecast(srcz, intercept, phi, horizon)
     psi = psi_weights(phi, horizon)
     var_param = None
     if coef_cov is not None:
-        var_param = parameter_variance(np.nan_to_num(src), intercept, phi, coef_cov, horizon, diff)
+        var_param = parameter_variance(srcz, intercept, phi, coef_cov, horizon, diff)
     if diff.any():
         last = history[:, -1]
         mean = np.where(diff[:, None], last[:, None] + np.cumsum(mean, axis=1), mean)
@@ -147,12 +149,12 @@ def parameter_variance(
     V = np.asarray(coef_cov, dtype=np.float64)
     # only the lags some series uses (phi or V nonzero): a compact parameter vector
     # (NaN/inf are zeroed on the compact block only: the dense one is mostly zeros)
-    diagv = np.nan_to_num(np.diagonal(V, axis1=1, axis2=2)[:, 1:])
+    diagv = nan_to_num(np.diagonal(V, axis1=1, axis2=2)[:, 1:])
     used = np.flatnonzero(np.any(diagv != 0, axis=0) | np.any(phi != 0, axis=0)) + 1
     K = len(used)
     P = K + 1
     sel = np.concatenate([[0], used])
-    Vc = np.nan_to_num(V[:, sel[:, None], sel[None, :]])
+    Vc = nan_to_num(V[:, sel[:, None], sel[None, :]], copy=False)
     # everything is held parameter-major, (P, G) / (T, G): each update is one pass over the
     # series axis (with (G, P) and P of 2..13 the per-row overhead of the short loops dominated)
     phit = np.ascontiguousarray(phi[:, used - 1].T)

@@ -53,6 +53,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from . import ols
+from .arrays import nan_to_num
 from .autoreg import MIN_RESID_DF, ARFit, finish_fit, lag_design
 from .distributions import t_ppf
 
@@ -244,8 +245,8 @@ def treat(M: np.ndarray, fit: ARFit, found: OutlierResult) -> Treated:
     cleaned = M.copy()
     out = fit
     if len(idx):
-        X = np.nan_to_num(lag_design(M[idx], lags))
-        y = np.nan_to_num(M[idx])
+        X = nan_to_num(lag_design(M[idx], lags), copy=False)
+        y = nan_to_num(M[idx], copy=False)
         wi = w[idx]
         g = ols.gram(X, y, wi)
         res = ols.fit_with_gram(g, X, y, wi, fit.lag_mask[idx])
