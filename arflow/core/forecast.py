@@ -52,26 +52,45 @@ class Forecasts:
 def psi_weights(phi: np.ndarray, horizon: int) -> np.ndarray:
     """psi_0..psi_{H-1} (G, H) of the AR polynomial ``phi`` (G, L), lag j in column j-1."""
     G, L = phi.shape
-    psi = np.zeros((G, horizon))
-    psi[:, 0] = 1.0
+    used = _used_lags(phi)
+    psi = np.zeros((horizon, G))  # step-major: each update is one pass over the series
+    if horizon:
+        psi[0] = 1.0
+    phit = np.ascontiguousarray(phi[:, used - 1].T) if len(used) else np.zeros((0, G))
     for j in range(1, horizon):
-        m = min(j, L)
-        # psi_j = sum_{i=1..m} phi_i psi_{j-i}
-        psi[:, j] = np.einsum("gi,gi->g", phi[:, :m], psi[:, j - 1 :: -1][:, :m])
-    return psi
+        # psi_j = sum_{i=1..min(j, L)} phi_i psi_{j-i}, over the lags some series uses
+        acc = None
+        for k, lag in enumerate(used):
+            if lag > j:
+                break
+            term = phit[k] * psi[j - lag]
+            acc = term if acc is None else acc + term
+        if acc is not None:
+            psi[j] = acc
+    return np.ascontiguousarray(psi.T)
 
 
 def chain_forecast(history: np.ndarray, intercept: np.ndarray, phi: np.ndarray, horizon: int) -> np.ndarray:
     """h = 1..H forecasts (G, H) from the last L values of ``history`` (G, >= L, right-aligned, finite)."""
     G, L = phi.shape
-    buf = np.zeros((G, L + horizon))
+    used = _used_lags(phi)
+    buf = np.zeros((L + horizon, G))  # step-major: each update is one pass over the series
     if L:
-        buf[:, :L] = history[:, history.shape[1] - L :]
+        buf[:L] = history[:, history.shape[1] - L :].T
+    phit = np.ascontiguousarray(phi[:, used - 1].T) if len(used) else np.zeros((0, G))
     for h in range(horizon):
-        # lag j value sits at column L + h - j
-        past = buf[:, h : L + h][:, ::-1]  # column 0 is lag 1
-        buf[:, L + h] = intercept + np.einsum("gi,gi->g", phi, past)
-    return buf[:, L:]
+        # lag j value sits at row L + h - j
+        acc = None
+        for k, lag in enumerate(used):
+            term = phit[k] * buf[L + h - lag]
+            acc = term if acc is None else acc + term
+        buf[L + h] = intercept if acc is None else intercept + acc
+    return np.ascontiguousarray(buf[L:].T)
+
+
+def _used_lags(phi: np.ndarray) -> np.ndarray:
+    """The lags (1-based, increasing) whose coefficient is nonzero (or NaN) in some series."""
+    return np.flatnonzero(np.any(phi != 0, axis=0)) + 1
 
 
 def forecast_ar(
