@@ -535,8 +535,8 @@ def _forecast_origins(snaps, Ypad, mask, lags_b, diff, shift, H, cov, param_unc,
     extra = {}
     if param_unc:
         with np.errstate(all="ignore"):
-            V = cov_from_gram(g, maskr, lags_b, sig, shift[b_idx], inverse=Ainv)
-        extra = dict(coef_cov=V, df_resid=res.df_resid)  # forecast_ar zeroes NaN/inf itself
+            V = cov_from_gram(g, maskr, lags_b, sig, shift[b_idx], inverse=Ainv, dense=False)
+        extra = dict(coef_cov=V, df_resid=res.df_resid, coef_cov_lags=lags_b)  # forecast_ar zeroes NaN/inf itself
     with np.errstate(all="ignore"):
         fc = forecast_ar(hist, icpt, phi, sig, H, cov, diff[b_idx], **extra)
     good = np.isfinite(sigma) & np.isfinite(fc.mean).all(axis=1) & np.isfinite(fc.sd).all(axis=1)

@@ -103,6 +103,7 @@ def forecast_ar(
     differenced: np.ndarray | None = None,
     coef_cov: np.ndarray | None = None,
     df_resid: np.ndarray | None = None,
+    coef_cov_lags: np.ndarray | None = None,
 ) -> Forecasts:
     """Forecasts with intervals for all series at once.
 
@@ -112,6 +113,8 @@ def forecast_ar(
     ``coef_cov`` (G, L+1, L+1): covariance of ``[intercept, phi_1..phi_L]``
     (see :func:`coef_covariance`); when given, the interval variance includes
     the parameter-estimation term. ``df_resid`` (G,): Student-t quantiles.
+    ``coef_cov_lags`` (K,): ``coef_cov`` is the compact (G, K+1, K+1) covariance of
+    ``[intercept, phi at these lags]`` instead (``cov_from_gram(..., dense=False)``).
 
     >>> f = forecast_ar(np.array([[0.0, 1.0]]), np.array([0.0]), np.array([[0.5]]), np.array([1.0]), 3, (0.95,))
     >>> f.mean.round(3).tolist(), f.sd.round(4).tolist()
@@ -129,7 +132,7 @@ def forecast_ar(
     psi = psi_weights(phi, horizon)
     var_param = None
     if coef_cov is not None:
-        var_param = parameter_variance(srcz, intercept, phi, coef_cov, horizon, diff)
+        var_param = parameter_variance(srcz, intercept, phi, coef_cov, horizon, diff, coef_cov_lags)
     if diff.any():
         last = history[:, -1]
         mean = np.where(diff[:, None], last[:, None] + np.cumsum(mean, axis=1), mean)
@@ -152,7 +155,8 @@ def forecast_ar(
 
 
 def parameter_variance(
-    src: np.ndarray, intercept: np.ndarray, phi: np.ndarray, coef_cov: np.ndarray, horizon: int, diff: np.ndarray
+    src: np.ndarray, intercept: np.ndarray, phi: np.ndarray, coef_cov: np.ndarray, horizon: int, diff: np.ndarray,
+    cov_lags: np.ndarray | None = None,
 ) -> np.ndarray:
     """The delta-method term ``g_h' V g_h`` (G, H) of the forecast-error variance (module notes).
 
@@ -161,7 +165,8 @@ def parameter_variance(
     ``d yhat_h / d b0 = 1 + sum_j phi_j d yhat_(h-j) / d b0`` and
     ``d yhat_h / d phi_i = yhat_(h-i) + sum_j phi_j d yhat_(h-j) / d phi_i``
     (observed values have zero derivative). Only the last L derivatives are
-    kept, so memory is (G, L, L+1) whatever the horizon.
+    kept, so memory is (G, L, L+1) whatever the horizon. ``cov_lags``: ``coef_cov``
+    is compact over ``[intercept, phi at cov_lags]`` (the same numbers as the dense form).
     """
     G, L = phi.shape
     out = np.zeros((G, horizon))
@@ -169,11 +174,23 @@ def parameter_variance(
     # only the lags some series uses (phi or V nonzero): a compact parameter vector
     # (NaN/inf are zeroed on the compact block only: the dense one is mostly zeros)
     diagv = nan_to_num(np.diagonal(V, axis1=1, axis2=2)[:, 1:])
-    used = np.flatnonzero(np.any(diagv != 0, axis=0) | np.any(phi != 0, axis=0)) + 1
+    if cov_lags is None:
+        used = np.flatnonzero(np.any(diagv != 0, axis=0) | np.any(phi != 0, axis=0)) + 1
+        sel = np.concatenate([[0], used])
+        Vc = nan_to_num(V[:, sel[:, None], sel[None, :]], copy=False)
+    else:
+        cand = np.asarray(cov_lags, dtype=np.int64)
+        in_v = np.zeros(L + 1, dtype=bool)
+        in_v[cand[np.any(diagv != 0, axis=0)]] = True
+        used = np.flatnonzero(in_v[1:] | np.any(phi != 0, axis=0)) + 1
+        pos = np.searchsorted(cand, used)
+        have = (pos < len(cand)) & (cand[np.minimum(pos, len(cand) - 1)] == used)
+        sel = np.concatenate([[0], pos[have] + 1])  # positions in the compact covariance
+        dst = np.concatenate([[0], np.flatnonzero(have) + 1])  # positions in the used-lag vector
+        Vc = np.zeros((G, len(used) + 1, len(used) + 1))
+        Vc[:, dst[:, None], dst[None, :]] = nan_to_num(V[:, sel[:, None], sel[None, :]], copy=False)
     K = len(used)
     P = K + 1
-    sel = np.concatenate([[0], used])
-    Vc = nan_to_num(V[:, sel[:, None], sel[None, :]], copy=False)
     # everything is held parameter-major, (P, G) / (T, G): each update is one pass over the
     # series axis (with (G, P) and P of 2..13 the per-row overhead of the short loops dominated)
     phit = np.ascontiguousarray(phi[:, used - 1].T)
@@ -243,19 +260,20 @@ def coef_covariance(X: np.ndarray, w: np.ndarray, mask: np.ndarray, lags: np.nda
 
 
 def cov_from_gram(g, mask: np.ndarray, lags: np.ndarray, sigma: np.ndarray, shift: np.ndarray | None = None,
-                  inverse: np.ndarray | None = None) -> np.ndarray:
+                  inverse: np.ndarray | None = None, dense: bool = True) -> np.ndarray:
     """:func:`coef_covariance` from an :class:`arflow.core.ols.Gram` of the lag columns.
 
     ``shift`` (G,): the series were shifted by this before the Gram was formed
     (``b0 = a + m (1 - sum b)``), so the lag columns' own means are ``xmean + m``.
     ``inverse``: the inverse of the masked Gram matrix when the caller has it
-    (:func:`arflow.core.ols.solve_with_inverse`).
+    (:func:`arflow.core.ols.solve_with_inverse`). ``dense=False``: the compact
+    (G, K+1, K+1) covariance of ``[intercept, coefficients of lags]`` (for
+    ``forecast_ar(..., coef_cov_lags=lags)``).
     """
     from . import ols
 
     G = g.xty.shape[0]
     L = int(lags.max()) if len(lags) else 0
-    out = np.zeros((G, L + 1, L + 1))
     if inverse is None:
         A, _, m = ols._masked(g, mask)
         Ainv = ols._inv(A, m)
@@ -270,7 +288,12 @@ def cov_from_gram(g, mask: np.ndarray, lags: np.ndarray, sigma: np.ndarray, shif
     Vx = np.einsum("gij,gj->gi", Vb, xbar)
     with np.errstate(divide="ignore", invalid="ignore"):
         v0 = s2 / np.where(g.nobs > 0, g.nobs, np.nan) + np.einsum("gi,gi->g", xbar, Vx)
-    idx = np.asarray(lags, dtype=np.int64)  # lag j -> dense position j
+    if dense:
+        out = np.zeros((G, L + 1, L + 1))
+        idx = np.asarray(lags, dtype=np.int64)  # lag j -> dense position j
+    else:
+        out = np.zeros((G, len(lags) + 1, len(lags) + 1))
+        idx = np.arange(1, len(lags) + 1)
     out[:, 0, 0] = v0
     out[:, 0, idx] = -Vx
     out[:, idx, 0] = -Vx
