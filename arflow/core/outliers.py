@@ -140,8 +140,16 @@ def _statistics(e: np.ndarray, valid: np.ndarray, pis: list[tuple[int, np.ndarra
     for j, pj in pis:
         if j >= T:
             continue
-        num[:, : T - j] += pj[:, None] * ez[:, j:]
-        den[:, : T - j] += (pj * pj)[:, None] * vf[:, j:]
+        nz = pj != 0
+        if nz.all() or nz.sum() * 2 > G:
+            num[:, : T - j] += pj[:, None] * ez[:, j:]
+            den[:, : T - j] += (pj * pj)[:, None] * vf[:, j:]
+        elif nz.any():
+            # a lag only some series use: the others would add exact zeros
+            rows = np.flatnonzero(nz)
+            p = pj[rows]
+            num[rows, : T - j] += p[:, None] * ez[rows, j:]
+            den[rows, : T - j] += (p * p)[:, None] * vf[rows, j:]
     with np.errstate(divide="ignore", invalid="ignore"):
         w = np.where(valid & (den > 0), num / den, np.nan)
         lam = w * np.sqrt(den) / sigma[:, None]
