@@ -362,6 +362,31 @@ def ar_autocovariance(phi: np.ndarray) -> np.ndarray:
     """
     phi = np.asarray(phi, dtype=np.float64)
     G, L = phi.shape
+    out = np.zeros((G, L + 1))
+    # each series' system closes on gamma(0..q), q its highest nonzero lag; the rest follow
+    # from gamma(h) = sum_i phi_i gamma(h - i) (the remaining Yule-Walker rows)
+    nz = phi != 0
+    q_of = np.where(nz.any(axis=1), L - np.argmax(nz[:, ::-1], axis=1), 0)
+    for q in np.unique(q_of):
+        rows = np.flatnonzero(q_of == q)
+        q = int(q)
+        gq = _yule_walker(phi[rows, :q])
+        out[rows, : q + 1] = gq
+        with np.errstate(invalid="ignore", over="ignore"):
+            for h in range(q + 1, L + 1):
+                # gamma(h - 1), ..., gamma(h - q)
+                past = out[rows, h - q : h][:, ::-1]
+                out[rows, h] = np.einsum("gi,gi->g", phi[rows, :q], past)
+    return out
+
+
+def _yule_walker(phi: np.ndarray) -> np.ndarray:
+    """gamma(0..L) (G, L+1) from the Yule-Walker equations of AR(L) polynomials ``phi`` (G, L)."""
+    G, L = phi.shape
+    if L == 0:
+        out = np.zeros((G, 1))
+        out[:, 0] = 1.0
+        return out
     h = np.arange(L + 1)
     B = np.broadcast_to(np.eye(L + 1), (G, L + 1, L + 1)).copy()
     for i in range(1, L + 1):
@@ -427,14 +452,38 @@ def ar_residual_acf_cov(
     idx = tested[:, None] - model_lags[None, :]  # (m, K)
     XL = np.where(idx[None] >= 0, psi[:, np.clip(idx, 0, H)], 0.0) * mask[:, None, :]
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-        try:
-            sol = np.linalg.solve(XtX, np.swapaxes(XL, 1, 2))  # (G, K, m)
-        except np.linalg.LinAlgError:
-            sol = np.einsum("gkl,glm->gkm", np.linalg.pinv(XtX), np.swapaxes(XL, 1, 2))
+        sol = _solve_by_pattern(XtX, np.swapaxes(XL, 1, 2), mask)  # (G, K, m)
         A = np.eye(m)[None] - np.einsum("gmk,gkn->gmn", XL, sol)
     ev = np.diagonal(A, axis1=1, axis2=2)
     bad = ~(gamma[:, 0] > 0) | ~np.isfinite(A).all(axis=(1, 2)) | np.any(ev < -1e-8, axis=1) | np.any(ev > 1 + 1e-8, axis=1)
     return np.where(bad[:, None, None], np.nan, A)
+
+
+def _solve_by_pattern(XtX: np.ndarray, R: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """``XtX^-1 R`` (G, K, m) where ``XtX`` is the identity outside each series' lags ``mask`` (G, K)
+    and ``R`` is zero there: each group of series with the same lags is solved on those lags only
+    (a pseudo-inverse for a group holding a singular system)."""
+    G, K, m = R.shape
+    sol = np.zeros((G, K, m))
+    key = np.packbits(mask, axis=1, bitorder="little")
+    key = key.view(np.dtype((np.void, key.shape[1]))).ravel()
+    uniq, inv = np.unique(key, return_inverse=True)
+    inv = inv.ravel()
+    order = np.argsort(inv, kind="stable")
+    bounds = np.searchsorted(inv[order], np.arange(len(uniq) + 1))
+    for u in range(len(uniq)):
+        rows = order[bounds[u] : bounds[u + 1]]
+        cols = np.flatnonzero(mask[rows[0]])
+        if len(cols) == 0:
+            continue
+        sub = XtX[rows[:, None, None], cols[None, :, None], cols[None, None, :]]
+        rhs = R[rows[:, None], cols[None, :], :]
+        try:
+            x = np.linalg.solve(sub, rhs)
+        except np.linalg.LinAlgError:
+            x = np.einsum("gkl,glm->gkm", np.linalg.pinv(sub), rhs)
+        sol[rows[:, None], cols[None, :], :] = x
+    return sol
 
 
 def ljung_box_subset(
