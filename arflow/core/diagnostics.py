@@ -469,6 +469,9 @@ def _solve_by_pattern(XtX: np.ndarray, R: np.ndarray, mask: np.ndarray) -> np.nd
     key = key.view(np.dtype((np.void, key.shape[1]))).ravel()
     uniq, inv = np.unique(key, return_inverse=True)
     inv = inv.ravel()
+    if len(uniq) > max(16, G // 32):  # so many patterns that one full batch is cheaper
+        uniq, inv = uniq[:1], np.zeros(G, dtype=np.int64)
+        mask = np.ones((G, K), dtype=bool)
     order = np.argsort(inv, kind="stable")
     bounds = np.searchsorted(inv[order], np.arange(len(uniq) + 1))
     for u in range(len(uniq)):

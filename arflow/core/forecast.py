@@ -255,7 +255,7 @@ def coef_covariance(X: np.ndarray, w: np.ndarray, mask: np.ndarray, lags: np.nda
     L = int(lags.max()) if len(lags) else 0
     if G == 0 or K == 0:
         return np.zeros((G, L + 1, L + 1))
-    X = np.where(w[:, :, None] > 0, np.nan_to_num(X), 0.0)
+    X = nan_to_num(np.where(w[:, :, None] > 0, X, 0.0), copy=False)  # = where(w > 0, nan_to_num(X), 0)
     return cov_from_gram(ols.gram(X, np.zeros((G, T)), w), mask, lags, sigma)
 
 

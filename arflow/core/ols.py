@@ -245,7 +245,8 @@ def _by_pattern(A: np.ndarray, m: np.ndarray, rhs: np.ndarray | None):
     key = key.view(np.dtype((np.void, key.shape[1]))).ravel()
     uniq, inv = np.unique(key, return_inverse=True)
     inv = inv.ravel()
-    if len(uniq) == 1 and m[0].all():
+    if (len(uniq) == 1 and m[0].all()) or len(uniq) > max(16, G // 32):
+        # one full pattern, or so many patterns that the per-group calls would cost more
         return _inv_batch(A, m) if rhs is None else _solve_batch(A, rhs, m)
     if rhs is None:
         out = np.zeros_like(A)
