@@ -17,7 +17,7 @@ import scipy.stats
 from arflow.core import autoreg, intervals
 from arflow.core.pipeline import run_core
 from arflow.errors import SettingsError
-from arflow.sample.simulate import random_walks, simulate_ar, to_panel
+from arflow.sample.simulate import interval_coverage, random_walks, simulate_ar, to_panel
 from arflow.settings import BacktestSettings, ForecastSettings, ModelSettings, Settings
 
 NO_BT = BacktestSettings(enabled=False)
@@ -26,17 +26,7 @@ BAND = 0.02 + 1e-9
 DEFAULTS = Settings(forecast=ForecastSettings(horizon=12), backtest=NO_BT)
 
 
-def coverage(Y: np.ndarray, n: int, settings: Settings, steps=(1, 12)) -> dict:
-    """Share of fitted series whose actual at n + h - 1 falls inside the interval fitted on the first n."""
-    r = run_core(to_panel(Y[:, :n]), settings)
-    ok = r.fit.fitted
-    out = {}
-    for ci, level in enumerate(r.forecasts.coverage):
-        for h in steps:
-            a = Y[:, n + h - 1]
-            inside = (a >= r.forecasts.lower[ci, :, h - 1]) & (a <= r.forecasts.upper[ci, :, h - 1])
-            out[(level, h)] = float(inside[ok].mean())
-    return out
+coverage = interval_coverage  # arflow.sample.simulate: the one coverage measurement
 
 
 # ------------------------------------------------------------------------ small-sample bias
