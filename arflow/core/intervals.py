@@ -338,15 +338,17 @@ def _bias_corrected(phi: np.ndarray, ybar: np.ndarray, xbar: np.ndarray, lags: n
     with np.errstate(divide="ignore", invalid="ignore"):
         delta = (c + np.einsum("rij,rj->ri", M, phi[:, :W])) / m[:, None]
     delta = np.where(np.isfinite(delta), delta, 0.0)
+    check = np.arange(phi.shape[0])  # only rows whose correction changed are checked again
     for it in range(9):
-        new = phi[:, :W] + delta
-        risky = np.flatnonzero(np.abs(new).sum(axis=1) >= MAX_MODULUS)  # sum |phi| < 1: stationary
+        new = phi[check, :W] + delta[check]
+        risky = check[np.abs(new).sum(axis=1) >= MAX_MODULUS]  # sum |phi| < 1: stationary
         if not risky.size:
             break
-        bad = risky[autoreg.max_root_modulus(new[risky], p[risky]) >= MAX_MODULUS]
+        bad = risky[autoreg.max_root_modulus(phi[risky, :W] + delta[risky], p[risky]) >= MAX_MODULUS]
         if not bad.size:
             break
         delta[bad] *= 0.5 if it < 8 else 0.0
+        check = bad
     out = phi.copy()
     out[:, :W] += delta
     b0 = ybar - np.einsum("rk,rk->r", out[:, lags - 1], xbar)
