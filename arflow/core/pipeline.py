@@ -195,7 +195,8 @@ class UnitRootDecision:
     """The unit-root decision per series (arrays (G,)) and the evidence behind it.
 
     ``adf``: the contiguous-lag ADF test used; ``persistence``: sum of the
-    level model's AR coefficients, against ``persistence_threshold``;
+    level model's AR coefficients, against ``persistence_threshold`` (for a
+    model with a gap the larger of it and its contiguous refit's is compared);
     ``lr_statistic``: the level model's advantage over the difference
     candidate (NaN where that comparison was not needed), against
     ``lr_threshold``. ``difference_fit`` holds the difference candidates of
@@ -234,7 +235,11 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
        normalised-bias bound (about the 1% point of ``n (rho - 1)``, Fuller
        1996); the floor keeps the guard from vanishing as n approaches
        ``unit_root_bias``: a short series with persistence 0.4 is not called a
-       random walk however little power ADF has at 24 points.
+       random walk however little power ADF has at 24 points. For a model with
+       a gap the guard, like the test in 1., is passed when either form (the
+       model or its contiguous AR(p >= 1) refit) passes it: a seasonal lag
+       selected on a random walk's levels takes a negative coefficient and
+       pulled the sum of about one 40-point walk in seven below the floor.
     3. **The difference candidate is not clearly worse than the level
        model.** Both are fitted (each with its own selected lags) and compared
        on the observations both explain, as models of y_t:
