@@ -279,6 +279,15 @@ def _resolve_duplicates(
     dc, do = np.diff(codes), np.diff(ordinals)
     if np.all((dc > 0) | ((dc == 0) & (do > 0))):
         return codes, ordinals, values  # ordered without repeats
+    lo = int(ordinals.min())
+    span = int(ordinals.max()) - lo + 1
+    if int(codes.max()) < (1 << 62) // span:
+        # one integer key per (series, period); a stable sort is about linear on the nearly
+        # ordered rows a grouped read gives, unlike a four-key lexsort
+        order = np.argsort(codes * span + (ordinals - lo), kind="stable")
+        c, o = codes[order], ordinals[order]
+        if not ((c[1:] == c[:-1]) & (o[1:] == o[:-1])).any():
+            return c, o, values[order]
     # NaN sorts last; the bit pattern breaks ties between equal values (-0.0 and 0.0)
     order = np.lexsort((values.view(np.int64), values, ordinals, codes))
     c, o, v = codes[order], ordinals[order], values[order]
@@ -493,15 +502,15 @@ def _status_columns(out: Any, settings: Any, G: int) -> list[pl.Series]:
     rows = np.concatenate(idx)
     order = np.argsort(rows, kind="stable")
     rows, code = rows[order], np.concatenate(code)[order]
-    names = pa.array(gate_names, pa.string()).take(_arrow(code, pa.int32()))
-    struct = pa.StructArray.from_arrays(
-        [names, _finite_arrow(np.concatenate(stat)[order]), _finite_arrow(np.concatenate(pval)[order]),
-         _finite_arrow(np.concatenate(thr)[order])],
-        fields=list(_FAILED_GATE_ARROW))
+    # polars, not pyarrow.compute (whose import costs a worker over half a second)
+    names = pl.Series("gate", gate_names, dtype=pl.String)[code]
+    struct = pl.DataFrame([
+        names, _finite(np.concatenate(stat)[order]).alias("statistic"),
+        _finite(np.concatenate(pval)[order]).alias("p_value"), _finite(np.concatenate(thr)[order]).alias("threshold"),
+    ]).to_struct("failed").to_arrow()
     failed = pa.ListArray.from_arrays(_arrow(_offsets(rows, G), pa.int32()), struct)
     is_warn = np.isin(code, [i for i, g in enumerate(gate_names) if g in warn])
-    warned = pa.ListArray.from_arrays(_arrow(_offsets(rows[is_warn], G), pa.int32()),
-                                      names.filter(_arrow(is_warn, pa.bool_())))
+    warned = pa.ListArray.from_arrays(_arrow(_offsets(rows[is_warn], G), pa.int32()), names.filter(is_warn).to_arrow())
     return [pl.Series("failed_gates", failed, dtype=pl.List(FAILED_GATE)),
             pl.Series("warnings", warned, dtype=pl.List(pl.String))]
 
@@ -513,10 +522,10 @@ def _offsets(rows: np.ndarray, G: int) -> np.ndarray:
     return offsets
 
 
-def _finite_arrow(values: np.ndarray) -> pa.Array:
-    """Floats as Arrow with every non-finite value null."""
+def _finite(values: np.ndarray) -> pl.Series:
+    """Floats with every non-finite value null."""
     v = np.where(np.isfinite(values), values, np.nan)
-    return pl.Series(np.ascontiguousarray(v, dtype=np.float64)).fill_nan(None).to_arrow()
+    return pl.Series(np.ascontiguousarray(v, dtype=np.float64)).fill_nan(None)
 
 
 def _outlier_columns(res: CoreResult, codec) -> list[pl.Series]:
