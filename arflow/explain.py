@@ -68,8 +68,10 @@ def _open(database: Path | None) -> duckdb.DuckDBPyConnection:
         raise SettingsError("arflow explain reads the job's DuckDB target; this job has no [publish] database")
     if not database.exists():
         raise SourceError(f"target database {database} does not exist yet; run the job first (arflow run)")
+    from .warehouse.duckdb_source import open_duckdb
+
     try:
-        return duckdb.connect(str(database), read_only=True)
+        return open_duckdb(str(database), read_only=True)
     except duckdb.Error as exc:
         raise PublishError(f"cannot open target database {database} read-only ({str(exc).splitlines()[0]}); "
                            "retry when the run holding it finishes") from None

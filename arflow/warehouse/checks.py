@@ -2,10 +2,14 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import Any
 
-from ..errors import SourceError
+from ..errors import SchemaError, SourceError
+
+#: weekday names, Monday first (index = ISO weekday - 1)
+WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
 
 
 @dataclass(frozen=True)
@@ -46,3 +50,34 @@ def check_row_counts(
             "filter them out with a [source] query"
         )
     return int(counts.total)
+
+
+def period_labels(
+    frequency: str,
+    weekday_counts: Callable[[], Sequence[tuple[Any, Any]]],
+    off_weekday_examples: Callable[[int], str],
+    all_period_ends: Callable[[str], Any],
+) -> tuple[int | None, str]:
+    """How a source labels its periods: (weekday of weekly labels or None, "start" or "end").
+
+    The source answers in its own SQL: ``weekday_counts()`` gives (weekday,
+    0 = Monday, rows) of the weekly labels, most rows first;
+    ``off_weekday_examples(weekday)`` a few rows not on that weekday;
+    ``all_period_ends(frequency)`` whether every month / quarter / year label
+    is the period's last day (then periods are labelled by their ends).
+    Weekly labels on different weekdays are refused, naming the count and examples.
+    """
+    if frequency == "week":
+        counts = weekday_counts()
+        weekday = int(counts[0][0])
+        if len(counts) > 1:
+            off = sum(int(n) for _, n in counts[1:])
+            raise SchemaError(
+                f"weekly periods fall on different weekdays: {off:,} row(s) are not on a {WEEKDAYS[weekday]} "
+                f"(the weekday of most rows), e.g. {off_weekday_examples(weekday)}; label each week by the same "
+                "weekday (e.g. its Monday) or use frequency 'day'"
+            )
+        return weekday, "start"
+    if frequency in ("month", "quarter", "year"):
+        return None, "end" if all_period_ends(frequency) else "start"
+    return None, "start"

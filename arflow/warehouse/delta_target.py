@@ -264,9 +264,9 @@ def table_schemas(layout: TableLayout, labels: tuple[str, ...]) -> dict[str, pa.
 
 def _memory(layout: TableLayout, labels: tuple[str, ...]) -> duckdb.DuckDBPyConnection:
     """An in-memory DuckDB with arflow's DDL tables (and this run's coverage columns) under the job's schema."""
-    from .duckdb_source import engine_config
+    from .duckdb_source import engine_config, open_duckdb
 
-    con = duckdb.connect(":memory:", config=engine_config())
+    con = open_duckdb(":memory:", config=engine_config())
     con.execute(f"CREATE SCHEMA {quote(layout.schema)}")
     for name in DDL_FILES:
         con.execute(render_sql(name, layout))
