@@ -59,12 +59,16 @@ def open_duckdb(database: str, read_only: bool = False, config: dict[str, str] |
     for more than two seconds, into a library caller's output or a job's log.
     Both switches are per session (DuckDB refuses them in ``config``), so they
     are set here, before a source locks its configuration; the printing one
-    as well because setting ``progress_bar_time`` turns the bar back on.
+    as well because setting ``progress_bar_time`` turns the bar back on. A
+    file this process already opened as a source (a job whose source and
+    target are one file) shares the source's locked configuration: such a
+    connection keeps DuckDB's default.
     """
     con = duckdb.connect(database, read_only=read_only, config=config or {})
     try:
-        con.execute("SET enable_progress_bar = false")
-        con.execute("SET enable_progress_bar_print = false")
+        if not con.execute("SELECT current_setting('lock_configuration')").fetchone()[0]:
+            con.execute("SET enable_progress_bar = false")
+            con.execute("SET enable_progress_bar_print = false")
     except BaseException:
         con.close()
         raise
