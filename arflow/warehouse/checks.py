@@ -24,15 +24,16 @@ class RowCounts:
 
 def check_row_counts(
     counts: RowCounts, keys: tuple[str, ...] | list[str], period: str, value: str,
-    examples: Callable[[str], str] | None = None,
+    examples: Callable[[str], str] | None = None, where: str = "source.table / source.query (or the parquet files)",
 ) -> int:
     """Refuse an empty source, an all-NULL value column, NULL keys and NULL periods; the row count.
 
     ``examples(kind)`` (kind ``"key"`` or ``"period"``) may give a few
     offending rows for the message; sources that cannot cheaply show rows leave it out.
+    ``where``: the job-file keys that name the rows (for the empty-source message).
     """
     if counts.total == 0:
-        raise SourceError("the source has no rows; check source.table / source.query (or the parquet files)")
+        raise SourceError(f"the source has no rows; check {where}")
     if counts.values == 0:
         raise SourceError(
             f"the value column {value} is NULL in all {counts.total} row(s); check source.value or the [source] query"
@@ -50,6 +51,33 @@ def check_row_counts(
             "filter them out with a [source] query"
         )
     return int(counts.total)
+
+
+def column_type(columns: Sequence[tuple[str, str]], column: str, role: str) -> str:
+    """The type of ``column`` among a source's (name, type) ``columns``.
+
+    Refuses a column the source lacks (listing those it has) and one spelt
+    with other capitals (``role``: the job-file key that names it).
+    """
+    by_lower = {name.lower(): (name, typ) for name, typ in columns}
+    if column.lower() not in by_lower:
+        available = ", ".join(name for name, _ in columns) or "none"
+        raise SchemaError(f"source has no column {column!r} (named as {role}); columns available: {available}")
+    name, typ = by_lower[column.lower()]
+    if name != column:
+        raise SchemaError(f"source column is spelled {name!r}, the job file says {column!r} ({role}); use the exact spelling")
+    return typ
+
+
+def check_step_frequency(period_type: str, frequency: str, period: str, shown_type: str) -> None:
+    """Integer periods go with frequency "step" and only with it (``shown_type``: the column's type for the message)."""
+    if period_type == "BIGINT" and frequency != "step":
+        raise SchemaError(f"period column {period!r} holds integers; set source.frequency = \"step\" for integer periods")
+    if period_type != "BIGINT" and frequency == "step":
+        raise SchemaError(
+            f"source.frequency = \"step\" needs an integer period column, but {period!r} is {shown_type}; "
+            "use day/week/month/quarter/year"
+        )
 
 
 def period_labels(

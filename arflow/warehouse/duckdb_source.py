@@ -28,7 +28,7 @@ import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError, one_line
 from ..runtime import fault_point, unwatch_connection, watch_connection
-from .checks import RowCounts, check_row_counts, period_labels
+from .checks import RowCounts, check_row_counts, check_step_frequency, column_type, period_labels
 from .contract import SourceLayout, SourceStats
 from .identifiers import quote, quote_qualified
 
@@ -356,17 +356,10 @@ class DuckDBSource:
             return self._layout
         rows = self._sql(f"DESCRIBE SELECT * FROM {self._from()}")
         columns = tuple((str(r[0]), str(r[1])) for r in rows)
-        by_lower = {name.lower(): (name, typ) for name, typ in columns}
         spec = self.spec
-        available = ", ".join(name for name, _ in columns) or "none"
 
         def find(col: str, role: str) -> str:
-            if col.lower() not in by_lower:
-                raise SchemaError(f"source has no column {col!r} (named as {role}); columns available: {available}")
-            name, typ = by_lower[col.lower()]
-            if name != col:
-                raise SchemaError(f"source column is spelled {name!r}, the job file says {col!r} ({role}); use the exact spelling")
-            return typ.upper()
+            return column_type(columns, col, role).upper()
 
         key_types = []
         for k in spec.keys:
@@ -386,10 +379,7 @@ class DuckDBSource:
                 f"period column {spec.period!r} has type {ptyp}; expected DATE, TIMESTAMP or an integer "
                 f"(cast it in a [source] query, e.g. CAST({spec.period} AS DATE))"
             )
-        if period_type == "BIGINT" and self.frequency != "step":
-            raise SchemaError(f"period column {spec.period!r} holds integers; set source.frequency = \"step\" for integer periods")
-        if period_type != "BIGINT" and self.frequency == "step":
-            raise SchemaError(f"source.frequency = \"step\" needs an integer period column, but {spec.period!r} is {ptyp}; use day/week/month/quarter/year")
+        check_step_frequency(period_type, self.frequency, spec.period, ptyp)
         vtyp = find(spec.value, "source.value")
         if not (vtyp in _INTEGER_TYPES or vtyp in _FLOAT_TYPES or vtyp.startswith("DECIMAL")):
             raise SchemaError(

@@ -36,7 +36,7 @@ from .contract import (
     column_difference, runs_row,
 )
 from .duckdb_source import engine_config, is_lock_error, lock_message, open_duckdb
-from .identifiers import quote
+from .identifiers import key_fragments, quote
 from .stage import StagedRun
 
 #: DDL files, in creation order: the run log, the vintages, the run tables, the expiry policy, the removal audit
@@ -64,16 +64,8 @@ def render_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ...] 
         schema=quote(layout.schema),
         period_type=layout.period_type,
         key_defs=",\n    ".join(f"{k} {t} NOT NULL" for k, t in zip(keys, layout.key_types)),
-        key_list=", ".join(keys),
-        p_key_list=", ".join(f"p.{k}" for k in keys),
-        key_join=" AND ".join(f"p.{k} = l.{k}" for k in keys),
-        f_key_join=" AND ".join(f"f.{k} = v.{k}" for k in keys),
-        s_key_list=", ".join(f"s.{k}" for k in keys),
-        f_key_list=", ".join(f"f.{k}" for k in keys),
-        v_key_list=", ".join(f"v.{k}" for k in keys),
-        xv_key_join=" AND ".join(f"x.{k} = v.{k}" for k in keys),
-        ks_key_join=" AND ".join(f"k.{k} = s.{k}" for k in keys),
         age=_age_sql(layout.period_type),
+        **key_fragments(keys),
     )
 
 

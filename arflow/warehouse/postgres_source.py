@@ -24,7 +24,7 @@ import pyarrow as pa
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
 from ..runtime import fault_point
-from .checks import period_labels
+from .checks import RowCounts, check_row_counts, check_step_frequency, column_type, period_labels
 from .contract import SourceLayout, SourceStats
 from .duckdb_source import SourceCalendar, describe_row, parse_as_of_text
 from .identifiers import quote, quote_qualified
@@ -214,17 +214,10 @@ class PostgresSource:
             return self._layout
         schema = self._run(f"SELECT * FROM {self._from()} LIMIT 0").schema
         columns = tuple((f.name, _type_name(f)) for f in schema)
-        by_lower = {name.lower(): (name, typ) for name, typ in columns}
         spec = self.spec
-        available = ", ".join(name for name, _ in columns) or "none"
 
         def find(col: str, role: str) -> str:
-            if col.lower() not in by_lower:
-                raise SchemaError(f"source has no column {col!r} (named as {role}); columns available: {available}")
-            name, typ = by_lower[col.lower()]
-            if name != col:
-                raise SchemaError(f"source column is spelled {name!r}, the job file says {col!r} ({role}); use the exact spelling")
-            return typ
+            return column_type(columns, col, role)
 
         key_types = []
         for k in spec.keys:
@@ -247,10 +240,7 @@ class PostgresSource:
                 f"period column {spec.period!r} has type {_READABLE.get(ptyp, ptyp)}; expected date, timestamp (without time "
                 f"zone) or an integer (cast it in a [source] query, e.g. {spec.period}::date)"
             )
-        if period_type == "BIGINT" and self.frequency != "step":
-            raise SchemaError(f"period column {spec.period!r} holds integers; set source.frequency = \"step\" for integer periods")
-        if period_type != "BIGINT" and self.frequency == "step":
-            raise SchemaError(f"source.frequency = \"step\" needs an integer period column, but {spec.period!r} is {ptyp}; use day/week/month/quarter/year")
+        check_step_frequency(period_type, self.frequency, spec.period, ptyp)
         vtyp = find(spec.value, "source.value")
         if vtyp not in _NUMERIC:
             raise SchemaError(
@@ -269,23 +259,10 @@ class PostgresSource:
             f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL), "
             f"count({quote(spec.value)}) FROM {self._from()}"
         )[0]
-        if total == 0:
-            raise SourceError("the source has no rows; check source.table / source.query")
-        if values == 0:
-            raise SourceError(
-                f"the value column {spec.value} is NULL in all {total} row(s); check source.value or the [source] query"
-            )
-        if null_keys:
-            raise SourceError(
-                f"the source has {null_keys:,} row(s) with a NULL key ({', '.join(spec.keys)}), e.g. "
-                f"{self.example_rows(null_key)}; filter them out or fill them in with a [source] query"
-            )
-        if null_periods:
-            raise SourceError(
-                f"the source has {null_periods:,} row(s) with a NULL period ({spec.period}), e.g. "
-                f"{self.example_rows(quote(spec.period) + ' IS NULL')}; filter them out with a [source] query"
-            )
-        return int(total)
+        where = {"key": null_key, "period": f"{quote(spec.period)} IS NULL"}
+        counts = RowCounts(total=int(total), values=int(values), null_keys=int(null_keys), null_periods=int(null_periods))
+        return check_row_counts(counts, spec.keys, spec.period, spec.value, lambda kind: self.example_rows(where[kind]),
+                                where="source.table / source.query")
 
     def period_expr(self) -> str:
         """SQL for the period column as arflow's period type."""

@@ -41,7 +41,7 @@ from .contract import (
 from .duckdb_target import (
     ACCURACY_VIEW, DDL_FILES, MARKER_FILE, MARKER_TABLE, STATUS_VIEW, VIEW_FILE, expected_columns,
 )
-from .identifiers import quote
+from .identifiers import key_fragments, quote
 from .postgres_connection import PgAddress, connect, detail, driver_errors, lost_connection, sqlstate
 
 #: default [publish] lock_wait_seconds and statement_timeout_seconds
@@ -127,16 +127,9 @@ def render_pg_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ..
         schema=quote(layout.schema),
         period_type=pg_type(layout.period_type),
         key_defs=",\n    ".join(f"{k} {pg_type(t)} NOT NULL" for k, t in zip(keys, layout.key_types)),
-        key_list=", ".join(keys),
-        p_key_list=", ".join(f"p.{k}" for k in keys),
-        key_join=" AND ".join(f"p.{k} = l.{k}" for k in keys),
-        f_key_join=" AND ".join(f"f.{k} = v.{k}" for k in keys),
-        s_key_list=", ".join(f"s.{k}" for k in keys),
-        v_key_list=", ".join(f"v.{k}" for k in keys),
-        xv_key_join=" AND ".join(f"x.{k} = v.{k}" for k in keys),
-        ks_key_join=" AND ".join(f"k.{k} = s.{k}" for k in keys),
         age=_age_sql(layout.period_type),
         forecast_columns=", ".join(f"f.{quote(c)}" for c in forecast_columns),
+        **key_fragments(keys),
     )
 
 
