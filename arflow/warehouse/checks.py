@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from ..errors import SchemaError, SourceError
+from .identifiers import quote
 
 #: weekday names, Monday first (index = ISO weekday - 1)
 WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
@@ -51,6 +52,27 @@ def check_row_counts(
             "filter them out with a [source] query"
         )
     return int(counts.total)
+
+
+def count_and_check_rows(
+    rows: Callable[[str], Sequence[tuple[Any, ...]]], examples: Callable[[str], str], relation: str,
+    keys: tuple[str, ...] | list[str], period: str, value: str,
+    where: str = "source.table / source.query (or the parquet files)",
+) -> int:
+    """``check_row_counts`` on counts taken by one SQL statement (standard SQL: DuckDB and PostgreSQL run it).
+
+    ``rows(sql)`` runs a statement on the source; ``examples(condition)``
+    gives a few rows of ``relation`` that match an SQL condition.
+    """
+    null_key = " OR ".join(f"{quote(k)} IS NULL" for k in keys)
+    null_period = f"{quote(period)} IS NULL"
+    total, null_keys, null_periods, values = rows(
+        f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {null_period}), "
+        f"count({quote(value)}) FROM {relation}"
+    )[0]
+    counts = RowCounts(total=int(total), values=int(values), null_keys=int(null_keys), null_periods=int(null_periods))
+    conditions = {"key": null_key, "period": null_period}
+    return check_row_counts(counts, keys, period, value, lambda kind: examples(conditions[kind]), where)
 
 
 def column_type(columns: Sequence[tuple[str, str]], column: str, role: str) -> str:

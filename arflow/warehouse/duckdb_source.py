@@ -28,7 +28,7 @@ import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError, one_line
 from ..runtime import fault_point, unwatch_connection, watch_connection
-from .checks import RowCounts, check_row_counts, check_step_frequency, column_type, period_labels
+from .checks import check_step_frequency, column_type, count_and_check_rows, period_labels
 from .contract import SourceLayout, SourceStats
 from .identifiers import quote, quote_qualified
 
@@ -392,14 +392,7 @@ class DuckDBSource:
     def check_rows(self) -> int:
         """Row count; the row checks of :mod:`arflow.warehouse.checks` (with a few offending rows as examples)."""
         spec = self.spec
-        null_key = " OR ".join(f"{quote(k)} IS NULL" for k in spec.keys)
-        total, null_keys, null_periods, values = self._sql(
-            f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL), "
-            f"count({quote(spec.value)}) FROM {self._from()}"
-        )[0]
-        where = {"key": null_key, "period": f"{quote(spec.period)} IS NULL"}
-        counts = RowCounts(total=int(total), values=int(values), null_keys=int(null_keys), null_periods=int(null_periods))
-        return check_row_counts(counts, spec.keys, spec.period, spec.value, lambda kind: self.example_rows(where[kind]))
+        return count_and_check_rows(self._sql, self.example_rows, self._from(), spec.keys, spec.period, spec.value)
 
     def latest_period(self) -> Any:
         """The latest period in the source."""

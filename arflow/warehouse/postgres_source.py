@@ -24,7 +24,7 @@ import pyarrow as pa
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
 from ..runtime import fault_point
-from .checks import RowCounts, check_row_counts, check_step_frequency, column_type, period_labels
+from .checks import check_step_frequency, column_type, count_and_check_rows, period_labels
 from .contract import SourceLayout, SourceStats
 from .duckdb_source import SourceCalendar, describe_row, parse_as_of_text
 from .identifiers import quote, quote_qualified
@@ -252,17 +252,10 @@ class PostgresSource:
         return self._layout
 
     def check_rows(self) -> int:
-        """Row count; rejects an empty source and rows with NULL keys or periods."""
+        """Row count; the row checks of :mod:`arflow.warehouse.checks` (with a few offending rows as examples)."""
         spec = self.spec
-        null_key = " OR ".join(f"{quote(k)} IS NULL" for k in spec.keys)
-        total, null_keys, null_periods, values = self._rows(
-            f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL), "
-            f"count({quote(spec.value)}) FROM {self._from()}"
-        )[0]
-        where = {"key": null_key, "period": f"{quote(spec.period)} IS NULL"}
-        counts = RowCounts(total=int(total), values=int(values), null_keys=int(null_keys), null_periods=int(null_periods))
-        return check_row_counts(counts, spec.keys, spec.period, spec.value, lambda kind: self.example_rows(where[kind]),
-                                where="source.table / source.query")
+        return count_and_check_rows(self._rows, self.example_rows, self._from(), spec.keys, spec.period, spec.value,
+                                    where="source.table / source.query")
 
     def period_expr(self) -> str:
         """SQL for the period column as arflow's period type."""
