@@ -1,4 +1,10 @@
-"""The row checks every source applies before any fitting, with their one-line messages (once, for all sources)."""
+"""The checks every source applies before any fitting, with their one-line messages (once, for all sources).
+
+Row counts (empty source, NULL values, keys and periods), the column lookup,
+integer periods against frequency "step", and how periods are labelled
+(weekday of weekly labels, period starts or ends). A source supplies its own
+SQL through small callables; the rule and the message live here.
+"""
 
 from __future__ import annotations
 
