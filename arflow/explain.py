@@ -63,10 +63,11 @@ def refuse_postgres(spec: Any, command: str) -> None:
             "published_forecasts and its gates table there, or publish the job to a DuckDB database as well")
 
 
-def _open(database: Path | None) -> duckdb.DuckDBPyConnection:
+def open_read_only(database: Path | None, command: str) -> duckdb.DuckDBPyConnection:
+    """The job's DuckDB target opened read-only for ``arflow <command>`` (a one-line error when it cannot be)."""
     if database is None:
-        raise SettingsError("arflow explain reads the job's DuckDB target; this job has no [publish] database")
-    if not database.exists():
+        raise SettingsError(f"arflow {command} reads the job's DuckDB target; this job has no [publish] database")
+    if not Path(database).exists():
         raise SourceError(f"target database {database} does not exist yet; run the job first (arflow run)")
     from .warehouse.duckdb_source import open_duckdb
 
@@ -119,7 +120,7 @@ def explain_series(spec: Any, key_values: dict[str, str], as_of: str | None = No
     s = _q(schema)
     keys = tuple(spec.source.keys)
     refuse_postgres(spec, "explain")
-    con = _open(spec.publish.database)
+    con = open_read_only(spec.publish.database, "explain")
     try:
         have = {r[0] for r in con.execute(
             "SELECT table_name FROM information_schema.tables WHERE lower(table_schema) = lower(?)", [schema]).fetchall()}
