@@ -142,3 +142,18 @@ def test_forecast_with_two_workers_prints_nothing(capfd) -> None:
     run = arflow.forecast(mixed_panel(), keys=["site"], period="month", value="reading", workers=2)
     assert run.models.height > 0
     assert capfd.readouterr() == ("", "")
+
+
+@pytest.mark.parametrize("command", [["explain", "site=s01"], ["report"]], ids=["explain", "report"])
+def test_reading_commands_refuse_a_target_not_written_yet(tmp_path: Path, capsys, command: list[str]) -> None:
+    """Both reading commands open the target through one function: the same one-line refusal, naming the command."""
+    from arflow.cli import main
+    from arflow.sample.panels import default_job
+    from helpers import write_job
+
+    sections = default_job()
+    sections["publish"]["database"] = "target.duckdb"  # the source file exists, the target not yet
+    job = write_job(tmp_path, sections)
+    assert main([command[0], str(job), *command[1:]]) == 3
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "does not exist yet; run the job first (arflow run)" in err
