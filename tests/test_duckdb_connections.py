@@ -157,3 +157,15 @@ def test_reading_commands_refuse_a_target_not_written_yet(tmp_path: Path, capsys
     assert main([command[0], str(job), *command[1:]]) == 3
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "does not exist yet; run the job first (arflow run)" in err
+
+
+@pytest.mark.parametrize("command", [["explain", "site=s01"], ["report"]], ids=["explain", "report"])
+def test_reading_commands_refuse_a_target_the_job_has_not_written(tmp_path: Path, capsys, command: list[str]) -> None:
+    """The target file exists (it is the source's) but holds no results yet: one line, exit 3, for both."""
+    from arflow.cli import main
+    from helpers import write_job
+
+    job = write_job(tmp_path)
+    assert main([command[0], str(job), *command[1:]]) == 3
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "holds no arflow results; run the job first" in err

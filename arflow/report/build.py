@@ -59,7 +59,7 @@ def _open(spec: Any) -> duckdb.DuckDBPyConnection:
     from ..explain import open_read_only, refuse_postgres
 
     refuse_postgres(spec, "report")
-    return open_read_only(spec.publish.database, "report")
+    return open_read_only(spec.publish.database, spec.publish.schema, "report")
 
 
 def _pick_run(con: duckdb.DuckDBPyConnection, s: str, job: str, as_of: str | None) -> dict[str, Any]:
