@@ -279,6 +279,15 @@ def _resolve_duplicates(
     dc, do = np.diff(codes), np.diff(ordinals)
     if np.all((dc > 0) | ((dc == 0) & (do > 0))):
         return codes, ordinals, values  # ordered without repeats
+    lo = int(ordinals.min())
+    span = int(ordinals.max()) - lo + 1
+    if int(codes.max()) < (1 << 62) // span:
+        # one integer key per (series, period); a stable sort is about linear on the nearly
+        # ordered rows a grouped read gives, unlike a four-key lexsort
+        order = np.argsort(codes * span + (ordinals - lo), kind="stable")
+        c, o = codes[order], ordinals[order]
+        if not ((c[1:] == c[:-1]) & (o[1:] == o[:-1])).any():
+            return c, o, values[order]
     # NaN sorts last; the bit pattern breaks ties between equal values (-0.0 and 0.0)
     order = np.lexsort((values.view(np.int64), values, ordinals, codes))
     c, o, v = codes[order], ordinals[order], values[order]
@@ -456,6 +465,8 @@ def forecasts_frame(keys: pl.DataFrame, res: CoreResult, codec: PeriodCodec) -> 
 
 #: one failed gate of a series: what ``series_status.failed_gates`` holds
 FAILED_GATE = pl.Struct({"gate": pl.String, "statistic": pl.Float64, "p_value": pl.Float64, "threshold": pl.Float64})
+_FAILED_GATE_ARROW = pa.struct([("gate", pa.string()), ("statistic", pa.float64()), ("p_value", pa.float64()),
+                                ("threshold", pa.float64())])
 
 
 def _status_columns(out: Any, settings: Any, G: int) -> list[pl.Series]:
@@ -471,34 +482,50 @@ def _status_columns(out: Any, settings: Any, G: int) -> list[pl.Series]:
         warn.add("worse_than_naive")
     if bt is not None and getattr(bt, "coverage_gate", "off") == "warn":
         warn.add("interval_undercoverage")
-    idx, name, stat, pval, thr, is_warn = [], [], [], [], [], []
+    gate_names, idx, code, stat, pval, thr = [], [], [], [], [], []
     for gate, row in out.gates.items():
         where = np.flatnonzero(row.applies & ~row.passed)
         if not len(where):
             continue
         idx.append(where)
-        name.append(np.full(len(where), gate, dtype=object))
+        code.append(np.full(len(where), len(gate_names), dtype=np.int32))
+        gate_names.append(gate)
         stat.append(row.statistic[where])
         pval.append(row.pvalue[where])
         thr.append(row.threshold[where])
-        is_warn.append(np.full(len(where), gate in warn))
-    failed: list[list[dict] | None] = [[] for _ in range(G)]
-    warnings: list[list[str]] = [[] for _ in range(G)]
-    if idx:
-        cat = np.concatenate
-        for i, g, st, pv, th, w in zip(cat(idx).tolist(), cat(name).tolist(), cat(stat).tolist(), cat(pval).tolist(),
-                                       cat(thr).tolist(), cat(is_warn).tolist()):
-            entry = {"gate": g, "statistic": _finite_or_none(st), "p_value": _finite_or_none(pv),
-                     "threshold": _finite_or_none(th)}
-            failed[i].append(entry)
-            if w:
-                warnings[i].append(g)
+    if not idx:
+        empty = np.zeros(G + 1, dtype=np.int32)
+        return [pl.Series("failed_gates", pa.ListArray.from_arrays(
+                    _arrow(empty, pa.int32()), pa.array([], type=_FAILED_GATE_ARROW))),
+                pl.Series("warnings", pa.ListArray.from_arrays(_arrow(empty, pa.int32()), pa.array([], pa.string())))]
+    # one row per failed gate; a stable sort by series keeps the gates' own order within a series
+    rows = np.concatenate(idx)
+    order = np.argsort(rows, kind="stable")
+    rows, code = rows[order], np.concatenate(code)[order]
+    # polars, not pyarrow.compute (whose import costs a worker over half a second)
+    names = pl.Series("gate", gate_names, dtype=pl.String)[code]
+    struct = pl.DataFrame([
+        names, _finite(np.concatenate(stat)[order]).alias("statistic"),
+        _finite(np.concatenate(pval)[order]).alias("p_value"), _finite(np.concatenate(thr)[order]).alias("threshold"),
+    ]).to_struct("failed").to_arrow()
+    failed = pa.ListArray.from_arrays(_arrow(_offsets(rows, G), pa.int32()), struct)
+    is_warn = np.isin(code, [i for i, g in enumerate(gate_names) if g in warn])
+    warned = pa.ListArray.from_arrays(_arrow(_offsets(rows[is_warn], G), pa.int32()), names.filter(is_warn).to_arrow())
     return [pl.Series("failed_gates", failed, dtype=pl.List(FAILED_GATE)),
-            pl.Series("warnings", warnings, dtype=pl.List(pl.String))]
+            pl.Series("warnings", warned, dtype=pl.List(pl.String))]
 
 
-def _finite_or_none(v: float) -> float | None:
-    return v if np.isfinite(v) else None
+def _offsets(rows: np.ndarray, G: int) -> np.ndarray:
+    """List offsets (G + 1) for sorted row indices in 0..G-1."""
+    offsets = np.zeros(G + 1, dtype=np.int32)
+    np.cumsum(np.bincount(rows, minlength=G), out=offsets[1:])
+    return offsets
+
+
+def _finite(values: np.ndarray) -> pl.Series:
+    """Floats with every non-finite value null."""
+    v = np.where(np.isfinite(values), values, np.nan)
+    return pl.Series(np.ascontiguousarray(v, dtype=np.float64)).fill_nan(None)
 
 
 def _outlier_columns(res: CoreResult, codec) -> list[pl.Series]:

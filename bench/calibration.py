@@ -1,6 +1,7 @@
 """Measured false-rejection and detection rates of the gates and policies (fixed seeds).
 
-    python bench/calibration.py [--series 2000] [--length 120] [--part all|gates|decisions]
+    python bench/calibration.py [--series 2000] [--length 120]
+                                [--part all|gates|decisions|coverage|outliers|coverage-gate]
 
 Prints tables: for each check, the data it was run on, what it should do, and
 the measured rate. The README's "Measured rates" section quotes these numbers;
@@ -15,7 +16,8 @@ import time
 import numpy as np
 
 from arflow.core.gates import REASONS
-from arflow.sample.simulate import random_walks, simulate_ar as simulate, to_panel as panel_of
+from arflow.sample.simulate import interval_coverage as shared_coverage, outlier_rates, random_walks
+from arflow.sample.simulate import simulate_ar as simulate, to_panel as panel_of
 from arflow.core.pipeline import run_core
 from arflow.settings import BacktestSettings, GateSettings, ModelSettings, Settings
 
@@ -132,7 +134,7 @@ def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--series", type=int, default=2000)
     ap.add_argument("--length", type=int, default=120)
-    ap.add_argument("--part", choices=("all", "gates", "decisions"), default="all")
+    ap.add_argument("--part", choices=("all", "gates", "decisions", "coverage", "outliers", "coverage-gate"), default="all")
     a = ap.parse_args()
     G, T = a.series, a.length
     t0 = time.perf_counter()
@@ -150,11 +152,14 @@ def main() -> None:
         print(f"{'case':<64} {'target':<10} {'rejected':>8}")
         for case, target, v in residual_table(G):
             print(f"{case:<64} {target:<10} {v:>8.1%}")
+    if a.part in ("all", "coverage"):
+        print_coverage(G)
+    if a.part in ("all", "outliers"):
+        print_outliers(G)
+    if a.part in ("all", "coverage-gate"):
+        print_coverage_gate(G)
     print(f"\n{time.perf_counter() - t0:.0f} s")
 
-
-if __name__ == "__main__":
-    main()
 
 
 # ---- prediction-interval coverage and outlier detection (separate from the table above) -----------------
@@ -162,27 +167,14 @@ if __name__ == "__main__":
 
 def interval_coverage(Y: np.ndarray, n: int, frequency: str = "month", steps=(1, 12), parameter_uncertainty: bool = True,
                       model: ModelSettings | None = None, selection_uncertainty: bool = True) -> dict:
-    """Empirical coverage of the published intervals: fit on the first ``n`` points, score the next ``max(steps)``.
+    """Coverage of the published intervals (:func:`arflow.sample.simulate.interval_coverage`) with these settings."""
+    from arflow.settings import ForecastSettings
 
-    Returns {(level, step): share of series whose actual fell inside}, over all fitted series
-    (whatever transform the pipeline chose for them; gates are not applied).
-    """
-    from arflow.settings import BacktestSettings, ForecastSettings
-
-    H = max(steps)
     s = Settings(frequency=frequency, model=model or ModelSettings(),
-                 forecast=ForecastSettings(horizon=H, parameter_uncertainty=parameter_uncertainty,
+                 forecast=ForecastSettings(horizon=max(steps), parameter_uncertainty=parameter_uncertainty,
                                            selection_uncertainty=selection_uncertainty),
                  backtest=BacktestSettings(enabled=False))
-    r = run_core(panel_of(Y[:, :n]), s)
-    ok = r.fit.fitted
-    out = {}
-    for ci, level in enumerate(r.forecasts.coverage):
-        for h in steps:
-            a = Y[:, n + h - 1]
-            inside = (a >= r.forecasts.lower[ci, :, h - 1]) & (a <= r.forecasts.upper[ci, :, h - 1])
-            out[(level, h)] = float(inside[ok].mean())
-    return out
+    return shared_coverage(Y, n, s, steps)
 
 
 COVERAGE_CASES = [
@@ -239,28 +231,6 @@ OUTLIER_CASES = [
 ]
 
 
-def outlier_rates(Y: np.ndarray, frequency: str, size: float = 8.0, seed: int = 0) -> tuple[float, float]:
-    """(false-flag rate on the clean series, detection rate of one planted additive outlier).
-
-    The outlier (``size`` innovation standard deviations, random sign) is added at one period drawn
-    uniformly from the last three quarters of each series; "caught" means that period is flagged.
-    """
-    G, T = Y.shape
-    s = Settings(frequency=frequency, backtest=BacktestSettings(enabled=False))
-    clean = run_core(panel_of(Y), s)
-    ok = clean.fit.fitted
-    false = float((clean.outliers.count[ok] > 0).mean())
-    rng = np.random.default_rng(seed)
-    t = rng.integers(T // 4, T, size=G)
-    Z = Y.copy()
-    Z[np.arange(G), t] += size * rng.choice([-1.0, 1.0], size=G)
-    r = run_core(panel_of(Z), s)
-    W = r.outliers.effect.shape[1]
-    col = t - T + W
-    caught = np.isfinite(r.outliers.effect[np.arange(G), col])
-    return false, float(caught[r.fit.fitted].mean())
-
-
 def outlier_table(G: int = 2000, seed: int = 700) -> list[tuple]:
     rows = []
     for k, (label, freq, gen, T) in enumerate(OUTLIER_CASES):
@@ -296,7 +266,4 @@ def print_coverage_gate(G: int = 2000) -> None:
 
 
 if __name__ == "__main__":
-    # the coverage table alone: python -c "import sys; sys.path.insert(0, 'bench'); import calibration as c; c.print_coverage()"
-    print_coverage()
-    print_outliers()
-    print_coverage_gate()
+    main()

@@ -41,19 +41,8 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
-
-SHORTCUT_SQL = """
-CREATE OR REPLACE TABLE shortcut_forecasts AS
-WITH lagged AS (
-    SELECT site, period, value, lag(value) OVER (PARTITION BY site ORDER BY period) AS prev
-    FROM readings
-), fits AS (
-    SELECT site, regr_slope(value, prev) AS b1, regr_intercept(value, prev) AS b0,
-           max(period) AS last_period, arg_max(value, period) AS last_value
-    FROM lagged WHERE prev IS NOT NULL GROUP BY site
-)
-SELECT site, last_period + INTERVAL 1 MONTH AS period, b0 + b1 * last_value AS forecast FROM fits
-"""
+sys.path.insert(0, str(HERE))
+from bench_warehouse import build_warehouse, run_shortcut  # noqa: E402  (shared with the other benchmarks)
 
 JOB = """\
 [job]
@@ -72,30 +61,6 @@ database = "{out}"
 {extra}"""
 
 
-def build_warehouse(path: Path, G: int, T: int, season: int, block: int = 100_000) -> None:
-    import duckdb
-    import pyarrow as pa
-
-    from arflow.sample.simulate import mixed_monthly, mixed_seasonal
-
-    unit = "M" if season == 12 else "W"
-    start = np.datetime64("2015-01", "M") if unit == "M" else np.datetime64("2015-01-05", "D")
-    periods = (start + np.arange(T)).astype("datetime64[D]") if unit == "M" else start + 7 * np.arange(T)
-    con = duckdb.connect(str(path))
-    con.execute("CREATE TABLE readings (site VARCHAR, period DATE, value DOUBLE)")
-    for b0 in range(0, G, block):
-        g = min(block, G - b0)
-        seed = 1000 + b0 // block
-        Y = mixed_monthly(g, T, seed=seed, level=500.0) if season == 12 else mixed_seasonal(g, T, season, seed, 500.0)
-        ids = np.char.add("site-", np.char.zfill(np.arange(b0, b0 + g).astype(str), 7))
-        tbl = pa.table({"site": pa.array(np.repeat(ids, T)), "period": pa.array(np.tile(periods, g)),
-                        "value": pa.array(Y.ravel())})
-        con.register("chunk", tbl)
-        con.execute("INSERT INTO readings SELECT * FROM chunk")
-        con.unregister("chunk")
-    con.close()
-
-
 def task(kind: str, db: str, workdir: str, frequency: str) -> dict:
     """One timed task (runs in its own subprocess)."""
     t0 = time.perf_counter()
@@ -103,13 +68,7 @@ def task(kind: str, db: str, workdir: str, frequency: str) -> dict:
     if kind == "profile":
         return profile(db, workdir, frequency)
     if kind == "sql":
-        import duckdb
-
-        con = duckdb.connect(db)
-        con.execute(SHORTCUT_SQL)
-        extra = {"rows": con.execute("SELECT count(*) FROM shortcut_forecasts").fetchone()[0]}
-        con.execute("DROP TABLE shortcut_forecasts")
-        con.close()
+        extra = {"rows": run_shortcut(db)}
     else:
         from arflow.job import run_job
         from arflow.job_file import load_job

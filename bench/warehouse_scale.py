@@ -36,6 +36,9 @@ import numpy as np
 
 from arflow.sample.simulate import mixed_monthly
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_warehouse import build_warehouse, run_shortcut  # noqa: E402,F401  (re-exported for the other benchmarks)
+
 HERE = Path(__file__).resolve().parent
 
 
@@ -43,29 +46,6 @@ def peak_mib() -> float:
     own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     return (own + kids) / 1024.0  # own peak + the largest child's peak (an upper bound)
-
-
-def build_warehouse(path: Path, G: int, T: int, block: int = 100_000) -> None:
-    import duckdb
-    import pyarrow as pa
-
-    start = np.datetime64("2015-01", "M")
-    months = (start + np.arange(T)).astype("datetime64[D]")
-    con = duckdb.connect(str(path))
-    con.execute("CREATE TABLE readings (site VARCHAR, period DATE, value DOUBLE)")
-    for b0 in range(0, G, block):
-        g = min(block, G - b0)
-        Y = mixed_monthly(g, T, seed=1000 + b0 // block, level=500.0)
-        ids = np.char.add("site-", np.char.zfill(np.arange(b0, b0 + g).astype(str), 7))
-        tbl = pa.table({
-            "site": pa.array(np.repeat(ids, T)),
-            "period": pa.array(np.tile(months, g)),
-            "value": pa.array(Y.ravel()),
-        })
-        con.register("chunk", tbl)
-        con.execute("INSERT INTO readings SELECT * FROM chunk")
-        con.unregister("chunk")
-    con.close()
 
 
 JOB = """\
@@ -100,20 +80,6 @@ chunk_series = {chunk}
 workers = {workers}
 """
 
-SHORTCUT_SQL = """
-CREATE OR REPLACE TABLE shortcut_forecasts AS
-WITH lagged AS (
-    SELECT site, period, value, lag(value) OVER (PARTITION BY site ORDER BY period) AS prev
-    FROM readings
-), fits AS (
-    SELECT site, regr_slope(value, prev) AS b1, regr_intercept(value, prev) AS b0,
-           max(period) AS last_period, arg_max(value, period) AS last_value
-    FROM lagged WHERE prev IS NOT NULL GROUP BY site
-)
-SELECT site, last_period + INTERVAL 1 MONTH AS period, b0 + b1 * last_value AS forecast FROM fits
-"""
-
-
 def task(kind: str, db: str, workdir: str, workers: int, chunk: int, backtest: bool = False) -> dict:
     import duckdb
 
@@ -131,11 +97,7 @@ def task(kind: str, db: str, workdir: str, workers: int, chunk: int, backtest: b
         extra = {"published": outcome.series_published, "series": outcome.series_total,
                  "phases": dict(getattr(outcome, "phase_seconds", {}) or {})}
     elif kind == "sql":
-        con = duckdb.connect(db)
-        con.execute(SHORTCUT_SQL)
-        extra = {"rows": con.execute("SELECT count(*) FROM shortcut_forecasts").fetchone()[0]}
-        con.execute("DROP TABLE shortcut_forecasts")
-        con.close()
+        extra = {"rows": run_shortcut(db)}
     elif kind == "scan":
         con = duckdb.connect(db, read_only=True)
         extra = {"groups": len(con.execute(

@@ -1,4 +1,6 @@
-"""Seeded simulators of AR panels, shared by the benchmarks, the calibration tests and the demo tools.
+"""Seeded simulators of AR panels, shared by the benchmarks, the calibration tests and the demo tools,
+and the two measurements the interval and outlier calibration repeat (coverage of published intervals,
+false-flag and detection rates of the outlier step).
 
 Everything is vectorised over series (the loop runs over time only).
 
@@ -76,3 +78,45 @@ def right_align(rows: list[np.ndarray], T: int | None = None) -> np.ndarray:
         if len(r):
             out[g, T - len(r) :] = r
     return out
+
+
+def interval_coverage(Y: np.ndarray, n: int, settings, steps=(1, 12)) -> dict:
+    """Empirical coverage of the core's intervals: fit on the first ``n`` columns of ``Y``, score the next ``max(steps)``.
+
+    Returns {(level, step): share of fitted series whose actual at ``n + step - 1`` fell inside},
+    whatever transform the pipeline chose for each series (gates are not applied).
+    """
+    from arflow.core.pipeline import run_core
+
+    r = run_core(to_panel(Y[:, :n]), settings)
+    ok = r.fit.fitted
+    out = {}
+    for ci, level in enumerate(r.forecasts.coverage):
+        for h in steps:
+            a = Y[:, n + h - 1]
+            inside = (a >= r.forecasts.lower[ci, :, h - 1]) & (a <= r.forecasts.upper[ci, :, h - 1])
+            out[(level, h)] = float(inside[ok].mean())
+    return out
+
+
+def outlier_rates(Y: np.ndarray, frequency: str, size: float = 8.0, seed: int = 0) -> tuple[float, float]:
+    """(false-flag rate on the clean series, detection rate of one planted additive outlier), defaults, no backtest.
+
+    The outlier (``size`` innovation standard deviations, random sign) is added at one period drawn
+    uniformly from the last three quarters of each series; "caught" means that period is flagged.
+    """
+    from arflow.core.pipeline import run_core
+    from arflow.settings import BacktestSettings, Settings
+
+    G, T = Y.shape
+    s = Settings(frequency=frequency, backtest=BacktestSettings(enabled=False))
+    clean = run_core(to_panel(Y), s)
+    false = float((clean.outliers.count[clean.fit.fitted] > 0).mean())
+    rng = np.random.default_rng(seed)
+    t = rng.integers(T // 4, T, size=G)
+    Z = Y.copy()
+    Z[np.arange(G), t] += size * rng.choice([-1.0, 1.0], size=G)
+    r = run_core(to_panel(Z), s)
+    W = r.outliers.effect.shape[1]
+    caught = np.isfinite(r.outliers.effect[np.arange(G), t - T + W])
+    return false, float(caught[r.fit.fitted].mean())

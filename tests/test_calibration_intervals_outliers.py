@@ -22,7 +22,7 @@ from arflow.core.distributions import binom_cdf, t_ppf
 from arflow.core.gates import REASONS
 from arflow.core.pipeline import run_core
 from arflow.errors import SettingsError
-from arflow.sample.simulate import random_walks, simulate_ar, to_panel
+from arflow.sample.simulate import interval_coverage, outlier_rates, random_walks, simulate_ar, to_panel
 from arflow.settings import BacktestSettings, ForecastSettings, ModelSettings, Settings
 
 NO_BT = BacktestSettings(enabled=False)
@@ -31,17 +31,7 @@ NO_BT = BacktestSettings(enabled=False)
 # ------------------------------------------------------------------------------------ helpers
 
 
-def coverage(Y: np.ndarray, n: int, settings: Settings, steps=(1, 12)) -> dict:
-    """Share of fitted series whose actual at n + h - 1 falls inside the interval fitted on the first n."""
-    r = run_core(to_panel(Y[:, :n]), settings)
-    ok = r.fit.fitted
-    out = {}
-    for ci, level in enumerate(r.forecasts.coverage):
-        for h in steps:
-            a = Y[:, n + h - 1]
-            inside = (a >= r.forecasts.lower[ci, :, h - 1]) & (a <= r.forecasts.upper[ci, :, h - 1])
-            out[(level, h)] = float(inside[ok].mean())
-    return out
+coverage = interval_coverage  # arflow.sample.simulate: the one coverage measurement
 
 
 def chain(b0: float, phi: np.ndarray, hist: np.ndarray, H: int) -> np.ndarray:
@@ -268,34 +258,19 @@ def test_a_huge_spike_is_treated_reported_or_quarantined():
     assert q.models["decision"][0] == "quarantined" and "outliers" in q.models["reasons"][0]
 
 
-def _rates(Y: np.ndarray, frequency: str, seed: int) -> tuple[float, float]:
-    G, T = Y.shape
-    s = Settings(frequency=frequency, backtest=NO_BT)
-    clean = run_core(to_panel(Y), s)
-    false = float((clean.outliers.count[clean.fit.fitted] > 0).mean())
-    rng = np.random.default_rng(seed)
-    t = rng.integers(T // 4, T, size=G)
-    Z = Y.copy()
-    Z[np.arange(G), t] += 8.0 * rng.choice([-1.0, 1.0], size=G)
-    r = run_core(to_panel(Z), s)
-    W = r.outliers.effect.shape[1]
-    caught = np.isfinite(r.outliers.effect[np.arange(G), t - T + W])
-    return false, float(caught[r.fit.fitted].mean())
-
-
 @pytest.mark.slow
 def test_outlier_detection_and_false_flag_rates():
     # acceptance: an additive outlier of 8 innovation SDs is caught in >= 95% of clean AR series of
     # 120 points; clean Gaussian series are flagged in at most 2% (the detector's level is 1% per
     # series; measured 0.2-0.9%, bench/calibration.py). Lower bounds guard against a dead detector.
-    false, caught = _rates(simulate_ar({1: 0.5}, 1500, 120, 71), "month", 72)
+    false, caught = outlier_rates(simulate_ar({1: 0.5}, 1500, 120, 71), "month", seed=72)
     assert 0.001 <= false <= 0.02 and caught >= 0.95
-    false, caught = _rates(simulate_ar({1: 0.0}, 1500, 120, 73), "month", 74)
+    false, caught = outlier_rates(simulate_ar({1: 0.0}, 1500, 120, 73), "month", seed=74)
     assert 0.001 <= false <= 0.02 and caught >= 0.95
-    false, _ = _rates(simulate_ar({1: 0.3, 12: 0.5}, 1500, 120, 75), "month", 76)
+    false, _ = outlier_rates(simulate_ar({1: 0.3, 12: 0.5}, 1500, 120, 75), "month", seed=76)
     assert false <= 0.02
     for T, seed in ((30, 77), (60, 78)):
-        false, _ = _rates(simulate_ar({1: 0.5}, 1500, T, seed), "month", seed + 100)
+        false, _ = outlier_rates(simulate_ar({1: 0.5}, 1500, T, seed), "month", seed=seed + 100)
         assert false <= 0.02
 
 

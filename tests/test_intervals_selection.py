@@ -17,7 +17,7 @@ import scipy.stats
 from arflow.core import autoreg, intervals
 from arflow.core.pipeline import run_core
 from arflow.errors import SettingsError
-from arflow.sample.simulate import random_walks, simulate_ar, to_panel
+from arflow.sample.simulate import interval_coverage, random_walks, simulate_ar, to_panel
 from arflow.settings import BacktestSettings, ForecastSettings, ModelSettings, Settings
 
 NO_BT = BacktestSettings(enabled=False)
@@ -26,17 +26,7 @@ BAND = 0.02 + 1e-9
 DEFAULTS = Settings(forecast=ForecastSettings(horizon=12), backtest=NO_BT)
 
 
-def coverage(Y: np.ndarray, n: int, settings: Settings, steps=(1, 12)) -> dict:
-    """Share of fitted series whose actual at n + h - 1 falls inside the interval fitted on the first n."""
-    r = run_core(to_panel(Y[:, :n]), settings)
-    ok = r.fit.fitted
-    out = {}
-    for ci, level in enumerate(r.forecasts.coverage):
-        for h in steps:
-            a = Y[:, n + h - 1]
-            inside = (a >= r.forecasts.lower[ci, :, h - 1]) & (a <= r.forecasts.upper[ci, :, h - 1])
-            out[(level, h)] = float(inside[ok].mean())
-    return out
+coverage = interval_coverage  # arflow.sample.simulate: the one coverage measurement
 
 
 # ------------------------------------------------------------------------ small-sample bias
@@ -164,16 +154,40 @@ def test_default_coverage_is_within_two_points(label, gen, n, freq, seed):
 
 @pytest.mark.slow
 def test_random_walk_coverage_short_series():
-    # Random walks of 40 and 60 points: one step is within 2 points. At 12 steps the intervals
-    # fall short of the 2-point band: measured with these seeds 73.9% / 89.5% (80% / 95%) at 40
-    # points (before: 70.9% / 87.5%) and 77.6% / 92.8% at 60 (before: 74.2% / 90.8%).
-    # Why: about 15% of walks of 40 points (7% at 60) look mean-reverting (the unit-root rule keeps
-    # them on levels and every criterion favours the level model) and their 12-step intervals cover
-    # about 43-50%. Giving the difference candidates more weight (a penalty of 4 on the level
-    # candidates' criterion) reaches 76.7% / 92.8% at 40 points but over-covers stationary AR(1)
-    # 0.9 and AR(2) series of the same length by 4-7 points (measured), so the bounds asserted are
-    # what is measured (README, "Measured rates").
-    for n, seed, floor in ((40, 607, (0.73, 0.885)), (60, 611, (0.765, 0.92))):
+    # Random walks of 40 and 60 points: one step is within 2 points. At 12 steps the 80% interval
+    # stays short of the 2-point band. Measured with these seeds: 76.1% / 91.2% (80% / 95%) at 40
+    # points and 77.9% / 93.2% at 60 (before the persistence guard read the contiguous refit:
+    # 73.9% / 89.5% and 77.6% / 92.8%; before the selection-aware intervals 70.9% / 87.5% and
+    # 74.2% / 90.8%). Why: about 11% of walks of 40 points (6% at 60) still look mean-reverting
+    # (ADF rejects, or the sum of coefficients is below the 0.67 floor) and their 12-step
+    # intervals cover about 41% (80%); the stationary AR(1) 0.9 and AR(2) rows of the same
+    # length, which such walks cannot be told from, already sit at 80.8% / 95.7% and
+    # 79.9% / 93.4%, so widening those level intervals further would push them out of the band
+    # (a penalty of 4 on the level candidates' criterion over-covered them by 4-7 points; the
+    # posterior information criterion's data-based penalty, Phillips & Ploberger 1994, moved the
+    # walks by less than 0.1 point). The bounds asserted are what is measured (README,
+    # "Measured rates").
+    for n, seed, floor in ((40, 607, (0.755, 0.905)), (60, 611, (0.77, 0.925))):
         c = coverage(random_walks(2000, n + 12, seed), n, DEFAULTS)
         assert abs(c[(0.8, 1)] - 0.8) <= BAND and abs(c[(0.95, 1)] - 0.95) <= BAND, (n, c)
         assert floor[0] <= c[(0.8, 12)] <= 0.82 and floor[1] <= c[(0.95, 12)] <= 0.97, (n, c)
+
+
+def test_a_seasonal_lag_selected_on_a_walk_does_not_keep_it_on_levels():
+    # A seasonal lag selected by chance on a random walk's levels takes a negative coefficient
+    # (y(t-12) stands in for part of y(t-1)), which pulled the sum of coefficients below the
+    # persistence floor: 16% of 40-point walks stayed on levels (measured at 4,000 series), and
+    # their 12-step intervals covered 43%. The guard, like the ADF test, now passes when either
+    # the model or its contiguous refit passes it (pipeline.unit_root_decision).
+    from arflow.core import pipeline
+
+    Y = random_walks(1000, 40, 607)
+    r = run_core(to_panel(Y), Settings(backtest=NO_BT))
+    assert r.differenced[r.fit.fitted].mean() >= 0.86
+    fit = autoreg.fit_ar(Y, order="auto", max_order=8, criterion="bic", seasonal_lag=12)
+    neg12 = fit.fitted & fit.lag_mask[:, list(fit.lags).index(12)] & (fit.coef[:, list(fit.lags).index(12)] < 0)
+    assert neg12.sum() >= 30  # the case exists at this seed
+    kw = dict(order="auto", max_order=8, criterion="bic", seasonal_lag=12, seasonal_alpha=0.05)
+    u = pipeline.unit_root_decision(Y, fit, Settings().model, kw)
+    assert (u.persistence[neg12] < 0.67).mean() > 0.5  # the raw sum alone would fail the floor
+    assert u.candidates[neg12].mean() >= 0.6

@@ -180,11 +180,11 @@ def candidate_interval(
         b0[r_] = np.nan_to_num(sol.intercept)
         phi_ols[r_], b0_ols[r_] = phi[r_], b0[r_]
         if bias_correction:
-            for p in np.unique(p_row[r_]):
-                q = r_[(p_row[r_] == p) & ~has_s[rows[r_]]]
-                if p >= 1 and q.size:
-                    sub = np.searchsorted(r_, q)
-                    phi[q], b0[q] = _bias_corrected(phi[q], gr.ymean[sub], gr.xmean[sub], lags, int(p), m_row[q])
+            # every order at once: each row's bias map padded to the block's widest order
+            q = r_[(p_row[r_] >= 1) & ~has_s[rows[r_]]]
+            if q.size:
+                sub = np.searchsorted(r_, q)
+                phi[q], b0[q] = _bias_corrected(phi[q], gr.ymean[sub], gr.xmean[sub], lags, p_row[q], m_row[q])
     hist_l = _last(Y, L)[rows]
     hist_d = _last(D, L)[rows]
     hist = np.where(dif[:, None], hist_d, hist_l)
@@ -241,9 +241,9 @@ def _grams(Y: np.ndarray, lags: np.ndarray, w: np.ndarray, differences: bool) ->
     """
     need = np.unique(np.concatenate([lags, lags + 1])) if differences else np.asarray(lags)
     ZT, shift = autoreg.shifted_lag_stack(Y, need)
-    ZTw = ZT * w[:, None, :]
-    S = np.matmul(ZTw, np.swapaxes(ZT, 1, 2))
-    tot = ZTw.sum(axis=2)
+    ZT *= w[:, None, :]  # 0/1 weights: masking one factor in place is masking both (no weighted copy)
+    S = np.matmul(ZT, np.swapaxes(ZT, 1, 2))
+    tot = ZT.sum(axis=2)
     n = w.sum(axis=1)
     R, K = len(need) + 1, len(lags)
     row = {int(j): i for i, j in enumerate(need)}
@@ -320,32 +320,49 @@ def bias_map(p: int) -> tuple[np.ndarray, np.ndarray]:
     return c, M
 
 
-def _bias_corrected(phi: np.ndarray, ybar: np.ndarray, xbar: np.ndarray, lags: np.ndarray, p: int, m: np.ndarray):
-    """Bias-corrected lags 1..p of ``phi`` (R, L) and the intercept that keeps the sample means.
+def _bias_corrected(phi: np.ndarray, ybar: np.ndarray, xbar: np.ndarray, lags: np.ndarray, p: np.ndarray,
+                    m: np.ndarray):
+    """Bias-corrected lags 1..p_r of each row of ``phi`` (R, L) and the intercept that keeps the sample means.
 
-    ``phi_bc = phi + (c + M phi) / m`` (:func:`bias_map`); where that is not
+    ``phi_bc = phi + (c + M phi) / m`` (:func:`bias_map` of each row's order
+    ``p`` (R,), padded with zeros to the widest); where that is not
     stationary the correction is halved until it is (Kilian 1998, REStat 80,
     218-230, shrinks it the same way), and dropped after eight halvings. The
     intercept follows the OLS identity ``b0 = ybar - sum_j phi_j xbar_j`` with
     the response's and lag columns' sample means (``ybar`` (R,), ``xbar`` (R, K)).
     """
-    c, M = bias_map(p)
+    p = np.broadcast_to(np.asarray(p, dtype=np.int64), (phi.shape[0],))
+    W = int(p.max(initial=0))
+    cs, Ms = _padded_bias_maps(W)
+    c, M = cs[p], Ms[p]  # (R, W), (R, W, W); zero beyond each row's order
     with np.errstate(divide="ignore", invalid="ignore"):
-        delta = (c[None, :] + phi[:, :p] @ M.T) / m[:, None]
+        delta = (c + np.einsum("rij,rj->ri", M, phi[:, :W])) / m[:, None]
     delta = np.where(np.isfinite(delta), delta, 0.0)
+    check = np.arange(phi.shape[0])  # only rows whose correction changed are checked again
     for it in range(9):
-        new = phi[:, :p] + delta
-        risky = np.flatnonzero(np.abs(new).sum(axis=1) >= MAX_MODULUS)  # sum |phi| < 1: stationary
+        new = phi[check, :W] + delta[check]
+        risky = check[np.abs(new).sum(axis=1) >= MAX_MODULUS]  # sum |phi| < 1: stationary
         if not risky.size:
             break
-        bad = risky[autoreg.max_root_modulus(new[risky], np.full(risky.size, p)) >= MAX_MODULUS]
+        bad = risky[autoreg.max_root_modulus(phi[risky, :W] + delta[risky], p[risky]) >= MAX_MODULUS]
         if not bad.size:
             break
         delta[bad] *= 0.5 if it < 8 else 0.0
+        check = bad
     out = phi.copy()
-    out[:, :p] += delta
+    out[:, :W] += delta
     b0 = ybar - np.einsum("rk,rk->r", out[:, lags - 1], xbar)
     return out, np.nan_to_num(b0)
+
+
+@functools.lru_cache(maxsize=None)
+def _padded_bias_maps(W: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`bias_map` of orders 0..W stacked, zero-padded to width W: (W+1, W) and (W+1, W, W)."""
+    cs, Ms = np.zeros((W + 1, W)), np.zeros((W + 1, W, W))
+    for p in range(1, W + 1):
+        c, M = bias_map(p)
+        cs[p, :p], Ms[p, :p, :p] = c, M
+    return cs, Ms
 
 
 #: a bias correction may not push the largest root beyond this modulus

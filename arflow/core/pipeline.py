@@ -195,7 +195,8 @@ class UnitRootDecision:
     """The unit-root decision per series (arrays (G,)) and the evidence behind it.
 
     ``adf``: the contiguous-lag ADF test used; ``persistence``: sum of the
-    level model's AR coefficients, against ``persistence_threshold``;
+    level model's AR coefficients, against ``persistence_threshold`` (for a
+    model with a gap the larger of it and its contiguous refit's is compared);
     ``lr_statistic``: the level model's advantage over the difference
     candidate (NaN where that comparison was not needed), against
     ``lr_threshold``. ``difference_fit`` holds the difference candidates of
@@ -234,7 +235,11 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
        normalised-bias bound (about the 1% point of ``n (rho - 1)``, Fuller
        1996); the floor keeps the guard from vanishing as n approaches
        ``unit_root_bias``: a short series with persistence 0.4 is not called a
-       random walk however little power ADF has at 24 points.
+       random walk however little power ADF has at 24 points. For a model with
+       a gap the guard, like the test in 1., is passed when either form (the
+       model or its contiguous AR(p >= 1) refit) passes it: a seasonal lag
+       selected on a random walk's levels takes a negative coefficient and
+       pulled the sum of about one 40-point walk in seven below the floor.
     3. **The difference candidate is not clearly worse than the level
        model.** Both are fitted (each with its own selected lags) and compared
        on the observations both explain, as models of y_t:
@@ -261,10 +266,19 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
     adf = adf_from_fit(fit)
     maxlag = np.max(np.where(fit.lag_mask, fit.lags[None, :], 0), axis=1)
     aux = fit.fitted & (maxlag != fit.n_lags) | (fit.fitted & (fit.n_lags == 0))
+    persistence = np.where(fit.fitted, np.nansum(fit.coef, axis=1), np.nan)
+    guard = persistence.copy()
     if aux.any():
         idx = np.flatnonzero(aux)
         kw = dict(fit_kw, seasonal_lag=None)
-        sub = adf_from_fit(autoreg.fit_ar(Y[idx], min_order=1, **kw))
+        sfit = autoreg.fit_ar(Y[idx], min_order=1, **kw)
+        sub = adf_from_fit(sfit)
+        # the persistence guard, like the test, is passed when either form passes it: a seasonal
+        # lag selected on the levels of a random walk takes a negative coefficient (y_(t-12)
+        # stands in for part of y_(t-1)) and pulled the sum of coefficients of about one walk
+        # in seven at 40 points below the floor
+        sp = np.where(sfit.fitted, np.nansum(sfit.coef, axis=1), np.nan)
+        guard[idx] = np.where(np.isfinite(sp) & ~(guard[idx] >= sp), sp, guard[idx])
         # a model with a gap: both forms are valid augmentations under a unit root (the
         # restricted one carries the seasonal dynamics, the contiguous one is free of the
         # seasonal pre-test); a unit root is rejected only when both reject, and the less
@@ -275,11 +289,10 @@ def unit_root_decision(Y: np.ndarray, fit: autoreg.ARFit, ms, fit_kw: dict) -> U
         adf = _splice_adf(adf, unitroot.AdfResult(*(getattr(sub, f.name)[keep] for f in fields(unitroot.AdfResult))),
                           idx[keep])
     # ---- 2. persistence guard
-    persistence = np.where(fit.fitted, np.nansum(fit.coef, axis=1), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
         threshold = np.maximum(1.0 - ms.unit_root_bias / np.maximum(fit.n_obs, 1), ms.unit_root_min_persistence)
         crit = unitroot.finite_sample_crit(alpha, np.where(adf.nobs > 0, adf.nobs, np.nan), "c")
-        candidates = fit.fitted & (adf.statistic > crit) & (persistence >= threshold)
+        candidates = fit.fitted & (adf.statistic > crit) & (guard >= threshold)
     # ---- 3. level model vs difference candidate on a common sample
     tau = unitroot.mackinnon_quantile(alpha, "c")
     lr = np.full(G, np.nan)

@@ -31,6 +31,7 @@ from ..runtime import fault_point, unwatch_connection, watch_connection
 from .checks import check_step_frequency, column_type, count_and_check_rows, period_labels
 from .contract import SourceLayout, SourceStats
 from .identifiers import quote, quote_qualified
+from .key_ranges import range_predicate, range_starts, ranges
 
 _INTEGER_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT", "HUGEINT", "UHUGEINT"}
 _FLOAT_TYPES = {"FLOAT", "DOUBLE", "REAL"}
@@ -493,15 +494,50 @@ class DuckDBSource:
             self.con.unregister("arflow_wanted")
 
     def chunks(self, as_of: Any, chunk_series: int, batch_rows: int = 8_192) -> Iterator[pl.DataFrame]:
-        """Rows at or before ``as_of``, grouped by series, in chunks of about ``chunk_series`` whole series.
+        """Rows at or before ``as_of``, in chunks of ``chunk_series`` whole series ordered by key.
 
-        DuckDB groups the rows by key with a hash aggregate (``list()`` of
-        periods and values per series) instead of sorting the whole table, and
-        orders only the series (so chunks, and every number, are the same on
-        every run); each chunk is expanded back to long rows, series by series.
-        Rows within a series keep their scan order; the panel builder sorts a
+        A table or Parquet source lists its series keys once, then reads each
+        chunk with one plain scan over a key range (:mod:`.key_ranges`, the
+        rule the PostgreSQL source follows too): the first chunk is ready
+        after the listing, not after the whole table was grouped, and a table
+        stored in key order lets DuckDB skip the row groups outside the range.
+        A ``query`` source is run once (each range would run it again):
+        DuckDB groups its rows by key with a hash aggregate (``list()`` of
+        periods and values per series) and orders only the series. Either way
+        a chunk holds the same series, so every number is the same; rows
+        within a series keep their scan order and the panel builder sorts a
         series' periods only when they are not already in order.
         """
+        if self.spec.query is not None:
+            yield from self._grouped_chunks(as_of, chunk_series, batch_rows)
+            return
+        spec = self.spec
+        key_cols = list(spec.keys)
+        keys = [quote(k) for k in key_cols]
+        period = self._period_expr()
+        pcol, vcol = quote(spec.period), quote(spec.value)
+        try:
+            listing = self.con.sql(
+                f"SELECT {', '.join(keys)} FROM (SELECT DISTINCT {', '.join(keys)} FROM {self._from()} "
+                f"WHERE {period} <= $1) ORDER BY {', '.join(keys)}", params=[as_of],
+            ).to_arrow_table()
+            for low, high in ranges(range_starts(listing, chunk_series)):
+                bounds = range_predicate(keys, first=2, upper=high is not None)
+                table = self.con.sql(
+                    f"SELECT {', '.join(keys)}, {period} AS {pcol}, CAST({vcol} AS DOUBLE) AS {vcol} "
+                    f"FROM {self._from()} WHERE {period} <= $1 AND {bounds}", params=[as_of, *low, *(high or ())],
+                ).to_arrow_table()
+                frame = pl.from_arrow(table)
+                assert isinstance(frame, pl.DataFrame)
+                if frame.height:
+                    yield frame.sort(key_cols, maintain_order=True)  # whole series together, in key order
+        except duckdb.PermissionException as exc:
+            raise SourceAccessError(access_message(exc)) from None
+        except duckdb.Error as exc:
+            raise SourceError(f"reading the source failed ({one_line(exc)}); check [source] in the job file") from None
+
+    def _grouped_chunks(self, as_of: Any, chunk_series: int, batch_rows: int) -> Iterator[pl.DataFrame]:
+        """The one-pass read of a ``query`` source: rows grouped per series by DuckDB, ordered by key."""
         spec = self.spec
         key_cols = list(spec.keys)
         keys = ", ".join(quote(k) for k in key_cols)

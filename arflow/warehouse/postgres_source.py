@@ -28,6 +28,7 @@ from .checks import check_step_frequency, column_type, count_and_check_rows, per
 from .contract import SourceLayout, SourceStats
 from .duckdb_source import SourceCalendar, describe_row, parse_as_of_text
 from .identifiers import quote, quote_qualified
+from .key_ranges import range_predicate, range_starts, ranges
 from .postgres_connection import PgAddress, connect, detail, driver_errors, lost_connection, sqlstate
 
 #: default [source] statement_timeout_seconds
@@ -340,19 +341,12 @@ class PostgresSource:
             f"ORDER BY {', '.join(ordered)}",
             (as_of,),
         )
-        total = listing.num_rows
-        if total == 0:
+        if listing.num_rows == 0:
             return
-        lows = [tuple(listing.column(i)[start].as_py() for i in range(len(keys)))
-                for start in range(0, total, chunk_series)]
-        n = len(keys)
-        row = f"({', '.join(ordered)})"
-        for i, low in enumerate(lows):
-            params: list[Any] = [as_of, *low]
-            bounds = f"{row} >= ({', '.join(f'${j + 2}' for j in range(n))})"
-            if i + 1 < len(lows):
-                params.extend(lows[i + 1])
-                bounds += f" AND {row} < ({', '.join(f'${j + 2 + n}' for j in range(n))})"
+        starts = range_starts(listing, chunk_series)
+        for low, high in ranges(starts):
+            params: list[Any] = [as_of, *low, *(high or ())]
+            bounds = range_predicate(ordered, first=2, upper=high is not None)
             sql = (
                 f"SELECT {', '.join(keys)}, {period} AS {pcol}, CAST({vcol} AS double precision) AS {vcol} "
                 f"FROM {self._from()} WHERE {period} <= $1 AND {bounds}"
