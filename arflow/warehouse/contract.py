@@ -43,6 +43,35 @@ def run_id_for(job: str, as_of: Any) -> str:
     return f"{job}@{text}"
 
 
+def periods_between(frequency: str, earlier: Any, later: Any) -> int:
+    """Whole periods of ``frequency`` from ``earlier`` to ``later`` (negative when later is earlier)."""
+    if frequency == "step":
+        return int(later) - int(earlier)
+    a = earlier.date() if isinstance(earlier, dt.datetime) else earlier
+    b = later.date() if isinstance(later, dt.datetime) else later
+    if frequency == "day":
+        return (b - a).days
+    if frequency == "week":
+        return (b - a).days // 7
+    months = (b.year - a.year) * 12 + (b.month - a.month)
+    return months // {"month": 1, "quarter": 3, "year": 12}[frequency]
+
+
+def check_jump(record: "RunRecord", latest: Any) -> None:
+    """The far-ahead guard inside a target's publication: refuse a vintage more than
+    ``publish.max_periods_ahead`` periods after the job's ``latest`` vintage there (the job
+    checked it before fitting; a run that started since may have moved the latest)."""
+    if record.jump_limit is None or latest is None or not record.as_of > latest:
+        return
+    gap = periods_between(record.frequency, latest, record.as_of)
+    if gap > record.jump_limit:
+        raise PublishError(
+            f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
+            f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
+            "(add --allow-jump to write it deliberately)"
+        )
+
+
 @dataclass(frozen=True)
 class TableLayout:
     """What the output tables are templated by: schema, key columns and types, period type."""

@@ -29,7 +29,7 @@ import polars as pl
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError, one_line
 from ..runtime import fault_point, unwatch_connection, watch_connection
 from .checks import check_step_frequency, column_type, count_and_check_rows, period_labels
-from .contract import SourceLayout, SourceStats
+from .contract import SourceLayout, SourceStats, periods_between
 from .identifiers import quote, quote_qualified
 from .key_ranges import range_predicate, range_starts, ranges
 
@@ -232,20 +232,6 @@ class SourceCalendar:
     def periods_between(self, earlier: Any, later: Any) -> int:
         """Whole periods from ``earlier`` to ``later`` on this calendar."""
         return periods_between(self.frequency, earlier, later)
-
-
-def periods_between(frequency: str, earlier: Any, later: Any) -> int:
-    """Whole periods of ``frequency`` from ``earlier`` to ``later`` (negative when later is earlier)."""
-    if frequency == "step":
-        return int(later) - int(earlier)
-    a = earlier.date() if isinstance(earlier, dt.datetime) else earlier
-    b = later.date() if isinstance(later, dt.datetime) else later
-    if frequency == "day":
-        return (b - a).days
-    if frequency == "week":
-        return (b - a).days // 7
-    months = (b.year - a.year) * 12 + (b.month - a.month)
-    return months // {"month": 1, "quarter": 3, "year": 12}[frequency]
 
 
 class DuckDBSource:

@@ -32,7 +32,8 @@ from ..runtime import fault_point, hold_signals, release_signals, unwatch_connec
 from ..settings import MAX_COVERAGE_LEVELS, coverage_label
 from ..version import arflow_version
 from .contract import (
-    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_layout_match, check_owned_tables,
+    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_jump, check_layout_match,
+    check_owned_tables,
     column_difference, runs_row,
 )
 from .duckdb_source import engine_config, is_lock_error, lock_message, open_duckdb
@@ -465,20 +466,10 @@ class DuckDBTarget:
         """The far-ahead guard again, inside the transaction (the job checked it before fitting)."""
         if record.jump_limit is None:
             return
-        from .duckdb_source import periods_between
-
         (latest,) = con.execute(
             f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = ?", [record.job]
         ).fetchone() or (None,)
-        if latest is None or not record.as_of > latest:
-            return
-        gap = periods_between(record.frequency, latest, record.as_of)
-        if gap > record.jump_limit:
-            raise PublishError(
-                f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
-                f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
-                "(add --allow-jump to write it deliberately)"
-            )
+        check_jump(record, latest)
 
     def _write_policy(self, con: duckdb.DuckDBPyConnection, record: RunRecord) -> None:
         """The job's row of ``job_policy`` (what the view's expiry rule reads)."""

@@ -35,7 +35,8 @@ from ..runtime import fault_point, hold_signals, release_signals, unwatch_connec
 from ..settings import MAX_COVERAGE_LEVELS
 from ..results import RUN_TABLES
 from .contract import (
-    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_layout_match, check_owned_tables,
+    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_jump, check_layout_match,
+    check_owned_tables,
     runs_row,
 )
 from .duckdb_target import (
@@ -429,20 +430,11 @@ class PostgresTarget:
                         execute(con, f"ALTER TABLE {s}.{quote(table)} ADD COLUMN {quote(col)} {kind}")
 
     def _check_jump(self, con: Any, record: RunRecord) -> None:
+        """The far-ahead guard again, inside the transaction (the job checked it before fitting)."""
         if record.jump_limit is None:
             return
-        from .duckdb_source import periods_between
-
         (latest,) = fetch_rows(con, f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = $1", (record.job,))[0]
-        if latest is None or not record.as_of > latest:
-            return
-        gap = periods_between(record.frequency, latest, record.as_of)
-        if gap > record.jump_limit:
-            raise PublishError(
-                f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
-                f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
-                "(add --allow-jump to write it deliberately)"
-            )
+        check_jump(record, latest)
 
     # -- rows ----------------------------------------------------------------------
     def _load(self, con: Any, table: str, staged: Any, record: RunRecord, columns: dict[str, dict[str, str]]) -> None:
