@@ -63,16 +63,35 @@ def refuse_postgres(spec: Any, command: str) -> None:
             "published_forecasts and its gates table there, or publish the job to a DuckDB database as well")
 
 
-def _open(database: Path | None) -> duckdb.DuckDBPyConnection:
+def open_read_only(database: Path | None, schema: str, command: str) -> duckdb.DuckDBPyConnection:
+    """The job's DuckDB target opened read-only for ``arflow <command>``, holding arflow's results in ``schema``.
+
+    A one-line error when there is no target, it cannot be opened, or the job has not written it yet.
+    """
     if database is None:
-        raise SettingsError("arflow explain reads the job's DuckDB target; this job has no [publish] database")
-    if not database.exists():
+        raise SettingsError(f"arflow {command} reads the job's DuckDB target; this job has no [publish] database")
+    if not Path(database).exists():
         raise SourceError(f"target database {database} does not exist yet; run the job first (arflow run)")
+    from .warehouse.duckdb_source import open_duckdb
+
     try:
-        return duckdb.connect(str(database), read_only=True)
+        con = open_duckdb(str(database), read_only=True)
     except duckdb.Error as exc:
         raise PublishError(f"cannot open target database {database} read-only ({str(exc).splitlines()[0]}); "
                            "retry when the run holding it finishes") from None
+    try:
+        have = _tables(con, schema)
+        if "models" not in have or "runs" not in have:
+            raise SourceError(f"schema {schema} in {database} holds no arflow results; run the job first")
+    except BaseException:
+        con.close()
+        raise
+    return con
+
+
+def _tables(con: duckdb.DuckDBPyConnection, schema: str) -> set[str]:
+    return {r[0] for r in con.execute(
+        "SELECT table_name FROM information_schema.tables WHERE lower(table_schema) = lower(?)", [schema]).fetchall()}
 
 
 def _rows(con: duckdb.DuckDBPyConnection, sql: str, params: list[Any]) -> list[dict[str, Any]]:
@@ -117,12 +136,9 @@ def explain_series(spec: Any, key_values: dict[str, str], as_of: str | None = No
     s = _q(schema)
     keys = tuple(spec.source.keys)
     refuse_postgres(spec, "explain")
-    con = _open(spec.publish.database)
+    con = open_read_only(spec.publish.database, schema, "explain")
     try:
-        have = {r[0] for r in con.execute(
-            "SELECT table_name FROM information_schema.tables WHERE lower(table_schema) = lower(?)", [schema]).fetchall()}
-        if "models" not in have or "runs" not in have:
-            raise SourceError(f"schema {schema} in {spec.publish.database} holds no arflow results; run the job first")
+        have = _tables(con, schema)
         where = " AND ".join(f"CAST(m.{_q(k)} AS VARCHAR) = ?" for k in keys)
         kv = [key_values[k] for k in keys]
         runs = _rows(con, f"SELECT r.* FROM {s}.runs AS r JOIN {s}.models AS m ON m.run_id = r.run_id "

@@ -34,6 +34,10 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import quote, unquote, urlsplit
 
+# statements on an ADBC connection: the package's own helpers (one cursor per statement, rows as tuples)
+from arflow.warehouse.postgres_target import execute
+from arflow.warehouse.postgres_target import fetch_rows as fetch
+
 ADMIN = "arflow_admin"
 #: the throwaway cluster's superuser password (the cluster lives for one test session, on 127.0.0.1 only)
 ADMIN_PASSWORD = "arflow-test-" + uuid.uuid4().hex[:12]
@@ -97,8 +101,7 @@ class PgServer:
     def stop(self) -> None:
         if self.folder is None or self._bindir is None:
             return
-        subprocess.run([*self._run_as, str(self._bindir / "pg_ctl"), "-D", str(self.folder / "data"), "-m", "immediate",
-                        "-w", "stop"], capture_output=True, timeout=60)
+        stop_cluster(self._bindir, self._run_as, self.folder / "data")
         shutil.rmtree(self.folder, ignore_errors=True)
         self.folder = None
 
@@ -116,6 +119,12 @@ def from_url(url: str) -> PgServer:
 
 
 OWNER_FILE = "owner.pid"
+
+
+def stop_cluster(bindir: Path, run_as: list[str], data: Path) -> None:
+    """Stop the server of the cluster in ``data`` at once (``pg_ctl -m immediate``; its folder is thrown away)."""
+    subprocess.run([*run_as, str(bindir / "pg_ctl"), "-D", str(data), "-m", "immediate", "-w", "stop"],
+                   capture_output=True, timeout=60)
 
 
 def _alive(pid: int) -> bool:
@@ -138,8 +147,7 @@ def sweep_orphans(bindir: Path, run_as: list[str]) -> None:
         if _alive(owner):
             continue
         if (folder / "data" / "postmaster.pid").exists():
-            subprocess.run([*run_as, str(bindir / "pg_ctl"), "-D", str(folder / "data"), "-m", "immediate", "-w", "stop"],
-                           capture_output=True, timeout=60)
+            stop_cluster(bindir, run_as, folder / "data")
         shutil.rmtree(folder, ignore_errors=True)
 
 
@@ -247,25 +255,6 @@ def connect_as(server: PgServer, role: str, database: str, autocommit: bool = Tr
             con.close()
         except Exception:  # noqa: BLE001 - a terminated session
             pass
-
-
-def execute(con: Any, sql: str, params: tuple[Any, ...] | None = None) -> None:
-    cur = con.cursor()
-    try:
-        cur.execute(sql, params) if params else cur.execute(sql)
-    finally:
-        cur.close()
-
-
-def fetch(con: Any, sql: str, params: tuple[Any, ...] | None = None) -> list[tuple[Any, ...]]:
-    cur = con.cursor()
-    try:
-        cur.execute(sql, params) if params else cur.execute(sql)
-        table = cur.fetch_arrow_table()
-    finally:
-        cur.close()
-    cols = [c.to_pylist() for c in table.columns]
-    return list(zip(*cols)) if cols else []
 
 
 def create_roles(con: Any) -> None:

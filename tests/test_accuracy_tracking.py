@@ -13,7 +13,6 @@ from __future__ import annotations
 import datetime as dt
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import polars as pl
 import pytest
@@ -21,6 +20,7 @@ from statsmodels.tsa.ar_model import AutoReg
 
 from arflow.cli import main
 from arflow.sample.panels import ar_panel, default_job, job_toml, write_table
+from helpers import query_rows as q
 
 SEED, SITES, MONTHS = 5, 8, 72  # 2019-01 .. 2024-12
 ORIGINS, HORIZON = 6, 6
@@ -45,14 +45,6 @@ def warehouse(tmp_path: Path) -> tuple[Path, Path]:
     job = tmp_path / "job.toml"
     job.write_text(job_toml(sections), encoding="utf-8")
     return db, job
-
-
-def q(db: Path, sql: str) -> list[tuple]:
-    con = duckdb.connect(str(db), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
 
 
 def test_backtests_are_published(warehouse, capsys) -> None:

@@ -5,7 +5,6 @@ from __future__ import annotations
 import datetime as dt
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import polars as pl
 import pytest
@@ -15,6 +14,8 @@ from arflow.job_file import SourceSpec
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
 from arflow.warehouse.duckdb_source import DuckDBSource, SourceCalendar
 from arflow.warehouse.contract import run_id_for
+from helpers import query_rows as sql
+from helpers import write_job
 
 D = dt.date
 
@@ -44,27 +45,13 @@ def source_over(tmp_path: Path, frame: pl.DataFrame, period: str, frequency: str
 
 
 def weekly_job(tmp_path: Path, frame: pl.DataFrame | None = None) -> Path:
-    write_table(tmp_path / "warehouse.duckdb", weekly_frame() if frame is None else frame)
     sections = default_job()
     sections["source"].update(period="week", frequency="week")
-    path = tmp_path / "job.toml"
-    path.write_text(job_toml(sections), encoding="utf-8")
-    return path
+    return write_job(tmp_path, sections, weekly_frame() if frame is None else frame)
 
 
 def monthly_job(tmp_path: Path) -> Path:
-    write_table(tmp_path / "warehouse.duckdb", mixed_panel())
-    path = tmp_path / "job.toml"
-    path.write_text(job_toml(default_job()), encoding="utf-8")
-    return path
-
-
-def sql(database: Path, query: str) -> list[tuple]:
-    con = duckdb.connect(str(database), read_only=True)
-    try:
-        return con.execute(query).fetchall()
-    finally:
-        con.close()
+    return write_job(tmp_path)
 
 
 # ------------------------------------------------------------------------------------ calendar

@@ -12,15 +12,13 @@ import duckdb
 
 from arflow.cli import main
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
+from helpers import write_job
 
 
 def _job(tmp_path: Path, **source: object) -> Path:
-    write_table(tmp_path / "warehouse.duckdb", mixed_panel())
     sections = default_job()
     sections["source"].update(source)
-    path = tmp_path / "job.toml"
-    path.write_text(job_toml(sections), encoding="utf-8")
-    return path
+    return write_job(tmp_path, sections)
 
 
 def test_validate_good(tmp_path: Path, capsys) -> None:

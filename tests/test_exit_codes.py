@@ -11,15 +11,14 @@ from __future__ import annotations
 
 import os
 import signal
-import subprocess
-import sys
 import time
 from pathlib import Path
 
 import pytest
 
 from arflow.cli import main
-from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
+from arflow.sample.panels import default_job, job_toml, warehouse_state
+from helpers import published_job, query_job, start_paused, warehouse_of
 
 #: a source query whose first full scan runs for minutes (a sum over 10^11 hashes), so a signal lands inside it
 SLOW_QUERY = (
@@ -29,45 +28,15 @@ SLOW_QUERY = (
 
 
 @pytest.fixture
-def job(tmp_path: Path, capsys) -> Path:
+def job(tmp_path: Path) -> Path:
     """A job that has published the vintage 2026-11; returns the job file."""
-    write_table(tmp_path / "warehouse.duckdb", mixed_panel())
-    path = tmp_path / "job.toml"
-    path.write_text(job_toml(default_job()), encoding="utf-8")
-    assert main(["run", str(path), "--as-of", "2026-11"]) == 0
-    capsys.readouterr()
-    return path
-
-
-def _db(job: Path) -> Path:
-    return job.parent / "warehouse.duckdb"
-
-
-def _start_paused(job: Path, after: str, *args: str) -> subprocess.Popen[str]:
-    resume = job.parent / "resume"
-    resume.unlink(missing_ok=True)
-    env = dict(os.environ, ARFLOW_TEST_PAUSE_AFTER=after, ARFLOW_TEST_RESUME_FILE=str(resume))
-    proc = subprocess.Popen([sys.executable, "-m", "arflow", "run", str(job), *args],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
-    assert proc.stderr is not None
-    line = proc.stderr.readline()
-    assert line == f"arflow-test: paused after {after}\n", line + proc.stderr.read()
-    return proc
-
-
-def _slow_job(job: Path) -> Path:
-    sections = default_job()
-    sections["source"].pop("table")
-    sections["source"]["query"] = SLOW_QUERY
-    path = job.parent / "slow_job.toml"
-    path.write_text(job_toml(sections), encoding="utf-8")
-    return path
+    return published_job(tmp_path)
 
 
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGINT], ids=["SIGTERM", "Ctrl-C"])
 def test_signal_inside_a_database_statement_exits_130(job: Path, sig: signal.Signals) -> None:
-    before = warehouse_state(_db(job))
-    proc = _start_paused(_slow_job(job), "source-open")
+    before = warehouse_state(warehouse_of(job))
+    proc = start_paused(query_job(job, SLOW_QUERY, "slow_job.toml"), "source-open")
     (job.parent / "resume").touch()
     time.sleep(1.5)  # the run is now inside the source scan, which takes minutes
     assert proc.poll() is None
@@ -80,7 +49,7 @@ def test_signal_inside_a_database_statement_exits_130(job: Path, sig: signal.Sig
     assert time.monotonic() - sent < 10  # DuckDB stops the statement, it does not run to its end
     assert proc.returncode == 130, err
     assert err == "arflow: error: interrupted; nothing was published by this run\n"
-    assert warehouse_state(_db(job)) == before
+    assert warehouse_state(warehouse_of(job)) == before
 
 
 @pytest.mark.parametrize("alarm", [False, True], ids=["ok", "alarm"])
@@ -91,8 +60,8 @@ def test_signal_after_commit_keeps_the_runs_status(job: Path, sig: signal.Signal
         sections["gates"]["max_quarantine_share"] = 0.0
         sections["publish"]["hold_on_alarm"] = False  # the publish path (a held run writes no view rows)
         job.write_text(job_toml(sections), encoding="utf-8")
-    before = warehouse_state(_db(job))
-    proc = _start_paused(job, "commit")
+    before = warehouse_state(warehouse_of(job))
+    proc = start_paused(job, "commit")
     proc.send_signal(sig)
     time.sleep(0.3)
     (job.parent / "resume").touch()
@@ -100,20 +69,20 @@ def test_signal_after_commit_keeps_the_runs_status(job: Path, sig: signal.Signal
     assert proc.returncode == (4 if alarm else 0), err
     assert "published" in out  # the summary is printed as usual
     assert f"{sig.name} arrived after the run committed; exiting with the run's status {proc.returncode}" in err
-    after = warehouse_state(_db(job))
+    after = warehouse_state(warehouse_of(job))
     assert after != before
     assert [r[2] for r in after["vintages"]] == ["meters@2026-11-01", "meters@2026-12-01"]
 
 
 def test_signal_before_commit_still_rolls_back(job: Path) -> None:
-    before = warehouse_state(_db(job))
-    proc = _start_paused(job, "vintages")
+    before = warehouse_state(warehouse_of(job))
+    proc = start_paused(job, "vintages")
     proc.send_signal(signal.SIGTERM)
     (job.parent / "resume").touch()
     _, err = proc.communicate(timeout=60)
     assert proc.returncode == 130
     assert err == "arflow: error: interrupted; nothing was published by this run\n"
-    assert warehouse_state(_db(job)) == before
+    assert warehouse_state(warehouse_of(job)) == before
 
 
 def test_interrupted_error_in_process_maps_to_130(job: Path, capsys, monkeypatch) -> None:

@@ -23,34 +23,16 @@ from arflow.cli import main
 from arflow.core import gates
 from arflow.sample.panels import ar_panel, default_job, job_toml, write_table
 from arflow.settings import GateSettings
+from helpers import gate_inputs
 
 G = 3  # series 0 and 2 are healthy, series 1 gets the bad input
 
 
 def _inputs(**override: np.ndarray) -> gates.GateInputs:
-    ok = dict(
-        flags=np.zeros(G, dtype=np.int64),
-        n=np.full(G, 100),
-        stale_periods=np.zeros(G, dtype=np.int64),
-        fitted=np.ones(G, dtype=bool),
-        unit_root=np.zeros(G, dtype=bool),
-        differenced=np.zeros(G, dtype=bool),
-        adf_statistic=np.full(G, -5.0),
-        adf_pvalue=np.full(G, 0.001),
-        max_root_modulus=np.full(G, 0.5),
-        residual_statistic=np.full(G, 10.0),
-        residual_pvalue=np.full(G, 0.5),
-        forecast_min=np.full(G, 90.0),
-        forecast_max=np.full(G, 110.0),
-        forecast_finite=np.ones(G, dtype=bool),
-        arch_statistic=np.full(G, 2.0),
-        arch_pvalue=np.full(G, 0.7),
-        naive_statistic=np.full(G, 0.8),
-        naive_threshold=1.05,
-        interval_relative_width=np.full(G, 0.5),
-    )
-    ok.update(override)
-    return gates.GateInputs(**ok)
+    """``G`` healthy series with every optional gate on (ARCH, naive benchmark, interval width)."""
+    ok = dict(arch_statistic=np.full(G, 2.0), arch_pvalue=np.full(G, 0.7), naive_statistic=np.full(G, 0.8),
+              naive_threshold=1.05, interval_relative_width=np.full(G, 0.5))
+    return gate_inputs(G, **{**ok, **override})
 
 
 SETTINGS = GateSettings(arch_test=True, lower_bound=0.0, upper_bound=1000.0)

@@ -19,32 +19,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from arflow.core.gates import REASONS, GateInputs, decide
+from arflow.core.gates import REASONS, decide
 from arflow.core.panel import CONSTANT, DUPLICATE_PERIODS, INTERNAL_GAPS, NO_DATA, NON_FINITE_VALUES
 from arflow.settings import GateSettings
-
-
-def inputs(G: int = 2, **over) -> GateInputs:
-    """Gate inputs of ``G`` healthy series (every gate passes); keyword arguments override fields."""
-    base = dict(
-        flags=np.zeros(G, dtype=np.int64),
-        n=np.full(G, 100),
-        stale_periods=np.zeros(G, dtype=np.int64),
-        fitted=np.ones(G, dtype=bool),
-        unit_root=np.zeros(G, dtype=bool),
-        differenced=np.zeros(G, dtype=bool),
-        adf_statistic=np.full(G, -5.0),
-        adf_pvalue=np.full(G, 0.001),
-        max_root_modulus=np.full(G, 0.5),
-        residual_statistic=np.full(G, 8.0),
-        residual_pvalue=np.full(G, 0.6),
-        forecast_min=np.full(G, 90.0),
-        forecast_max=np.full(G, 110.0),
-        forecast_finite=np.ones(G, dtype=bool),
-    )
-    for key, value in over.items():
-        base[key] = np.asarray(value) if not isinstance(value, float) or key == "naive_threshold" else value
-    return GateInputs(**base)
+from helpers import gate_inputs as inputs
 
 
 def reasons(outcome, g: int) -> list[str]:

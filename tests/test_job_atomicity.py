@@ -2,86 +2,62 @@
 
 from __future__ import annotations
 
-import os
 import signal
-import subprocess
-import sys
 from pathlib import Path
 
 import pytest
 
 from arflow.cli import main
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
+from helpers import published_job, start_paused, warehouse_of
 
 
 @pytest.fixture
-def job(tmp_path: Path, capsys) -> Path:
+def job(tmp_path: Path) -> Path:
     """A job that has published the vintage 2026-11; returns the job file."""
-    write_table(tmp_path / "warehouse.duckdb", mixed_panel())
-    path = tmp_path / "job.toml"
-    path.write_text(job_toml(default_job()), encoding="utf-8")
-    assert main(["run", str(path), "--as-of", "2026-11"]) == 0
-    capsys.readouterr()
-    return path
-
-
-def _db(job: Path) -> Path:
-    return job.parent / "warehouse.duckdb"
-
-
-def _start_paused(job: Path, tmp_path: Path, after: str = "forecasts") -> subprocess.Popen[str]:
-    """Start ``python -m arflow run`` in a subprocess that stops inside its transaction."""
-    env = dict(os.environ, ARFLOW_TEST_PAUSE_AFTER=after, ARFLOW_TEST_RESUME_FILE=str(tmp_path / "resume"))
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "arflow", "run", str(job)],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
-    )
-    assert proc.stderr is not None
-    line = proc.stderr.readline()
-    assert line == f"arflow-test: paused after {after}\n", line + proc.stderr.read()
-    return proc
+    return published_job(tmp_path)
 
 
 @pytest.mark.parametrize("table", ["series_status", "models", "forecasts", "runs", "vintages"])
 @pytest.mark.parametrize("as_of", ["2026-11", None], ids=["same vintage", "new vintage"])
 def test_fault_mid_publish_leaves_tables_as_before(job: Path, capsys, monkeypatch, table: str, as_of: str | None) -> None:
-    before = warehouse_state(_db(job))
+    before = warehouse_state(warehouse_of(job))
     monkeypatch.setenv("ARFLOW_TEST_FAIL_AFTER", table)
     code = main(["run", str(job)] + (["--as-of", as_of] if as_of else []))
     err = capsys.readouterr().err
     assert code == 1
     assert err.startswith("arflow: error: internal error") and err.count("\n") == 1
     assert f"test fault injected after {table}" in err
-    assert warehouse_state(_db(job)) == before
+    assert warehouse_state(warehouse_of(job)) == before
     monkeypatch.delenv("ARFLOW_TEST_FAIL_AFTER")
     assert main(["run", str(job)]) == 0
 
 
 def test_killed_mid_publish_leaves_tables_as_before(job: Path, tmp_path: Path, capsys) -> None:
-    before = warehouse_state(_db(job))
-    proc = _start_paused(job, tmp_path)
+    before = warehouse_state(warehouse_of(job))
+    proc = start_paused(job, "forecasts")
     proc.send_signal(signal.SIGKILL)
     proc.communicate(timeout=30)
     assert proc.returncode == -signal.SIGKILL
-    assert warehouse_state(_db(job)) == before
+    assert warehouse_state(warehouse_of(job)) == before
     # and the warehouse is healthy: the next run publishes
     assert main(["run", str(job)]) == 0
-    assert warehouse_state(_db(job))["vintages"] != before["vintages"]
+    assert warehouse_state(warehouse_of(job))["vintages"] != before["vintages"]
 
 
 def test_terminated_mid_publish_rolls_back(job: Path, tmp_path: Path) -> None:
-    before = warehouse_state(_db(job))
-    proc = _start_paused(job, tmp_path)
+    before = warehouse_state(warehouse_of(job))
+    proc = start_paused(job, "forecasts")
     proc.send_signal(signal.SIGTERM)
     _, err = proc.communicate(timeout=30)
     assert proc.returncode == 130
     assert err.strip().endswith("interrupted; nothing was published by this run")
-    assert warehouse_state(_db(job)) == before
+    assert warehouse_state(warehouse_of(job)) == before
 
 
 def test_concurrent_run_fails_cleanly_and_first_finishes(job: Path, tmp_path: Path, capsys) -> None:
-    before = warehouse_state(_db(job))
-    first = _start_paused(job, tmp_path)
+    before = warehouse_state(warehouse_of(job))
+    first = start_paused(job, "forecasts")
     try:
         code = main(["run", str(job), "--as-of", "2026-10"])
         err = capsys.readouterr().err
@@ -92,7 +68,7 @@ def test_concurrent_run_fails_cleanly_and_first_finishes(job: Path, tmp_path: Pa
         out, err = first.communicate(timeout=60)
     assert first.returncode == 0, err
     assert "published" in out
-    after = warehouse_state(_db(job))
+    after = warehouse_state(warehouse_of(job))
     assert [r[2] for r in after["vintages"]] == ["meters@2026-11-01", "meters@2026-12-01"]
     assert after != before
 
@@ -104,7 +80,7 @@ def test_locked_target_with_separate_source(tmp_path: Path, capsys) -> None:
     sections["publish"]["database"] = "target.duckdb"
     job = tmp_path / "job.toml"
     job.write_text(job_toml(sections), encoding="utf-8")
-    first = _start_paused(job, tmp_path)
+    first = start_paused(job, "forecasts")
     try:
         code = main(["run", str(job)])
         err = capsys.readouterr().err

@@ -27,6 +27,7 @@ from arflow.job_file import load_job  # noqa: E402
 from arflow.sample.panels import ar_panel, default_job, job_toml, mixed_panel, write_table  # noqa: E402
 from arflow.warehouse import delta_target as lake  # noqa: E402
 from arflow.warehouse import parquet_legacy  # noqa: E402
+from helpers import write_job  # noqa: E402
 
 SAMPLE_KEYS = ["district", "zone"]
 
@@ -124,12 +125,9 @@ def test_duckdb_and_polars_read_the_tables_with_their_own_readers(sample: Path) 
 
 
 def make_job(tmp_path: Path, **publish: object) -> Path:
-    write_table(tmp_path / "warehouse.duckdb", mixed_panel())
     sections = default_job()
     sections["publish"].update({"lakehouse": "lake", **publish})
-    path = tmp_path / "job.toml"
-    path.write_text(job_toml(sections), encoding="utf-8")
-    return path
+    return write_job(tmp_path, sections)
 
 
 @pytest.fixture

@@ -16,31 +16,18 @@ from arflow.cli import main
 from arflow.job_file import load_job
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
 from arflow.warehouse.duckdb_source import DuckDBSource
+from helpers import published_job, query_job
 
 SECRET = "do-not-copy-this-line"
 
 
 @pytest.fixture
-def job(tmp_path: Path, capsys) -> Path:
+def job(tmp_path: Path) -> Path:
     """A published vintage 2026-11, a secret file and another DuckDB file beside the warehouse."""
-    write_table(tmp_path / "warehouse.duckdb", mixed_panel())
     write_table(tmp_path / "other.duckdb", mixed_panel(seed=3))
     (tmp_path / "secret.txt").write_text(SECRET + "\n", encoding="utf-8")
     mixed_panel(seed=5).write_parquet(tmp_path / "other.parquet")
-    path = tmp_path / "job.toml"
-    path.write_text(job_toml(default_job()), encoding="utf-8")
-    assert main(["run", str(path), "--as-of", "2026-11"]) == 0
-    capsys.readouterr()
-    return path
-
-
-def _with_query(job: Path, query: str) -> Path:
-    sections = default_job()
-    sections["source"].pop("table")
-    sections["source"]["query"] = query
-    path = job.parent / "query_job.toml"
-    path.write_text(job_toml(sections), encoding="utf-8")
-    return path
+    return published_job(tmp_path)
 
 
 def _rows(fn: str) -> str:
@@ -67,7 +54,7 @@ READS_OUTSIDE = [
 @pytest.mark.parametrize("make", [m for _, m in READS_OUTSIDE], ids=[i for i, _ in READS_OUTSIDE])
 def test_query_reading_outside_the_source_is_refused(job: Path, capsys, make) -> None:
     before = warehouse_state(job.parent / "warehouse.duckdb")
-    code = main(["run", str(_with_query(job, make(job.parent)))])
+    code = main(["run", str(query_job(job, make(job.parent)))])
     err = capsys.readouterr().err
     assert code == 3, err
     assert err.startswith("arflow: error: the source tried to reach something outside the job's source")
@@ -91,7 +78,7 @@ NOT_A_SELECT = [
 @pytest.mark.parametrize("query", [q for _, q in NOT_A_SELECT], ids=[i for i, _ in NOT_A_SELECT])
 def test_statement_that_is_not_a_select_is_refused(job: Path, capsys, query: str) -> None:
     before = warehouse_state(job.parent / "warehouse.duckdb")
-    code = main(["run", str(_with_query(job, query))])
+    code = main(["run", str(query_job(job, query))])
     err = capsys.readouterr().err
     assert code == 2, err
     assert "exactly one SELECT statement" in err and err.count("\n") == 1
@@ -125,7 +112,7 @@ def test_source_connection_itself_is_locked(job: Path, statement: str) -> None:
 
 
 def test_legitimate_query_still_runs(job: Path, capsys) -> None:
-    code = main(["run", str(_with_query(job, "SELECT site, month, reading FROM readings WHERE site <> 'flat'"))])
+    code = main(["run", str(query_job(job, "SELECT site, month, reading FROM readings WHERE site <> 'flat'"))])
     assert code == 0, capsys.readouterr().err
 
 

@@ -15,6 +15,8 @@ import pytest
 from arflow.cli import main
 from arflow.sample.panels import default_job, job_toml, mixed_panel, warehouse_state, write_table
 from arflow.warehouse import delta_target as lakehouse
+from helpers import query_rows as sql
+from helpers import write_job
 
 #: columns that hold wall-clock times (and runs.source, the source path): two targets that ran the same vintages
 #: from two folders differ only there
@@ -22,13 +24,9 @@ TIME_COLUMNS = {"started_at", "finished_at", "duration_seconds", "published_at",
 
 
 def make_job(folder: Path, frame: pl.DataFrame | None = None, **publish: object) -> Path:
-    folder.mkdir(parents=True, exist_ok=True)
-    write_table(folder / "warehouse.duckdb", mixed_panel() if frame is None else frame)
     sections = default_job()
     sections["publish"].update(publish)
-    path = folder / "job.toml"
-    path.write_text(job_toml(sections), encoding="utf-8")
-    return path
+    return write_job(folder, sections, frame)
 
 
 def run(job: Path, *args: str) -> int:
@@ -51,14 +49,6 @@ def digests(database: Path, schema: str = "arflow", skip: tuple[str, ...] = ("vi
             rows = con.execute(f'SELECT {", ".join(chr(34) + c + chr(34) for c in cols)} FROM "{schema}"."{name}" ORDER BY ALL').fetchall()
             out[name] = hashlib.sha256(repr(rows).encode()).hexdigest()
         return out
-    finally:
-        con.close()
-
-
-def sql(database: Path, query: str) -> list[tuple]:
-    con = duckdb.connect(str(database), read_only=True)
-    try:
-        return con.execute(query).fetchall()
     finally:
         con.close()
 

@@ -13,7 +13,7 @@ from typing import Any
 import duckdb
 import polars as pl
 
-from ..errors import PublishError, SettingsError, SourceError
+from ..errors import SettingsError, SourceError
 from ..vocabulary import BY_NAME, WARNING_CHECKS, canonical
 from . import charts
 from .cautions import CAUTIONS
@@ -56,19 +56,10 @@ def _finite(v: Any) -> Any:
 
 
 def _open(spec: Any) -> duckdb.DuckDBPyConnection:
-    from ..explain import refuse_postgres
+    from ..explain import open_read_only, refuse_postgres
 
     refuse_postgres(spec, "report")
-    database = spec.publish.database
-    if database is None:
-        raise SettingsError("arflow report reads the job's DuckDB target; this job has no [publish] database")
-    if not Path(database).exists():
-        raise SourceError(f"target database {database} does not exist yet; run the job first (arflow run)")
-    try:
-        return duckdb.connect(str(database), read_only=True)
-    except duckdb.Error as exc:
-        raise PublishError(f"cannot open target database {database} read-only ({str(exc).splitlines()[0]}); "
-                           "retry when the run holding it finishes") from None
+    return open_read_only(spec.publish.database, spec.publish.schema, "report")
 
 
 def _pick_run(con: duckdb.DuckDBPyConnection, s: str, job: str, as_of: str | None) -> dict[str, Any]:

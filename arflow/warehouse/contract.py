@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
@@ -30,12 +30,46 @@ if TYPE_CHECKING:  # pragma: no cover - typing only
 DATABASE_ORDER = 0
 #: commit_order of the lakehouse: its marker is written after every database committed
 LAKEHOUSE_ORDER = 10
+#: per coverage level: table -> column prefixes added with ALTER TABLE
+COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("hit_rate",), "accuracy": ("covered",)}
+#: columns an earlier release wrote under another name: table -> (old name or prefix, new); renamed in place
+RENAMED_COLUMNS = {"backtests": (("horizon", "step"), ("coverage_", "hit_rate_")),
+                   "accuracy": (("run_id", "forecast_run_id"),)}
 
 
 def run_id_for(job: str, as_of: Any) -> str:
     """The deterministic id of a job's vintage, ``"<job>@<as_of>"``."""
     text = as_of.isoformat() if isinstance(as_of, (dt.date, dt.datetime)) else str(as_of)
     return f"{job}@{text}"
+
+
+def periods_between(frequency: str, earlier: Any, later: Any) -> int:
+    """Whole periods of ``frequency`` from ``earlier`` to ``later`` (negative when later is earlier)."""
+    if frequency == "step":
+        return int(later) - int(earlier)
+    a = earlier.date() if isinstance(earlier, dt.datetime) else earlier
+    b = later.date() if isinstance(later, dt.datetime) else later
+    if frequency == "day":
+        return (b - a).days
+    if frequency == "week":
+        return (b - a).days // 7
+    months = (b.year - a.year) * 12 + (b.month - a.month)
+    return months // {"month": 1, "quarter": 3, "year": 12}[frequency]
+
+
+def check_jump(record: "RunRecord", latest: Any) -> None:
+    """The far-ahead guard inside a target's publication: refuse a vintage more than
+    ``publish.max_periods_ahead`` periods after the job's ``latest`` vintage there (the job
+    checked it before fitting; a run that started since may have moved the latest)."""
+    if record.jump_limit is None or latest is None or not record.as_of > latest:
+        return
+    gap = periods_between(record.frequency, latest, record.as_of)
+    if gap > record.jump_limit:
+        raise PublishError(
+            f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
+            f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
+            "(add --allow-jump to write it deliberately)"
+        )
 
 
 @dataclass(frozen=True)
@@ -115,6 +149,92 @@ def check_layout_match(where: str, keys: list[str] | tuple[str, ...], period_typ
             f"{where} holds {period_type} periods, this job's are {layout.period_type}; "
             "publish this job to another schema with [publish] schema"
         )
+
+
+def renamed_column(table: str, column: str) -> str:
+    """The current name of a column an earlier release may have written under another name."""
+    for old, new in RENAMED_COLUMNS.get(table, ()):
+        if column == old or (old.endswith("_") and column.startswith(old)):
+            return new + column[len(old):]
+    return column
+
+
+def column_difference(
+    expected: list[tuple[str, str]], actual: dict[str, str], table: str, recorded: set[str] | None,
+    level_types: Mapping[str, str],
+) -> tuple[str | None, list[tuple[str, str]]]:
+    """(what differs between a table's columns and arflow's definition or None, columns new in this version).
+
+    Types are compared as the target's catalogue spells them (``expected``
+    and ``level_types``, a coverage level's column type per table, in the
+    same spelling). ``recorded``: the columns arflow created the table with
+    (None: every defined column must be there). A defined column missing
+    from the table and from ``recorded`` is new in this version, not dropped;
+    other columns are refused unless they are a coverage level's.
+    """
+    want = {c.lower(): t for c, t in expected}
+    lowered = {c.lower(): t for c, t in actual.items()}
+    new: list[tuple[str, str]] = []
+    for column, typ in want.items():
+        if column not in lowered:
+            if recorded is not None and column not in recorded:
+                new.append((column, typ))
+                continue
+            return f"column {table}.{column} was dropped", []
+        if lowered[column] != typ:
+            return f"column {table}.{column} is {lowered[column]}, arflow writes {typ}", []
+    prefixes = tuple(f"{p}_" for p in COVERAGE_COLUMNS.get(table, ()))
+    for column, typ in lowered.items():
+        if column in want:
+            continue
+        if prefixes and column.startswith(prefixes):
+            if typ != level_types[table]:
+                return f"column {table}.{column} is {typ}, arflow writes {level_types[table]}", []
+            continue
+        return f"table {table} has a column {column} that arflow did not create", []
+    return None, new
+
+
+def check_owned_tables(
+    where: str, tables: tuple[str, ...], expected: Mapping[str, list[tuple[str, str]]],
+    present: Mapping[str, dict[str, str]], recorded: Mapping[str, set[str]], level_types: Mapping[str, str],
+) -> tuple[list[str], list[tuple[str, str, str]]]:
+    """Refuse a schema whose arflow-named tables arflow did not create, or whose columns were altered.
+
+    Every target reads its own catalogue and passes: ``tables``, arflow's
+    tables in creation order; ``expected``, their columns and types;
+    ``present``, table -> {column: type} as the schema holds them;
+    ``recorded``, table -> the columns arflow created it with (arflow's
+    marker table; a target may adopt tables that match exactly). Returns the
+    tables still to be created and the (table, column, type) columns this
+    version defines that the tables never had (to be added).
+    """
+    fix = "publish this job to another schema with [publish] schema"
+    ours = [t for t in tables if t in present]
+    # columns an earlier release named otherwise count under their new names (renamed when the run publishes)
+    present = {t: {renamed_column(t, c): typ for c, typ in cols.items()} for t, cols in present.items()}
+    recorded = {t: {renamed_column(t, c) for c in cols} for t, cols in recorded.items()}
+    for table in ours:
+        if table not in recorded:
+            raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
+    for table in sorted(set(recorded) - set(present)):
+        if table in tables:
+            raise PublishError(f"{where}: arflow's table {table} was dropped; {fix} (or restore the table)")
+    new_columns: list[tuple[str, str, str]] = []
+    for table in ours:
+        problem, new = column_difference(expected[table], present[table], table, recorded[table], level_types)
+        if problem:
+            raise PublishError(f"{where}: {problem}; {fix} (or restore the column)")
+        new_columns.extend((table, c, t) for c, t in new)
+    # a coverage level has its columns in every table that carries levels
+    labels = {c[len(p) + 1:] for t, prefixes in COVERAGE_COLUMNS.items() if t in present
+              for p in prefixes for c in present[t] if c.startswith(p + "_")}
+    for label in sorted(labels):
+        for table, prefixes in COVERAGE_COLUMNS.items():
+            for prefix in prefixes:
+                if table in present and f"{prefix}_{label}" not in present[table]:
+                    raise PublishError(f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)")
+    return [t for t in tables if t not in present], new_columns
 
 
 @dataclass(frozen=True)

@@ -66,7 +66,7 @@ from ..runtime import fault_point
 from ..settings import coverage_label
 from ..results import RUN_TABLES as RESULTS_RUN_TABLES
 from ..results import VIEW_TABLES
-from .contract import LAKEHOUSE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
+from .contract import LAKEHOUSE_ORDER, RunRecord, TableLayout, check_jump, check_layout_match, runs_row
 from .duckdb_target import COVERAGE_COLUMNS, DDL_FILES, VIEW_FILE, render_sql
 from .identifiers import check_identifier, quote
 
@@ -264,9 +264,9 @@ def table_schemas(layout: TableLayout, labels: tuple[str, ...]) -> dict[str, pa.
 
 def _memory(layout: TableLayout, labels: tuple[str, ...]) -> duckdb.DuckDBPyConnection:
     """An in-memory DuckDB with arflow's DDL tables (and this run's coverage columns) under the job's schema."""
-    from .duckdb_source import engine_config
+    from .duckdb_source import engine_config, open_duckdb
 
-    con = duckdb.connect(":memory:", config=engine_config())
+    con = open_duckdb(":memory:", config=engine_config())
     con.execute(f"CREATE SCHEMA {quote(layout.schema)}")
     for name in DDL_FILES:
         con.execute(render_sql(name, layout))
@@ -694,22 +694,12 @@ class PendingDelta:
                                      name=f"{self.layout.schema}.{table}")
 
     def _check_jump(self, vintages: pl.DataFrame | None) -> None:
+        """The far-ahead guard again, against the lake's vintages as this publication sees them."""
         rec = self.record
         if rec.jump_limit is None or vintages is None:
             return
         mine = vintages.filter(pl.col("job") == rec.job)
-        latest = mine["as_of"].max() if mine.height else None
-        if latest is None or not rec.as_of > latest:
-            return
-        from .duckdb_source import periods_between
-
-        gap = periods_between(rec.frequency, latest, rec.as_of)
-        if gap > rec.jump_limit:
-            raise PublishError(
-                f"vintage {rec.as_of} is {gap:,} {rec.frequency} period(s) after this job's latest vintage {latest}, "
-                f"more than publish.max_periods_ahead = {rec.jump_limit}; nothing was published "
-                "(add --allow-jump to write it deliberately)"
-            )
+        check_jump(rec, mine["as_of"].max() if mine.height else None)
 
     def _register(self, con: duckdb.DuckDBPyConnection, table: str, name: str) -> bool:
         """Load the lake table's current rows into ``con`` as table ``name`` once (False when there is no table).

@@ -28,8 +28,8 @@ import polars as pl
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError, one_line
 from ..runtime import fault_point, unwatch_connection, watch_connection
-from .checks import RowCounts, check_row_counts
-from .contract import SourceLayout, SourceStats
+from .checks import check_step_frequency, column_type, count_and_check_rows, period_labels
+from .contract import SourceLayout, SourceStats, periods_between
 from .identifiers import quote, quote_qualified
 from .key_ranges import range_predicate, range_starts, ranges
 
@@ -51,6 +51,29 @@ def engine_config() -> dict[str, str]:
     import tempfile
 
     return {"memory_limit": MEMORY_LIMIT, "temp_directory": tempfile.gettempdir() + "/arflow-duckdb-spill"}
+
+
+def open_duckdb(database: str, read_only: bool = False, config: dict[str, str] | None = None) -> duckdb.DuckDBPyConnection:
+    """``duckdb.connect`` with arflow's session settings: no progress bar.
+
+    DuckDB prints a progress bar to standard output during statements that run
+    for more than two seconds, into a library caller's output or a job's log.
+    Both switches are per session (DuckDB refuses them in ``config``), so they
+    are set here, before a source locks its configuration; the printing one
+    as well because setting ``progress_bar_time`` turns the bar back on. A
+    file this process already opened as a source (a job whose source and
+    target are one file) shares the source's locked configuration: such a
+    connection keeps DuckDB's default.
+    """
+    con = duckdb.connect(database, read_only=read_only, config=config or {})
+    try:
+        if not con.execute("SELECT current_setting('lock_configuration')").fetchone()[0]:
+            con.execute("SET enable_progress_bar = false")
+            con.execute("SET enable_progress_bar_print = false")
+    except BaseException:
+        con.close()
+        raise
+    return con
 
 
 #: settings applied in this order, after ``allowed_paths``; the last one locks them all
@@ -99,7 +122,6 @@ def is_lock_error(exc: BaseException) -> bool:
 
 #: largest |step| accepted as an as-of (period arithmetic stays far from the int64 limit)
 STEP_LIMIT = 2**53
-_WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
 
 
 def normalise_as_of(value: Any, period_type: str) -> Any:
@@ -111,6 +133,30 @@ def normalise_as_of(value: Any, period_type: str) -> Any:
     if isinstance(value, dt.date) and period_type == "TIMESTAMP":
         return dt.datetime(value.year, value.month, value.day)
     return value
+
+
+def parse_as_of_text(text: Any, ptype: str, period_column: str) -> Any:
+    """An ``--as-of`` value of a source whose period column ``period_column`` is of type ``ptype`` (normalised)."""
+    if not isinstance(text, str):
+        return normalise_as_of(text, ptype)
+    text = text.strip()
+    try:
+        if ptype == "BIGINT":
+            value = int(text)
+            if abs(value) > STEP_LIMIT:
+                raise SettingsError(
+                    f"--as-of: as-of period {text[:40]} is out of range for integer periods "
+                    f"(at most +-2**53 = {STEP_LIMIT}); use a period inside the source's range"
+                )
+            return value
+        if re.fullmatch(r"\d{4}-\d{2}", text):
+            text += "-01"
+        if re.fullmatch(r"\d{4}-\d{2}-\d{2}", text):
+            return normalise_as_of(dt.date.fromisoformat(text), ptype)
+        return normalise_as_of(dt.datetime.fromisoformat(text.replace("z", "Z")), ptype)
+    except (ValueError, OverflowError):
+        want = {"BIGINT": "an integer period", "DATE": "a date like 2024-06-01", "TIMESTAMP": "a timestamp like 2024-06-01T00:00"}[ptype]
+        raise SettingsError(f"--as-of {text[:40]!r} is not {want} (the period column {period_column} is {ptype})") from None
 
 
 def parse_vintage(text: Any, period_type: str) -> Any:
@@ -188,20 +234,6 @@ class SourceCalendar:
         return periods_between(self.frequency, earlier, later)
 
 
-def periods_between(frequency: str, earlier: Any, later: Any) -> int:
-    """Whole periods of ``frequency`` from ``earlier`` to ``later`` (negative when later is earlier)."""
-    if frequency == "step":
-        return int(later) - int(earlier)
-    a = earlier.date() if isinstance(earlier, dt.datetime) else earlier
-    b = later.date() if isinstance(later, dt.datetime) else later
-    if frequency == "day":
-        return (b - a).days
-    if frequency == "week":
-        return (b - a).days // 7
-    months = (b.year - a.year) * 12 + (b.month - a.month)
-    return months // {"month": 1, "quarter": 3, "year": 12}[frequency]
-
-
 class DuckDBSource:
     """A read-only view of the job's source; use as a context manager."""
 
@@ -214,38 +246,38 @@ class DuckDBSource:
 
     # -- opening ---------------------------------------------------------
     def __enter__(self) -> "DuckDBSource":
+        try:
+            self._open()
+            watch_connection(self.con)  # a stop signal interrupts the statement running on it
+            fault_point("source-open")
+        except BaseException:
+            self.close()  # nothing stays open (or watched) when opening fails part-way
+            raise
+        return self
+
+    def _open(self) -> None:
         spec = self.spec
         if spec.database is not None:
             if not spec.database.is_file():
                 raise SourceError(f"source database {spec.database} does not exist; check source.database in the job file")
             try:
-                self._con = duckdb.connect(str(spec.database), read_only=True, config=engine_config())
+                self._con = open_duckdb(str(spec.database), read_only=True, config=engine_config())
             except duckdb.Error as exc:
                 if is_lock_error(exc):
                     raise SourceError(lock_message(spec.database)) from None
                 raise SourceError(f"cannot open source database {spec.database} ({one_line(exc)}); check it is a DuckDB file") from None
-            self._lock_down(())
+            lock_down(self.con, ())
         else:
             files = tuple(sorted(f for f in glob.glob(spec.parquet, recursive=True) if not os.path.isdir(f)))
             if not files:
                 raise SourceError(f"no parquet files match {spec.parquet}; check source.parquet in the job file")
-            self._con = duckdb.connect(":memory:", config=engine_config())
-            self._lock_down(files)
+            self._con = open_duckdb(":memory:", config=engine_config())
+            lock_down(self.con, files)
             listed = ", ".join(_sql_literal(f) for f in files)
             try:
-                self._con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet([{listed}])")
+                self.con.execute(f"CREATE VIEW source AS SELECT * FROM read_parquet([{listed}])")
             except duckdb.Error as exc:
                 raise SourceError(f"cannot read parquet {spec.parquet} ({one_line(exc)}); check the files") from None
-        watch_connection(self.con)  # a stop signal interrupts the statement running on it
-        fault_point("source-open")
-        return self
-
-    def _lock_down(self, files: tuple[str, ...]) -> None:
-        try:
-            lock_down(self.con, files)
-        except duckdb.Error:
-            self.close()
-            raise
 
     def __exit__(self, *exc: object) -> None:
         self.close()
@@ -311,17 +343,10 @@ class DuckDBSource:
             return self._layout
         rows = self._sql(f"DESCRIBE SELECT * FROM {self._from()}")
         columns = tuple((str(r[0]), str(r[1])) for r in rows)
-        by_lower = {name.lower(): (name, typ) for name, typ in columns}
         spec = self.spec
-        available = ", ".join(name for name, _ in columns) or "none"
 
         def find(col: str, role: str) -> str:
-            if col.lower() not in by_lower:
-                raise SchemaError(f"source has no column {col!r} (named as {role}); columns available: {available}")
-            name, typ = by_lower[col.lower()]
-            if name != col:
-                raise SchemaError(f"source column is spelled {name!r}, the job file says {col!r} ({role}); use the exact spelling")
-            return typ.upper()
+            return column_type(columns, col, role).upper()
 
         key_types = []
         for k in spec.keys:
@@ -341,10 +366,7 @@ class DuckDBSource:
                 f"period column {spec.period!r} has type {ptyp}; expected DATE, TIMESTAMP or an integer "
                 f"(cast it in a [source] query, e.g. CAST({spec.period} AS DATE))"
             )
-        if period_type == "BIGINT" and self.frequency != "step":
-            raise SchemaError(f"period column {spec.period!r} holds integers; set source.frequency = \"step\" for integer periods")
-        if period_type != "BIGINT" and self.frequency == "step":
-            raise SchemaError(f"source.frequency = \"step\" needs an integer period column, but {spec.period!r} is {ptyp}; use day/week/month/quarter/year")
+        check_step_frequency(period_type, self.frequency, spec.period, ptyp)
         vtyp = find(spec.value, "source.value")
         if not (vtyp in _INTEGER_TYPES or vtyp in _FLOAT_TYPES or vtyp.startswith("DECIMAL")):
             raise SchemaError(
@@ -357,14 +379,7 @@ class DuckDBSource:
     def check_rows(self) -> int:
         """Row count; the row checks of :mod:`arflow.warehouse.checks` (with a few offending rows as examples)."""
         spec = self.spec
-        null_key = " OR ".join(f"{quote(k)} IS NULL" for k in spec.keys)
-        total, null_keys, null_periods, values = self._sql(
-            f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL), "
-            f"count({quote(spec.value)}) FROM {self._from()}"
-        )[0]
-        where = {"key": null_key, "period": f"{quote(spec.period)} IS NULL"}
-        counts = RowCounts(total=int(total), values=int(values), null_keys=int(null_keys), null_periods=int(null_periods))
-        return check_row_counts(counts, spec.keys, spec.period, spec.value, lambda kind: self.example_rows(where[kind]))
+        return count_and_check_rows(self._sql, self.example_rows, self._from(), spec.keys, spec.period, spec.value)
 
     def latest_period(self) -> Any:
         """The latest period in the source."""
@@ -379,27 +394,7 @@ class DuckDBSource:
         column takes a bare date as its midnight. Placing the value on the
         source's calendar is :meth:`place_as_of`.
         """
-        ptype = self.layout().period_type
-        if not isinstance(text, str):
-            return normalise_as_of(text, ptype)
-        text = text.strip()
-        try:
-            if ptype == "BIGINT":
-                value = int(text)
-                if abs(value) > STEP_LIMIT:
-                    raise SettingsError(
-                        f"--as-of: as-of period {text[:40]} is out of range for integer periods "
-                        f"(at most +-2**53 = {STEP_LIMIT}); use a period inside the source's range"
-                    )
-                return value
-            if re.fullmatch(r"\d{4}-\d{2}", text):
-                text += "-01"
-            if re.fullmatch(r"\d{4}-\d{2}-\d{2}", text):
-                return normalise_as_of(dt.date.fromisoformat(text), ptype)
-            return normalise_as_of(dt.datetime.fromisoformat(text.replace("z", "Z")), ptype)
-        except (ValueError, OverflowError):
-            want = {"BIGINT": "an integer period", "DATE": "a date like 2024-06-01", "TIMESTAMP": "a timestamp like 2024-06-01T00:00"}[ptype]
-            raise SettingsError(f"--as-of {text[:40]!r} is not {want} (the period column {self.spec.period} is {ptype})") from None
+        return parse_as_of_text(text, self.layout().period_type, self.spec.period)
 
     def calendar(self) -> "SourceCalendar":
         """How the source labels its periods (weekday of weekly labels, period starts or ends).
@@ -409,33 +404,20 @@ class DuckDBSource:
         """
         if self._calendar is not None:
             return self._calendar
-        freq = self.frequency
         period = self._period_expr()
         latest = self.latest_period()
-        weekday: int | None = None
-        anchor = "start"
-        if freq == "week":
-            counts = self._sql(
-                f"SELECT isodow(p) - 1 AS wd, count(*) AS n FROM (SELECT {period} AS p FROM {self._from()}) "
-                "GROUP BY wd ORDER BY n DESC, wd"
-            )
-            weekday = int(counts[0][0])
-            if len(counts) > 1:
-                off = sum(int(n) for _, n in counts[1:])
-                examples = self.example_rows(f"isodow({period}) - 1 <> {weekday}")
-                raise SchemaError(
-                    f"weekly periods fall on different weekdays: {off:,} row(s) are not on a {_WEEKDAYS[weekday]} "
-                    f"(the weekday of most rows), e.g. {examples}; label each week by the same weekday "
-                    "(e.g. its Monday) or use frequency 'day'"
-                )
-        elif freq in ("month", "quarter", "year"):
-            end = {"month": "p = last_day(p)", "quarter": "p = last_day(p) AND month(p) % 3 = 0",
-                   "year": "month(p) = 12 AND day(p) = 31"}[freq]
-            (all_end,) = self._sql(
-                f"SELECT bool_and({end}) FROM (SELECT DISTINCT CAST({period} AS DATE) AS p FROM {self._from()})"
-            )[0]
-            anchor = "end" if all_end else "start"
-        self._calendar = SourceCalendar(freq, self.layout().period_type, latest, weekday, anchor)
+        ends = {"month": "p = last_day(p)", "quarter": "p = last_day(p) AND month(p) % 3 = 0",
+                "year": "month(p) = 12 AND day(p) = 31"}
+        weekday, anchor = period_labels(
+            self.frequency,
+            lambda: self._sql(f"SELECT isodow(p) - 1 AS wd, count(*) AS n FROM (SELECT {period} AS p FROM {self._from()}) "
+                              "GROUP BY wd ORDER BY n DESC, wd"),
+            lambda wd: self.example_rows(f"isodow({period}) - 1 <> {wd}"),
+            lambda freq: self._sql(
+                f"SELECT bool_and({ends[freq]}) FROM (SELECT DISTINCT CAST({period} AS DATE) AS p FROM {self._from()})"
+            )[0][0],
+        )
+        self._calendar = SourceCalendar(self.frequency, self.layout().period_type, latest, weekday, anchor)
         return self._calendar
 
     def place_as_of(self, text: Any) -> tuple[Any, Any]:

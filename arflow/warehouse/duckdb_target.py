@@ -31,9 +31,13 @@ from ..results import ACTUALS, RUN_TABLES, SERIES_STATUS
 from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
 from ..settings import MAX_COVERAGE_LEVELS, coverage_label
 from ..version import arflow_version
-from .contract import DATABASE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
-from .duckdb_source import engine_config, is_lock_error, lock_message
-from .identifiers import quote
+from .contract import (
+    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_jump, check_layout_match,
+    check_owned_tables,
+    column_difference, runs_row,
+)
+from .duckdb_source import engine_config, is_lock_error, lock_message, open_duckdb
+from .identifiers import key_fragments, quote
 from .stage import StagedRun
 
 #: DDL files, in creation order: the run log, the vintages, the run tables, the expiry policy, the removal audit
@@ -41,11 +45,6 @@ DDL_FILES = ("runs", "vintages", *RUN_TABLES, "job_policy", "vintage_removals")
 VIEW_FILE = "published_forecasts"
 ACCURACY_VIEW = "accuracy_by_horizon"
 STATUS_VIEW = "latest_series_status"
-#: per coverage level: table -> column prefixes added with ALTER TABLE
-COVERAGE_COLUMNS = {"forecasts": ("lower", "upper"), "backtests": ("hit_rate",), "accuracy": ("covered",)}
-#: columns an earlier release wrote under another name: table -> (old name or prefix, new); renamed in place
-RENAMED_COLUMNS = {"backtests": (("horizon", "step"), ("coverage_", "hit_rate_")),
-                   "accuracy": (("run_id", "forecast_run_id"),)}
 _STATUS_FIXED = ("run_id", "job", "as_of", "decision", "on_failure", "reasons", "failed_gates", "warnings")
 
 
@@ -66,16 +65,8 @@ def render_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ...] 
         schema=quote(layout.schema),
         period_type=layout.period_type,
         key_defs=",\n    ".join(f"{k} {t} NOT NULL" for k, t in zip(keys, layout.key_types)),
-        key_list=", ".join(keys),
-        p_key_list=", ".join(f"p.{k}" for k in keys),
-        key_join=" AND ".join(f"p.{k} = l.{k}" for k in keys),
-        f_key_join=" AND ".join(f"f.{k} = v.{k}" for k in keys),
-        s_key_list=", ".join(f"s.{k}" for k in keys),
-        f_key_list=", ".join(f"f.{k}" for k in keys),
-        v_key_list=", ".join(f"v.{k}" for k in keys),
-        xv_key_join=" AND ".join(f"x.{k} = v.{k}" for k in keys),
-        ks_key_join=" AND ".join(f"k.{k} = s.{k}" for k in keys),
         age=_age_sql(layout.period_type),
+        **key_fragments(keys),
     )
 
 
@@ -95,7 +86,7 @@ def open_target(database: Path, read_only: bool = False) -> duckdb.DuckDBPyConne
     if not database.parent.is_dir():
         raise PublishError(f"folder {database.parent} of publish.database does not exist; create it or fix the path")
     try:
-        return duckdb.connect(str(database), read_only=read_only, config=engine_config())
+        return open_duckdb(str(database), read_only=read_only, config=engine_config())
     except duckdb.Error as exc:
         if is_lock_error(exc):
             raise PublishError(f"target {lock_message(database)}") from None
@@ -133,7 +124,7 @@ def check_target(database: Path, layout: TableLayout) -> str:
         return "will be created"
     try:
         # the source's settings: a source in the same file is then the same database instance
-        con = duckdb.connect(str(database), read_only=True, config=engine_config())
+        con = open_duckdb(str(database), read_only=True, config=engine_config())
     except duckdb.Error as exc:
         if is_lock_error(exc):
             return f"in use by another process right now (not checked: {_lock_holder(exc)})"
@@ -240,8 +231,6 @@ def check_ownership(
     """
     expected = _expected_columns(layout)
     present = _table_columns(con, layout.schema)
-    where = f"schema {layout.schema} in {database}"
-    fix = "publish this job to another schema with [publish] schema"
     ours = [t for t in DDL_FILES if t in present]
     recorded: dict[str, set[str]] = {}
     if MARKER_TABLE in present:
@@ -249,40 +238,7 @@ def check_ownership(
             f"SELECT table_name, columns FROM {quote(layout.schema)}.{MARKER_TABLE}").fetchall()}
     elif ours and _all_match(ours, expected, present):
         recorded = {t: set(present[t]) for t in ours}
-    # columns an earlier release named otherwise count under their new names (renamed when the run publishes)
-    present = {t: {renamed_column(t, c): typ for c, typ in cols.items()} for t, cols in present.items()}
-    recorded = {t: {renamed_column(t, c) for c in cols} for t, cols in recorded.items()}
-    for table in ours:
-        if table not in recorded:
-            raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
-    for table in sorted(set(recorded) - set(present)):
-        if table in DDL_FILES:
-            raise PublishError(f"{where}: arflow's table {table} was dropped; {fix} (or restore the table)")
-    new_columns: list[tuple[str, str, str]] = []
-    for table in ours:
-        problem, new = _column_difference(expected[table], present[table], table, recorded[table])
-        if problem:
-            raise PublishError(f"{where}: {problem}; {fix} (or restore the column)")
-        new_columns.extend((table, c, t) for c, t in new)
-    # a coverage level has its columns in every table that carries levels
-    labels = {c[len(p) + 1:] for t, prefixes in COVERAGE_COLUMNS.items() if t in present
-              for p in prefixes for c in present[t] if c.startswith(p + "_")}
-    for label in sorted(labels):
-        for table, prefixes in COVERAGE_COLUMNS.items():
-            for prefix in prefixes:
-                if table in present and f"{prefix}_{label}" not in present[table]:
-                    raise PublishError(
-                        f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)"
-                    )
-    return [t for t in DDL_FILES if t not in present], new_columns
-
-
-def renamed_column(table: str, column: str) -> str:
-    """The current name of a column an earlier release may have written under another name."""
-    for old, new in RENAMED_COLUMNS.get(table, ()):
-        if column == old or (old.endswith("_") and column.startswith(old)):
-            return new + column[len(old):]
-    return column
+    return check_owned_tables(f"schema {layout.schema} in {database}", DDL_FILES, expected, present, recorded, _COVERAGE_TYPES)
 
 
 def rename_old_columns(con: duckdb.DuckDBPyConnection, schema: str) -> list[str]:
@@ -312,38 +268,7 @@ def rename_old_columns(con: duckdb.DuckDBPyConnection, schema: str) -> list[str]
 
 def _all_match(tables: list[str], expected: dict, present: dict) -> bool:
     return len(tables) == len(DDL_FILES) and all(
-        _column_difference(expected[t], present[t], t, None) == (None, []) for t in tables)
-
-
-def _column_difference(
-    expected: list[tuple[str, str]], actual: dict[str, str], table: str, recorded: set[str] | None
-) -> tuple[str | None, list[tuple[str, str]]]:
-    """(what differs between a table's columns and arflow's definition or None, columns new in this version).
-
-    ``recorded``: the columns arflow created the table with (None: every
-    defined column must be there). A defined column missing from the table
-    and from ``recorded`` is new in this version, not dropped.
-    """
-    want = {c.lower(): t for c, t in expected}
-    new: list[tuple[str, str]] = []
-    for column, typ in want.items():
-        if column not in actual:
-            if recorded is not None and column not in recorded:
-                new.append((column, typ))
-                continue
-            return f"column {table}.{column} was dropped", []
-        if actual[column] != typ:
-            return f"column {table}.{column} is {actual[column]}, arflow writes {typ}", []
-    prefixes = tuple(f"{p}_" for p in COVERAGE_COLUMNS.get(table, ()))
-    for column, typ in actual.items():
-        if column in want:
-            continue
-        if prefixes and column.startswith(prefixes):
-            if typ != _COVERAGE_TYPES[table]:
-                return f"column {table}.{column} is {typ}, arflow writes {_COVERAGE_TYPES[table]}", []
-            continue
-        return f"table {table} has a column {column} that arflow did not create", []
-    return None, new
+        column_difference(expected[t], present[t], t, None, _COVERAGE_TYPES) == (None, []) for t in tables)
 
 
 def _lock_holder(exc: BaseException) -> str:
@@ -422,7 +347,7 @@ class DuckDBTarget:
         if not self.database.exists():
             return None
         try:
-            con = duckdb.connect(str(self.database), read_only=True)
+            con = open_duckdb(str(self.database), read_only=True)
         except duckdb.Error as exc:
             if is_lock_error(exc):
                 return None  # reported by the target checks; the transaction checks the far-ahead guard again
@@ -541,20 +466,10 @@ class DuckDBTarget:
         """The far-ahead guard again, inside the transaction (the job checked it before fitting)."""
         if record.jump_limit is None:
             return
-        from .duckdb_source import periods_between
-
         (latest,) = con.execute(
             f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = ?", [record.job]
         ).fetchone() or (None,)
-        if latest is None or not record.as_of > latest:
-            return
-        gap = periods_between(record.frequency, latest, record.as_of)
-        if gap > record.jump_limit:
-            raise PublishError(
-                f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
-                f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
-                "(add --allow-jump to write it deliberately)"
-            )
+        check_jump(record, latest)
 
     def _write_policy(self, con: duckdb.DuckDBPyConnection, record: RunRecord) -> None:
         """The job's row of ``job_policy`` (what the view's expiry rule reads)."""

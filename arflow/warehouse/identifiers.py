@@ -52,3 +52,24 @@ def quote(name: str) -> str:
 def quote_qualified(parts: tuple[str, ...] | list[str]) -> str:
     """Quote ``("schema", "table")`` as ``"schema"."table"``."""
     return ".".join(quote(p) for p in parts)
+
+
+def key_fragments(keys: tuple[str, ...] | list[str]) -> dict[str, str]:
+    """The key-column pieces of the DDL and view templates of every dialect, from the quoted ``keys``.
+
+    ``key_list`` lists the keys, ``<alias>_key_list`` with a table alias; the
+    ``*_key_join`` entries are the join conditions the views use.
+    """
+
+    def listed(alias: str) -> str:
+        return ", ".join(f"{alias}.{k}" for k in keys)
+
+    def joined(a: str, b: str) -> str:
+        return " AND ".join(f"{a}.{k} = {b}.{k}" for k in keys)
+
+    return {
+        "key_list": ", ".join(keys),
+        "p_key_list": listed("p"), "s_key_list": listed("s"), "f_key_list": listed("f"), "v_key_list": listed("v"),
+        "key_join": joined("p", "l"), "f_key_join": joined("f", "v"), "xv_key_join": joined("x", "v"),
+        "ks_key_join": joined("k", "s"),
+    }

@@ -23,11 +23,11 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import quote as _url_quote
 
-import duckdb
 import polars as pl
 
 from ..errors import PublishError, SourceError
 from .contract import TableLayout
+from .duckdb_source import open_duckdb
 from .duckdb_target import VIEW_FILE, render_sql
 from .identifiers import check_identifier
 
@@ -117,7 +117,7 @@ def published_forecasts(lakehouse: str | Path, schema: str = "arflow") -> pl.Dat
     if layout_info is None or not status_files or not forecast_files:
         return pl.DataFrame()
     layout = TableLayout(schema, tuple(layout_info["keys"]), tuple(layout_info["key_types"]), layout_info["period_type"])
-    con = duckdb.connect(":memory:")
+    con = open_duckdb(":memory:")
     try:
         con.execute(f'CREATE SCHEMA "{schema}"')
         for table, files in (("series_status", status_files), ("forecasts", forecast_files)):

@@ -14,7 +14,6 @@ and the client holds one chunk at a time.
 
 from __future__ import annotations
 
-import datetime as dt
 import re
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -25,8 +24,9 @@ import pyarrow as pa
 
 from ..errors import SchemaError, SettingsError, SourceAccessError, SourceError
 from ..runtime import fault_point
+from .checks import check_step_frequency, column_type, count_and_check_rows, period_labels
 from .contract import SourceLayout, SourceStats
-from .duckdb_source import STEP_LIMIT, SourceCalendar, describe_row, normalise_as_of
+from .duckdb_source import SourceCalendar, describe_row, parse_as_of_text
 from .identifiers import quote, quote_qualified
 from .key_ranges import range_predicate, range_starts, ranges
 from .postgres_connection import PgAddress, connect, detail, driver_errors, lost_connection, sqlstate
@@ -43,7 +43,6 @@ _VALUE_TYPES = {"int2": "SMALLINT", "int4": "INTEGER", "int8": "BIGINT", "float4
 _NUMERIC = _INTEGER | {"float4", "float8", "numeric"}
 _READABLE = {"int2": "smallint", "int4": "integer", "int8": "bigint", "float4": "real", "float8": "double precision",
              "bpchar": "character", "timestamptz": "timestamp with time zone", "bool": "boolean"}
-_WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
 
 
 @dataclass(frozen=True)
@@ -216,17 +215,10 @@ class PostgresSource:
             return self._layout
         schema = self._run(f"SELECT * FROM {self._from()} LIMIT 0").schema
         columns = tuple((f.name, _type_name(f)) for f in schema)
-        by_lower = {name.lower(): (name, typ) for name, typ in columns}
         spec = self.spec
-        available = ", ".join(name for name, _ in columns) or "none"
 
         def find(col: str, role: str) -> str:
-            if col.lower() not in by_lower:
-                raise SchemaError(f"source has no column {col!r} (named as {role}); columns available: {available}")
-            name, typ = by_lower[col.lower()]
-            if name != col:
-                raise SchemaError(f"source column is spelled {name!r}, the job file says {col!r} ({role}); use the exact spelling")
-            return typ
+            return column_type(columns, col, role)
 
         key_types = []
         for k in spec.keys:
@@ -249,10 +241,7 @@ class PostgresSource:
                 f"period column {spec.period!r} has type {_READABLE.get(ptyp, ptyp)}; expected date, timestamp (without time "
                 f"zone) or an integer (cast it in a [source] query, e.g. {spec.period}::date)"
             )
-        if period_type == "BIGINT" and self.frequency != "step":
-            raise SchemaError(f"period column {spec.period!r} holds integers; set source.frequency = \"step\" for integer periods")
-        if period_type != "BIGINT" and self.frequency == "step":
-            raise SchemaError(f"source.frequency = \"step\" needs an integer period column, but {spec.period!r} is {ptyp}; use day/week/month/quarter/year")
+        check_step_frequency(period_type, self.frequency, spec.period, ptyp)
         vtyp = find(spec.value, "source.value")
         if vtyp not in _NUMERIC:
             raise SchemaError(
@@ -264,30 +253,10 @@ class PostgresSource:
         return self._layout
 
     def check_rows(self) -> int:
-        """Row count; rejects an empty source and rows with NULL keys or periods."""
+        """Row count; the row checks of :mod:`arflow.warehouse.checks` (with a few offending rows as examples)."""
         spec = self.spec
-        null_key = " OR ".join(f"{quote(k)} IS NULL" for k in spec.keys)
-        total, null_keys, null_periods, values = self._rows(
-            f"SELECT count(*), count(*) FILTER (WHERE {null_key}), count(*) FILTER (WHERE {quote(spec.period)} IS NULL), "
-            f"count({quote(spec.value)}) FROM {self._from()}"
-        )[0]
-        if total == 0:
-            raise SourceError("the source has no rows; check source.table / source.query")
-        if values == 0:
-            raise SourceError(
-                f"the value column {spec.value} is NULL in all {total} row(s); check source.value or the [source] query"
-            )
-        if null_keys:
-            raise SourceError(
-                f"the source has {null_keys:,} row(s) with a NULL key ({', '.join(spec.keys)}), e.g. "
-                f"{self.example_rows(null_key)}; filter them out or fill them in with a [source] query"
-            )
-        if null_periods:
-            raise SourceError(
-                f"the source has {null_periods:,} row(s) with a NULL period ({spec.period}), e.g. "
-                f"{self.example_rows(quote(spec.period) + ' IS NULL')}; filter them out with a [source] query"
-            )
-        return int(total)
+        return count_and_check_rows(self._rows, self.example_rows, self._from(), spec.keys, spec.period, spec.value,
+                                    where="source.table / source.query")
 
     def period_expr(self) -> str:
         """SQL for the period column as arflow's period type."""
@@ -300,60 +269,27 @@ class PostgresSource:
 
     def parse_as_of(self, text: Any) -> Any:
         """Turn a ``--as-of`` string into a value of the period column's type (as the DuckDB source does)."""
-        ptype = self.layout().period_type
-        if not isinstance(text, str):
-            return normalise_as_of(text, ptype)
-        text = text.strip()
-        try:
-            if ptype == "BIGINT":
-                value = int(text)
-                if abs(value) > STEP_LIMIT:
-                    raise SettingsError(
-                        f"--as-of: as-of period {text[:40]} is out of range for integer periods "
-                        f"(at most +-2**53 = {STEP_LIMIT}); use a period inside the source's range"
-                    )
-                return value
-            if re.fullmatch(r"\d{4}-\d{2}", text):
-                text += "-01"
-            if re.fullmatch(r"\d{4}-\d{2}-\d{2}", text):
-                return normalise_as_of(dt.date.fromisoformat(text), ptype)
-            return normalise_as_of(dt.datetime.fromisoformat(text.replace("z", "Z")), ptype)
-        except (ValueError, OverflowError):
-            want = {"BIGINT": "an integer period", "DATE": "a date like 2024-06-01", "TIMESTAMP": "a timestamp like 2024-06-01T00:00"}[ptype]
-            raise SettingsError(f"--as-of {text[:40]!r} is not {want} (the period column {self.spec.period} is {ptype})") from None
+        return parse_as_of_text(text, self.layout().period_type, self.spec.period)
 
     def calendar(self) -> SourceCalendar:
         """How the source labels its periods (weekday of weekly labels, period starts or ends)."""
         if self._calendar is not None:
             return self._calendar
-        freq = self.frequency
         period = self.period_expr()
         latest = self.latest_period()
-        weekday: int | None = None
-        anchor = "start"
-        if freq == "week":
-            counts = self._rows(
-                f"SELECT (extract(isodow FROM p)::int - 1) AS wd, count(*) AS n FROM (SELECT {period} AS p FROM {self._from()}) AS x "
-                "GROUP BY wd ORDER BY n DESC, wd"
-            )
-            weekday = int(counts[0][0])
-            if len(counts) > 1:
-                off = sum(int(n) for _, n in counts[1:])
-                examples = self.example_rows(f"extract(isodow FROM {period})::int - 1 <> {weekday}")
-                raise SchemaError(
-                    f"weekly periods fall on different weekdays: {off:,} row(s) are not on a {_WEEKDAYS[weekday]} "
-                    f"(the weekday of most rows), e.g. {examples}; label each week by the same weekday "
-                    "(e.g. its Monday) or use frequency 'day'"
-                )
-        elif freq in ("month", "quarter", "year"):
-            last_day = "(date_trunc('month', p) + interval '1 month - 1 day')::date = p"
-            end = {"month": last_day, "quarter": f"{last_day} AND extract(month FROM p)::int % 3 = 0",
-                   "year": "extract(month FROM p)::int = 12 AND extract(day FROM p)::int = 31"}[freq]
-            (all_end,) = self._rows(
-                f"SELECT bool_and({end}) FROM (SELECT DISTINCT CAST({period} AS date) AS p FROM {self._from()}) AS x"
-            )[0]
-            anchor = "end" if all_end else "start"
-        self._calendar = SourceCalendar(freq, self.layout().period_type, latest, weekday, anchor)
+        last_day = "(date_trunc('month', p) + interval '1 month - 1 day')::date = p"
+        ends = {"month": last_day, "quarter": f"{last_day} AND extract(month FROM p)::int % 3 = 0",
+                "year": "extract(month FROM p)::int = 12 AND extract(day FROM p)::int = 31"}
+        weekday, anchor = period_labels(
+            self.frequency,
+            lambda: self._rows(f"SELECT (extract(isodow FROM p)::int - 1) AS wd, count(*) AS n FROM (SELECT {period} AS p "
+                               f"FROM {self._from()}) AS x GROUP BY wd ORDER BY n DESC, wd"),
+            lambda wd: self.example_rows(f"extract(isodow FROM {period})::int - 1 <> {wd}"),
+            lambda freq: self._rows(
+                f"SELECT bool_and({ends[freq]}) FROM (SELECT DISTINCT CAST({period} AS date) AS p FROM {self._from()}) AS x"
+            )[0][0],
+        )
+        self._calendar = SourceCalendar(self.frequency, self.layout().period_type, latest, weekday, anchor)
         return self._calendar
 
     def place_as_of(self, text: Any) -> tuple[Any, Any]:

@@ -34,12 +34,15 @@ from ..errors import PublishError
 from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
 from ..settings import MAX_COVERAGE_LEVELS
 from ..results import RUN_TABLES
-from .contract import DATABASE_ORDER, RunRecord, TableLayout, check_layout_match, runs_row
-from .duckdb_target import (
-    ACCURACY_VIEW, COVERAGE_COLUMNS, DDL_FILES, MARKER_FILE, MARKER_TABLE, RENAMED_COLUMNS, STATUS_VIEW, VIEW_FILE,
-    expected_columns, renamed_column,
+from .contract import (
+    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_jump, check_layout_match,
+    check_owned_tables,
+    runs_row,
 )
-from .identifiers import quote
+from .duckdb_target import (
+    ACCURACY_VIEW, DDL_FILES, MARKER_FILE, MARKER_TABLE, STATUS_VIEW, VIEW_FILE, expected_columns,
+)
+from .identifiers import key_fragments, quote
 from .postgres_connection import PgAddress, connect, detail, driver_errors, lost_connection, sqlstate
 
 #: default [publish] lock_wait_seconds and statement_timeout_seconds
@@ -58,6 +61,8 @@ _PG_TYPES = {
 _FORMATTED = {"timestamp": "timestamp without time zone"}
 #: format_type() of a period column -> arflow's period type
 _PERIOD_TYPES = {"date": "DATE", "timestamp without time zone": "TIMESTAMP", "bigint": "BIGINT"}
+#: a coverage level's column type per table, as format_type spells it
+_LEVEL_TYPES = {"forecasts": "double precision", "backtests": "double precision", "accuracy": "boolean"}
 #: format_type() -> Arrow type the bulk load sends (binary COPY needs the exact type)
 _ARROW = {
     "text": pa.string(), "smallint": pa.int16(), "integer": pa.int32(), "bigint": pa.int64(),
@@ -123,16 +128,9 @@ def render_pg_sql(name: str, layout: TableLayout, coverage_labels: tuple[str, ..
         schema=quote(layout.schema),
         period_type=pg_type(layout.period_type),
         key_defs=",\n    ".join(f"{k} {pg_type(t)} NOT NULL" for k, t in zip(keys, layout.key_types)),
-        key_list=", ".join(keys),
-        p_key_list=", ".join(f"p.{k}" for k in keys),
-        key_join=" AND ".join(f"p.{k} = l.{k}" for k in keys),
-        f_key_join=" AND ".join(f"f.{k} = v.{k}" for k in keys),
-        s_key_list=", ".join(f"s.{k}" for k in keys),
-        v_key_list=", ".join(f"v.{k}" for k in keys),
-        xv_key_join=" AND ".join(f"x.{k} = v.{k}" for k in keys),
-        ks_key_join=" AND ".join(f"k.{k} = s.{k}" for k in keys),
         age=_age_sql(layout.period_type),
         forecast_columns=", ".join(f"f.{quote(c)}" for c in forecast_columns),
+        **key_fragments(keys),
     )
 
 
@@ -377,44 +375,17 @@ class PostgresTarget:
         """The layout and ownership checks of the DuckDB target, on PostgreSQL's catalogue."""
         layout = self.layout
         where = self._where()
-        fix = "publish this job to another schema with [publish] schema"
         status = present.get("series_status")
         if status is not None:
             keys = [c for c in status if c not in STATUS_FIXED]
             period_type = _PERIOD_TYPES.get(status.get("as_of", ""), status.get("as_of", "?"))
             check_layout_match(where, keys, period_type, layout)
         expected = {t: [(c, formatted(typ)) for c, typ in cols] for t, cols in expected_columns(layout).items()}
-        ours = [t for t in DDL_FILES if t in present]
         recorded: dict[str, set[str]] = {}
         if MARKER_TABLE in present:
             rows = fetch_rows(con, f"SELECT table_name, array_to_string(columns, ',') FROM {self._schema}.{MARKER_TABLE}")
             recorded = {str(t).lower(): set(str(c).split(",")) for t, c in rows}
-        elif ours:
-            for table in ours:
-                raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
-        # columns an earlier release named otherwise count under their new names (renamed when the run publishes)
-        present = {t: {renamed_column(t, c): typ for c, typ in cols.items()} for t, cols in present.items()}
-        recorded = {t: {renamed_column(t, c) for c in cols} for t, cols in recorded.items()}
-        for table in ours:
-            if table not in recorded:
-                raise PublishError(f"{where} has a table {table} that arflow did not create; {fix} (or rename that table)")
-        for table in sorted(set(recorded) - set(present)):
-            if table in DDL_FILES:
-                raise PublishError(f"{where}: arflow's table {table} was dropped; {fix} (or restore the table)")
-        new_columns: list[tuple[str, str, str]] = []
-        for table in ours:
-            problem, new = _pg_column_difference(expected[table], present[table], table, recorded[table])
-            if problem:
-                raise PublishError(f"{where}: {problem}; {fix} (or restore the column)")
-            new_columns.extend((table, c, t) for c, t in new)
-        labels = {c[len(p) + 1:] for t, prefixes in COVERAGE_COLUMNS.items() if t in present
-                  for p in prefixes for c in present[t] if c.startswith(p + "_")}
-        for label in sorted(labels):
-            for table, prefixes in COVERAGE_COLUMNS.items():
-                for prefix in prefixes:
-                    if table in present and f"{prefix}_{label}" not in present[table]:
-                        raise PublishError(f"{where}: column {table}.{prefix}_{label} was dropped; {fix} (or restore the column)")
-        return [t for t in DDL_FILES if t not in present], new_columns
+        return check_owned_tables(where, DDL_FILES, expected, present, recorded, _LEVEL_TYPES)
 
     def _ensure_tables(self, con: Any, labels: tuple[str, ...], version: str) -> None:
         self._version = version
@@ -459,20 +430,11 @@ class PostgresTarget:
                         execute(con, f"ALTER TABLE {s}.{quote(table)} ADD COLUMN {quote(col)} {kind}")
 
     def _check_jump(self, con: Any, record: RunRecord) -> None:
+        """The far-ahead guard again, inside the transaction (the job checked it before fitting)."""
         if record.jump_limit is None:
             return
-        from .duckdb_source import periods_between
-
         (latest,) = fetch_rows(con, f"SELECT max(as_of) FROM {self._schema}.vintages WHERE job = $1", (record.job,))[0]
-        if latest is None or not record.as_of > latest:
-            return
-        gap = periods_between(record.frequency, latest, record.as_of)
-        if gap > record.jump_limit:
-            raise PublishError(
-                f"vintage {record.as_of} is {gap:,} {record.frequency} period(s) after this job's latest vintage {latest}, "
-                f"more than publish.max_periods_ahead = {record.jump_limit}; nothing was published "
-                "(add --allow-jump to write it deliberately)"
-            )
+        check_jump(record, latest)
 
     # -- rows ----------------------------------------------------------------------
     def _load(self, con: Any, table: str, staged: Any, record: RunRecord, columns: dict[str, dict[str, str]]) -> None:
@@ -723,39 +685,6 @@ def _parts(staged: Any, table: str) -> Iterator[pa.Table]:
     frame = staged.get(table) if isinstance(staged, dict) else None  # frames in memory (tests, the library call)
     if frame is not None and getattr(frame, "height", 0):
         yield frame.to_arrow()
-
-
-def _pg_column_difference(expected: list[tuple[str, str]], actual: dict[str, str], table: str,
-                          recorded: set[str]) -> tuple[str | None, list[tuple[str, str]]]:
-    """(what differs between a table's columns and arflow's definition or None, columns new in this version).
-
-    The DuckDB target's rule on PostgreSQL's type names: a defined column
-    missing from the table and from ``recorded`` is new (added), one missing
-    but recorded was dropped by hand; other columns are refused unless they
-    are a coverage level's.
-    """
-    want = {c.lower(): t for c, t in expected}
-    lowered = {c.lower(): t for c, t in actual.items()}
-    new: list[tuple[str, str]] = []
-    for column, typ in want.items():
-        if column not in lowered:
-            if column not in recorded:
-                new.append((column, typ))
-                continue
-            return f"column {table}.{column} was dropped", []
-        if lowered[column] != typ:
-            return f"column {table}.{column} is {lowered[column]}, arflow writes {typ}", []
-    prefixes = tuple(f"{p}_" for p in COVERAGE_COLUMNS.get(table, ()))
-    level_type = "boolean" if table == "accuracy" else "double precision"
-    for column, typ in lowered.items():
-        if column in want:
-            continue
-        if prefixes and column.startswith(prefixes):
-            if typ != level_type:
-                return f"column {table}.{column} is {typ}, arflow writes {level_type}", []
-            continue
-        return f"table {table} has a column {column} that arflow did not create", []
-    return None, new
 
 
 def table_columns(con: Any, schema: str) -> dict[str, dict[str, str]]:

@@ -26,7 +26,7 @@ from ..errors import PublishError, SettingsError, one_line
 from ..results import RUN_TABLES
 from ..version import arflow_version
 from .contract import TableLayout
-from .duckdb_source import is_lock_error, lock_message, parse_vintage
+from .duckdb_source import is_lock_error, lock_message, open_duckdb, parse_vintage
 from .duckdb_target import open_target, render_sql
 from .identifiers import quote
 
@@ -104,7 +104,7 @@ def _read_only(database: Path) -> duckdb.DuckDBPyConnection | None:
     if not database.exists():
         return None
     try:
-        return duckdb.connect(str(database), read_only=True)
+        return open_duckdb(str(database), read_only=True)
     except duckdb.Error as exc:
         if is_lock_error(exc):
             raise PublishError(f"target {lock_message(database)}") from None
