@@ -106,6 +106,7 @@ PROFILE_POINTS = [
     ("diagnostics", "arflow.core.pipeline", "residual_test"),
     ("forecast", "arflow.core.pipeline", "forecast_ar"),
     ("forecast", "arflow.core.pipeline", "_interval_terms"),
+    ("model-choice intervals", "arflow.core.intervals", "candidate_interval"),
     ("backtest", "arflow.core.backtest", "rolling_origin"),
     ("gates", "arflow.core.gates", "decide"),
     ("result frames", "arflow.frames", "result_frames"),
