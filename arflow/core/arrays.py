@@ -17,3 +17,28 @@ def nan_to_num(x, copy: bool = True) -> np.ndarray:
     if not np.isfinite(out).all():
         np.nan_to_num(out, copy=False)
     return out
+
+
+def pattern_groups(mask: np.ndarray, limit: int) -> list[tuple[np.ndarray, np.ndarray]] | None:
+    """Rows of a (G, K) boolean ``mask`` grouped by their pattern: ``[(rows, used columns)]``.
+
+    Groups come in a fixed order (by the pattern's bits) and rows keep their
+    order within a group. None when there are more than ``limit`` distinct
+    patterns: then one whole-batch computation is cheaper than a call per group.
+
+    >>> [(r.tolist(), c.tolist()) for r, c in pattern_groups(np.array([[1, 0], [1, 1], [1, 0]], bool), 4)]
+    [([0, 2], [0]), ([1], [0, 1])]
+    """
+    key = np.packbits(mask, axis=1, bitorder="little")
+    key = key.view(np.dtype((np.void, key.shape[1]))).ravel()
+    uniq, inv = np.unique(key, return_inverse=True)
+    if len(uniq) > limit:
+        return None
+    inv = inv.ravel()
+    order = np.argsort(inv, kind="stable")
+    bounds = np.searchsorted(inv[order], np.arange(len(uniq) + 1))
+    groups = []
+    for u in range(len(uniq)):
+        rows = order[bounds[u]: bounds[u + 1]]
+        groups.append((rows, np.flatnonzero(mask[rows[0]])))
+    return groups

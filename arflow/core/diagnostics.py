@@ -20,6 +20,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from .arrays import pattern_groups
 from .distributions import chi2_sf, t_sf
 
 from arflow.core import ols
@@ -465,18 +466,10 @@ def _solve_by_pattern(XtX: np.ndarray, R: np.ndarray, mask: np.ndarray) -> np.nd
     (a pseudo-inverse for a group holding a singular system)."""
     G, K, m = R.shape
     sol = np.zeros((G, K, m))
-    key = np.packbits(mask, axis=1, bitorder="little")
-    key = key.view(np.dtype((np.void, key.shape[1]))).ravel()
-    uniq, inv = np.unique(key, return_inverse=True)
-    inv = inv.ravel()
-    if len(uniq) > max(16, G // 32):  # so many patterns that one full batch is cheaper
-        uniq, inv = uniq[:1], np.zeros(G, dtype=np.int64)
-        mask = np.ones((G, K), dtype=bool)
-    order = np.argsort(inv, kind="stable")
-    bounds = np.searchsorted(inv[order], np.arange(len(uniq) + 1))
-    for u in range(len(uniq)):
-        rows = order[bounds[u] : bounds[u + 1]]
-        cols = np.flatnonzero(mask[rows[0]])
+    groups = pattern_groups(mask, max(16, G // 32))
+    if groups is None:  # so many patterns that one full batch is cheaper
+        groups = [(np.arange(G), np.arange(K))]
+    for rows, cols in groups:
         if len(cols) == 0:
             continue
         sub = XtX[rows[:, None, None], cols[None, :, None], cols[None, None, :]]

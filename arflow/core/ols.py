@@ -21,6 +21,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .arrays import pattern_groups
+
 #: When a batch holds an exactly singular system, regressions whose unit-diagonal
 #: Gram matrix has a smallest eigenvalue below this get a tiny ridge (1e-9).
 COLLINEAR_EIG = 1e-11
@@ -241,11 +243,8 @@ def _by_pattern(A: np.ndarray, m: np.ndarray, rhs: np.ndarray | None):
     G, k, _ = A.shape
     if G == 0 or k <= 1:
         return _inv_batch(A, m) if rhs is None else _solve_batch(A, rhs, m)
-    key = np.packbits(m, axis=1, bitorder="little")
-    key = key.view(np.dtype((np.void, key.shape[1]))).ravel()
-    uniq, inv = np.unique(key, return_inverse=True)
-    inv = inv.ravel()
-    if (len(uniq) == 1 and m[0].all()) or len(uniq) > max(16, G // 32):
+    groups = pattern_groups(m, max(16, G // 32))
+    if groups is None or (len(groups) == 1 and m[0].all()):
         # one full pattern, or so many patterns that the per-group calls would cost more
         return _inv_batch(A, m) if rhs is None else _solve_batch(A, rhs, m)
     if rhs is None:
@@ -253,11 +252,7 @@ def _by_pattern(A: np.ndarray, m: np.ndarray, rhs: np.ndarray | None):
         out[:, np.arange(k), np.arange(k)] = 1.0 - m  # the identity on masked-out columns
     else:
         out = np.where(m, 0.0, rhs)  # masked-out rows of the identity: x = rhs there
-    order = np.argsort(inv, kind="stable")
-    bounds = np.searchsorted(inv[order], np.arange(len(uniq) + 1))
-    for u in range(len(uniq)):
-        rows = order[bounds[u] : bounds[u + 1]]
-        cols = np.flatnonzero(m[rows[0]])
+    for rows, cols in groups:
         if len(cols) == 0:
             continue
         sub = A[rows[:, None, None], cols[None, :, None], cols[None, None, :]]

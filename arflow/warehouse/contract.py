@@ -17,11 +17,12 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
 from ..errors import PublishError
+from ..settings import MAX_COVERAGE_LEVELS
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from .stage import StagedRun
@@ -55,6 +56,17 @@ def periods_between(frequency: str, earlier: Any, later: Any) -> int:
         return (b - a).days // 7
     months = (b.year - a.year) * 12 + (b.month - a.month)
     return months // {"month": 1, "quarter": 3, "year": 12}[frequency]
+
+
+def check_coverage_levels(where: str, forecast_columns: Iterable[str], labels: Iterable[str]) -> None:
+    """Refuse a run that would take a schema past :data:`MAX_COVERAGE_LEVELS` interval levels
+    (``forecast_columns``: the columns ``forecasts`` has now; ``labels``: this run's levels)."""
+    levels = {c[len("lower_"):] for c in forecast_columns if c.startswith("lower_")} | set(labels)
+    if len(levels) > MAX_COVERAGE_LEVELS:
+        raise PublishError(
+            f"{where} would hold {len(levels)} coverage levels, at most {MAX_COVERAGE_LEVELS} are allowed (each adds "
+            "columns for good); reuse the levels already there or publish to another schema"
+        )
 
 
 def check_jump(record: "RunRecord", latest: Any) -> None:

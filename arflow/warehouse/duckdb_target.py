@@ -29,12 +29,11 @@ import duckdb
 from ..errors import PublishError, one_line
 from ..results import ACTUALS, RUN_TABLES, SERIES_STATUS
 from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
-from ..settings import MAX_COVERAGE_LEVELS, coverage_label
+from ..settings import coverage_label
 from ..version import arflow_version
 from .contract import (
-    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_jump, check_layout_match,
-    check_owned_tables,
-    column_difference, runs_row,
+    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_coverage_levels, check_jump,
+    check_layout_match, check_owned_tables, column_difference, runs_row,
 )
 from .duckdb_source import engine_config, is_lock_error, lock_message, open_duckdb
 from .identifiers import key_fragments, quote
@@ -501,13 +500,8 @@ class DuckDBTarget:
                 )
             elif any(t == name for t, _, _ in new_columns):
                 con.execute(f"UPDATE {self._schema}.{MARKER_TABLE} SET columns = ? WHERE table_name = ?", [columns, name])
-        have_levels = {c[len("lower_"):] for c in self._columns(con, "forecasts") if c.startswith("lower_")}
-        if len(have_levels | set(coverage_labels)) > MAX_COVERAGE_LEVELS:
-            raise PublishError(
-                f"schema {self.layout.schema} in {self.database} would hold {len(have_levels | set(coverage_labels))} "
-                f"coverage levels, at most {MAX_COVERAGE_LEVELS} are allowed (each adds columns for good); "
-                "reuse the levels already there or publish to another schema"
-            )
+        check_coverage_levels(f"schema {self.layout.schema} in {self.database}", self._columns(con, "forecasts"),
+                              coverage_labels)
         for table, prefixes in COVERAGE_COLUMNS.items():
             have = self._columns(con, table)
             kind = "BOOLEAN" if table == "accuracy" else "DOUBLE"

@@ -32,12 +32,10 @@ import pyarrow.parquet as pq
 
 from ..errors import PublishError
 from ..runtime import fault_point, hold_signals, release_signals, unwatch_connection, watch_connection
-from ..settings import MAX_COVERAGE_LEVELS
 from ..results import RUN_TABLES
 from .contract import (
-    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_jump, check_layout_match,
-    check_owned_tables,
-    runs_row,
+    COVERAGE_COLUMNS, DATABASE_ORDER, RENAMED_COLUMNS, RunRecord, TableLayout, check_coverage_levels, check_jump,
+    check_layout_match, check_owned_tables, runs_row,
 )
 from .duckdb_target import (
     ACCURACY_VIEW, DDL_FILES, MARKER_FILE, MARKER_TABLE, STATUS_VIEW, VIEW_FILE, expected_columns,
@@ -413,13 +411,7 @@ class PostgresTarget:
             elif any(t == name for t, _, _ in new_columns):
                 execute(con, f"UPDATE {s}.{MARKER_TABLE} SET columns = string_to_array($1, ',') WHERE table_name = $2", (cols, name))
         present = table_columns(con, self.layout.schema)
-        have_levels = {c[len("lower_"):] for c in present.get("forecasts", {}) if c.startswith("lower_")}
-        if len(have_levels | set(labels)) > MAX_COVERAGE_LEVELS:
-            raise PublishError(
-                f"{self._where()} would hold {len(have_levels | set(labels))} coverage levels, at most "
-                f"{MAX_COVERAGE_LEVELS} are allowed (each adds columns for good); reuse the levels already there or "
-                "publish to another schema"
-            )
+        check_coverage_levels(self._where(), present.get("forecasts", {}), labels)
         for table, prefixes in COVERAGE_COLUMNS.items():
             have = present.get(table, {})
             kind = "boolean" if table == "accuracy" else "double precision"
