@@ -195,9 +195,11 @@ def _watch_parent(parent: int) -> None:
 def bind_to_parent(parent: int) -> None:
     """Set up a worker process so that it never outlives ``parent`` (its pid) nor holds its output open."""
     try:
-        signal.signal(signal.SIGINT, signal.SIG_IGN)
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles Ctrl-C and stops its workers
     except ValueError:
         pass
+    if hasattr(signal, "pthread_sigmask"):
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})  # blocked since the launch (_WorkerProcess)
     try:
         null = os.open(os.devnull, os.O_RDWR)
         for fd in (0, 1, 2):
@@ -251,13 +253,31 @@ class _WorkerProcess(mp_context.SpawnProcess):
         with _main_lock:
             main = sys.modules.get("__main__")
             sys.modules["__main__"] = types.ModuleType("__main__")
+            # the child starts with SIGINT blocked (the mask survives fork and exec) until
+            # :func:`bind_to_parent` ignores it: a Ctrl-C to the process group while a worker is
+            # still starting would otherwise print its KeyboardInterrupt traceback on the job's
+            # stderr. Here the signal waits a few milliseconds and is then delivered, not lost.
+            old_mask = _block_sigint()
             try:
                 super().start()
             finally:
+                _restore_mask(old_mask)
                 if main is None:
                     sys.modules.pop("__main__", None)
                 else:
                     sys.modules["__main__"] = main
+
+
+def _block_sigint() -> Any:
+    """Block SIGINT in this thread; returns the previous mask (None where masks are not supported)."""
+    if not hasattr(signal, "pthread_sigmask"):
+        return None
+    return signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+
+
+def _restore_mask(mask: Any) -> None:
+    if mask is not None:
+        signal.pthread_sigmask(signal.SIG_SETMASK, mask)
 
 
 class _WorkerContext(mp_context.SpawnContext):
