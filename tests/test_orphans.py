@@ -184,7 +184,7 @@ def test_sweep_keeps_live_and_unknown_owners_and_removes_dead_ones(tmp_path: Pat
     try:
         gone = subprocess.Popen([sys.executable, "-c", "pass"])
         gone.wait()
-        live_start = stage_module._start_time(sleeper.pid) or "-"
+        live_start = stage_module.process_start_time(sleeper.pid) or "-"
         live = _folder(tmp_path, "live", f"{sleeper.pid} {live_start}\n")
         mine = _folder(tmp_path, "mine", stage_module._owner_record())
         dead = _folder(tmp_path, "dead", f"{gone.pid} 123\n")

@@ -272,6 +272,17 @@ def _inv(A: np.ndarray, m: np.ndarray) -> np.ndarray:
     return _by_pattern(A, m, None)
 
 
+def _from_gram(g: Gram, bs: np.ndarray, b: np.ndarray, m: np.ndarray) -> OLSResult:
+    """The Gram-only result (no residual vector) from the scaled solution ``bs`` of the masked system."""
+    rss = np.maximum(g.yty - np.einsum("gk,gk->g", bs, b), 0.0)
+    beta = bs / g.scale
+    intercept = g.ymean - np.einsum("gk,gk->g", beta, g.xmean)
+    n_params = m.sum(axis=1) + 1
+    empty = np.empty((len(rss), 0))
+    nan = np.full(len(rss), np.nan)
+    return OLSResult(intercept, beta, rss, g.nobs, n_params, empty, np.empty((len(rss), 0, 0)), nan, g.yty)
+
+
 def solve(g: Gram, mask: np.ndarray | None = None) -> OLSResult:
     """Coefficients and RSS from the Gram matrix alone (fast; for model selection).
 
@@ -281,13 +292,7 @@ def solve(g: Gram, mask: np.ndarray | None = None) -> OLSResult:
     """
     A, b, m = _masked(g, mask)
     bs = _solve(A, b, m)
-    rss = np.maximum(g.yty - np.einsum("gk,gk->g", bs, b), 0.0)
-    beta = bs / g.scale
-    intercept = g.ymean - np.einsum("gk,gk->g", beta, g.xmean)
-    n_params = m.sum(axis=1) + 1
-    empty = np.empty((len(rss), 0))
-    nan = np.full(len(rss), np.nan)
-    return OLSResult(intercept, beta, rss, g.nobs, n_params, empty, np.empty((len(rss), 0, 0)), nan, g.yty)
+    return _from_gram(g, bs, b, m)
 
 
 def solve_with_inverse(g: Gram, mask: np.ndarray | None = None) -> tuple[OLSResult, np.ndarray]:
@@ -300,13 +305,7 @@ def solve_with_inverse(g: Gram, mask: np.ndarray | None = None) -> tuple[OLSResu
     A, b, m = _masked(g, mask)
     Ainv = _inv(A, m)
     bs = np.matmul(Ainv, b[:, :, None])[:, :, 0]
-    rss = np.maximum(g.yty - np.einsum("gk,gk->g", bs, b), 0.0)
-    beta = bs / g.scale
-    intercept = g.ymean - np.einsum("gk,gk->g", beta, g.xmean)
-    n_params = m.sum(axis=1) + 1
-    empty = np.empty((len(rss), 0))
-    nan = np.full(len(rss), np.nan)
-    return OLSResult(intercept, beta, rss, g.nobs, n_params, empty, np.empty((len(rss), 0, 0)), nan, g.yty), Ainv
+    return _from_gram(g, bs, b, m), Ainv
 
 
 def fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, mask: np.ndarray | None = None) -> OLSResult:

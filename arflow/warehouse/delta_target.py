@@ -67,6 +67,7 @@ from ..settings import coverage_label
 from ..results import RUN_TABLES as RESULTS_RUN_TABLES
 from ..results import VIEW_TABLES
 from .contract import LAKEHOUSE_ORDER, RunRecord, TableLayout, check_jump, check_layout_match, runs_row
+from .stage import process_start_time
 from .duckdb_target import COVERAGE_COLUMNS, DDL_FILES, VIEW_FILE, render_sql
 from .identifiers import check_identifier, quote
 
@@ -395,19 +396,9 @@ def _conform(batch: pa.RecordBatch, schema: pa.Schema, drop: str | None) -> pa.R
 # ------------------------------------------------------------------------------------ journal / lock
 
 
-def _start_time(pid: int) -> str | None:
-    try:
-        with open(f"/proc/{pid}/stat", "rb") as fh:
-            stat = fh.read().decode("ascii", "replace")
-    except OSError:
-        return None
-    fields = stat[stat.rfind(")") + 2:].split()
-    return fields[19] if len(fields) > 19 else None
-
-
 def _owner() -> dict[str, Any]:
     pid = os.getpid()
-    return {"host": socket.gethostname(), "pid": pid, "pid_started": _start_time(pid)}
+    return {"host": socket.gethostname(), "pid": pid, "pid_started": process_start_time(pid)}
 
 
 def _owner_alive(journal: dict[str, Any]) -> bool:
@@ -422,9 +413,9 @@ def _owner_alive(journal: dict[str, Any]) -> bool:
     pid = int(owner.get("pid", -1))
     if pid == os.getpid():
         return False
-    if pid <= 0 or _start_time(pid) is None:
+    if pid <= 0 or process_start_time(pid) is None:
         return False
-    return owner.get("pid_started") in (None, _start_time(pid))
+    return owner.get("pid_started") in (None, process_start_time(pid))
 
 
 def _history_txns(table: Any, since: int) -> list[str | None]:

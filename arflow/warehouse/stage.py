@@ -34,7 +34,7 @@ OWNER_FILE = "owner"
 _live: set[Path] = set()
 
 
-def _start_time(pid: int) -> str | None:
+def process_start_time(pid: int) -> str | None:
     """The process's start time (clock ticks since boot) on Linux; None where unknown or gone."""
     try:
         with open(f"/proc/{pid}/stat", "rb") as fh:
@@ -69,7 +69,7 @@ def _pid_namespace() -> str:
 
 def _owner_record() -> str:
     pid = os.getpid()
-    return f"{pid} {_start_time(pid) or '-'} {_pid_namespace()}\n"
+    return f"{pid} {process_start_time(pid) or '-'} {_pid_namespace()}\n"
 
 
 def _owner_gone(record: str) -> bool:
@@ -85,7 +85,7 @@ def _owner_gone(record: str) -> bool:
     if not _pid_alive(pid):
         return True
     if sys.platform.startswith("linux") and started != "-":
-        now = _start_time(pid)
+        now = process_start_time(pid)
         return now is not None and now != started  # the pid now belongs to another process
     return False
 
